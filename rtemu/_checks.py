@@ -1,0 +1,220 @@
+"""Validation of operator inputs: structure, units, level order and physical rules.
+
+Every error names the variable, the rule and the first offending profile. With
+``errors="mask"`` the physical-rule violations become a per-profile validity mask instead;
+structural problems (missing variables, wrong dims, unknown units, empty input) always raise.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from typing import Literal
+
+import numpy as np
+import xarray as xr
+
+from rtemu._units import unit_conversion
+
+INPUT_VARIABLES = (
+    "air_pressure",
+    "air_temperature",
+    "specific_humidity",
+    "surface_temperature",
+    "surface_emissivity",
+    "sensor_zenith_angle",
+)
+
+TEMPERATURE_RANGE_K = (100.0, 400.0)
+HUMIDITY_MAX = 0.1  # [kg kg-1], exclusive
+ZENITH_MAX_DEG = 85.0
+
+ErrorMode = Literal["raise", "mask"]
+
+
+@dataclasses.dataclass
+class Prepared:
+    """Validated inputs, surface-first, canonical units (see rtemu.physics.transfer)."""
+
+    pressure_hpa: np.ndarray  # [N, L]
+    air_temperature: np.ndarray  # [N, L]
+    specific_humidity: np.ndarray  # [N, L]
+    surface_temperature: np.ndarray  # [N]
+    surface_emissivity: np.ndarray  # [N, C]
+    sensor_zenith_angle: np.ndarray  # [N]
+    flipped: np.ndarray  # [N] bool: profile was given top-first
+    valid: np.ndarray  # [N] bool
+    problems: list  # messages for invalid profiles (mask mode)
+    emissivity_per_channel: bool  # input emissivity had a channel dim
+    scales: dict  # variable -> unit scale (canonical per user unit)
+
+    def to_caller_order(self, levels: np.ndarray) -> np.ndarray:
+        """Flip the last axis back for profiles that were given top-first."""
+        out = levels.copy()
+        out[self.flipped] = out[self.flipped][..., ::-1]
+        return out
+
+
+def _fail(message: str):
+    raise ValueError(message)
+
+
+def _dims(ds: xr.Dataset, name: str, allowed: list[tuple[str, ...]]) -> tuple[str, ...]:
+    dims = ds[name].dims
+    for option in allowed:
+        if set(dims) == set(option) and len(dims) == len(option):
+            return option
+    _fail(
+        f"{name}: dims {dims} not allowed; expected one of {allowed} "
+        f"(rule: dims are named 'profile', 'level', 'channel')"
+    )
+
+
+def _values(ds, name, order):
+    da = ds[name]
+    scale, offset = unit_conversion(name, da.attrs.get("units"))
+    values = np.asarray(da.transpose(*order).values, dtype=float)
+    return values * scale + offset, scale
+
+
+def _first_bad(mask_rows: np.ndarray) -> int:
+    return int(np.flatnonzero(mask_rows)[0])
+
+
+def prepare_inputs(
+    dataset: xr.Dataset, channel_ids: tuple[str, ...], errors: ErrorMode = "raise"
+) -> Prepared:
+    """Check ``dataset`` against the input schema and return canonical arrays.
+
+    Parameters
+    ----------
+    dataset : xarray.Dataset
+        Variables of :data:`INPUT_VARIABLES` with dims profile, level (and channel).
+    channel_ids : tuple of str
+        The operator's channels; a ``channel`` coordinate in ``dataset`` must equal them
+        (in any order).
+    errors : {"raise", "mask"}
+        * ``"raise"``: a physical-rule violation raises ValueError.
+        * ``"mask"``: the profile is marked invalid instead; its inputs are replaced by a
+          harmless valid profile so that the batch computes.
+    """
+    if errors not in ("raise", "mask"):
+        raise ValueError(f"errors must be 'raise' or 'mask', got {errors!r}")
+    if not isinstance(dataset, xr.Dataset):
+        raise ValueError(f"input must be an xarray.Dataset, got {type(dataset).__name__}")
+    missing = [v for v in INPUT_VARIABLES if v not in dataset.variables]
+    if missing:
+        _fail(f"input dataset is missing variable(s) {missing} (rule: all of {list(INPUT_VARIABLES)} are required)")
+    if "profile" not in dataset.dims:
+        _fail("air_temperature: no 'profile' dimension (rule: inputs have dims (profile, level); "
+              "for one profile use dataset.expand_dims('profile'))")
+    n = dataset.sizes["profile"]
+    if n == 0:
+        _fail("input dataset is empty (rule: at least one profile)")
+    nlev = dataset.sizes.get("level", 0)
+    if nlev < 2:
+        _fail(f"air_temperature: {nlev} level(s) (rule: at least two levels along dim 'level')")
+
+    p_order = _dims(dataset, "air_pressure", [("level",), ("profile", "level")])
+    for name in ("air_temperature", "specific_humidity"):
+        _dims(dataset, name, [("profile", "level")])
+    for name in ("surface_temperature", "sensor_zenith_angle"):
+        _dims(dataset, name, [("profile",)])
+    e_order = _dims(dataset, "surface_emissivity", [("profile",), ("profile", "channel")])
+    nchan = len(channel_ids)
+
+    emissivity_da = dataset["surface_emissivity"]
+    if "channel" in e_order:
+        if "channel" in dataset.coords:
+            have = [str(c) for c in dataset["channel"].values]
+            unknown = [c for c in have if c not in channel_ids]
+            absent = [c for c in channel_ids if c not in have]
+            if unknown or absent:
+                _fail(
+                    f"surface_emissivity: channel coordinate does not match the operator's channels "
+                    f"(unknown: {unknown}, missing: {absent}) (rule: one value per operator channel; "
+                    f"select with dataset.sel(channel=[...]))"
+                )
+            emissivity_da = emissivity_da.sel(channel=list(channel_ids))
+        elif dataset.sizes["channel"] != nchan:
+            _fail(f"surface_emissivity: {dataset.sizes['channel']} channels, operator has {nchan} "
+                  "(rule: one value per operator channel)")
+    ds = dataset.assign(surface_emissivity=emissivity_da)
+
+    p, p_scale = _values(ds, "air_pressure", p_order)
+    p = np.broadcast_to(p, (n, nlev)).copy()
+    t, t_scale = _values(ds, "air_temperature", ("profile", "level"))
+    q, q_scale = _values(ds, "specific_humidity", ("profile", "level"))
+    ts, ts_scale = _values(ds, "surface_temperature", ("profile",))
+    zen, z_scale = _values(ds, "sensor_zenith_angle", ("profile",))
+    em, e_scale = _values(ds, "surface_emissivity", e_order)
+    em = np.broadcast_to(em.reshape(n, -1), (n, nchan)).copy()
+
+    bad = np.zeros(n, dtype=bool)
+    problems: list[str] = []
+
+    def rule(name: str, offending: np.ndarray, text: str):
+        rows = offending.reshape(n, -1).any(axis=1) & ~bad
+        if not rows.any():
+            return
+        first = _first_bad(rows)
+        message = f"{name}: {text}; first offending profile index {first}"
+        if errors == "raise":
+            _fail(message)
+        problems.append(f"{message} ({int(rows.sum())} profile(s))")
+        bad[rows] = True
+
+    for name, arr in (("air_pressure", p), ("air_temperature", t), ("specific_humidity", q),
+                      ("surface_temperature", ts), ("surface_emissivity", em),
+                      ("sensor_zenith_angle", zen)):
+        rule(name, ~np.isfinite(arr), "non-finite value (rule: all values finite)")
+    lo, hi = TEMPERATURE_RANGE_K
+    with np.errstate(invalid="ignore"):
+        rule("air_pressure", p <= 0, "non-positive pressure (rule: pressure > 0 hPa)")
+        steps = np.diff(p, axis=1)
+        rule("air_pressure", steps == 0, "a level is repeated (rule: strictly monotonic pressure, no repeated level)")
+        rule("air_pressure", ~((steps < 0).all(axis=1) | (steps > 0).all(axis=1)),
+             "pressure not strictly monotonic along 'level' (rule: strictly monotonic per profile)")
+        rule("air_temperature", (t < lo) | (t > hi), f"outside {lo:g}-{hi:g} K (rule: physical range; Celsius labelled K?)")
+        rule("surface_temperature", (ts < lo) | (ts > hi), f"outside {lo:g}-{hi:g} K (rule: physical range)")
+        rule("specific_humidity", (q < 0) | (q >= HUMIDITY_MAX),
+             f"outside [0, {HUMIDITY_MAX:g}) kg kg-1 (rule: 0 <= q < {HUMIDITY_MAX:g})")
+        rule("surface_emissivity", (em < 0) | (em > 1), "outside [0, 1] (rule: 0 <= emissivity <= 1)")
+        rule("sensor_zenith_angle", (zen < 0) | (zen > ZENITH_MAX_DEG),
+             f"outside [0, {ZENITH_MAX_DEG:g}] degree (rule: plane-parallel geometry)")
+
+    valid = ~bad
+    if bad.any():
+        # Give invalid profiles a harmless valid stand-in so the batch computes; their
+        # outputs are set to NaN by the caller. A valid profile of the batch serves if any.
+        if valid.any():
+            ref = int(np.flatnonzero(valid)[0])
+            stand_in = (p[ref], t[ref], q[ref], ts[ref], em[ref], zen[ref])
+        else:
+            stand_in = (np.geomspace(1000.0, 1.0, nlev), 250.0, 1e-4, 250.0, 0.5, 0.0)
+        for arr, value in zip((p, t, q, ts, em, zen), stand_in):
+            arr[bad] = value
+
+    flipped = p[:, 0] < p[:, -1]
+    for arr in (p, t, q):
+        arr[flipped] = arr[flipped][:, ::-1]
+
+    return Prepared(
+        pressure_hpa=p,
+        air_temperature=t,
+        specific_humidity=q,
+        surface_temperature=ts,
+        surface_emissivity=em,
+        sensor_zenith_angle=zen,
+        flipped=flipped,
+        valid=valid,
+        problems=problems,
+        emissivity_per_channel="channel" in e_order,
+        scales={
+            "air_pressure": p_scale,
+            "air_temperature": t_scale,
+            "specific_humidity": q_scale,
+            "surface_temperature": ts_scale,
+            "surface_emissivity": e_scale,
+            "sensor_zenith_angle": z_scale,
+        },
+    )

@@ -1,0 +1,38 @@
+"""Quality-flag bits shared by every operator (CF ``flag_masks`` / ``flag_meanings``).
+
+A flag is a per-(profile, channel) integer bitmask; zero means "use it".
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+INVALID_INPUT = 1
+"""Non-finite input, or input outside the physical validity rules of the model."""
+OUTSIDE_TRAINING_BOUNDS = 2
+"""A variable (at some level) outside the per-variable range the emulator was trained on."""
+NOVEL_STATE = 4
+"""Multivariate novelty: the state is farther from the training set than any training state."""
+PHYSICS_FALLBACK = 8
+"""The value was recomputed by the physical model instead of the emulator."""
+
+FLAG_MASKS = np.array(
+    [INVALID_INPUT, OUTSIDE_TRAINING_BOUNDS, NOVEL_STATE, PHYSICS_FALLBACK], dtype=np.int32
+)
+FLAG_MEANINGS = "invalid_input outside_training_bounds novel_state physics_fallback"
+FLAG_DESCRIPTIONS = {
+    "invalid_input": "non-finite input or outside the physical validity rules",
+    "outside_training_bounds": "a variable outside its per-level training range",
+    "novel_state": "state farther from the training set than any training state",
+    "physics_fallback": "value recomputed by the physical model",
+}
+
+
+def flag_attrs() -> dict:
+    """CF attributes for a ``quality_flag`` variable."""
+    return {
+        "long_name": "quality flag bitmask",
+        "flag_masks": FLAG_MASKS,
+        "flag_meanings": FLAG_MEANINGS,
+        "comment": "; ".join(f"{k}: {v}" for k, v in FLAG_DESCRIPTIONS.items()),
+    }

@@ -1,0 +1,549 @@
+"""The physical reference model: clear-sky Schwarzschild transfer through gray sub-bands.
+
+Pure-numpy core (:func:`transfer`) on surface-first arrays in canonical units, and the
+labelled entry points (:func:`simulate`, :func:`tangent_linear`, :func:`adjoint`) that
+validate an :class:`xarray.Dataset`, handle units and level order, and label the result.
+
+The model, for levels i = 0..L-1 (surface first) and layers j = 0..L-2 between levels j
+and j+1, with g = 9.80665 m s-2, epsilon = 0.622, T_cosmic = 2.725 K, mu = cos(zenith):
+
+* layer means (arithmetic): T_j, q_j, p_j;                                     (eq. 1)
+* mass path dm_j = (p_j - p_j+1) 100 / g [kg m-2]; dw_j = q_j dm_j;
+  dd_j = (1 - q_j) dm_j; e_j = q_j p_j / (epsilon + (1 - epsilon) q_j) [hPa];    (eq. 2)
+* nadir optical depth of sub-band b                                              (eq. 3)
+  d_bj = k_dry (p_j/p_ref)^n_dry (T_ref/T_j)^m_dry dd_j
+       + k_h2o (p_j/p_ref)^n_h2o (T_ref/T_j)^m_h2o dw_j
+       + k_cont (e_j/p_ref) (T_ref/T_j)^m_cont dw_j ;  slant depth d_bj / mu;
+* t_i = exp(-sum_{j>=i} d_bj/mu) (level to space), s_i = exp(-sum_{j<i} d_bj/mu)
+  (surface to level);                                                            (eq. 4)
+* R_b = e B(T_s) t_0 + sum_j B(T_j)(t_j+1 - t_j)
+        + (1 - e) t_0 [sum_j B(T_j)(s_j - s_j+1) + B(T_cosmic) s_L-1];            (eq. 5)
+* R = sum_b w_b R_b; brightness temperature = B^-1(R).                           (eq. 6)
+
+Jacobians are the exact derivatives of this discrete model, in the same pass.
+
+References
+----------
+Petty, G. W. (2006), A First Course in Atmospheric Radiation, 2nd ed., Sundog, ch. 7-8.
+Liou, K. N. (2002), An Introduction to Atmospheric Radiation, 2nd ed., Academic Press, ch. 4.
+"""
+
+from __future__ import annotations
+
+from typing import Literal
+
+import numpy as np
+import xarray as xr
+
+from rtemu import flags as _flags
+from rtemu._checks import prepare_inputs
+from rtemu.constants import COSMIC_BACKGROUND_TEMPERATURE, EPSILON, STANDARD_GRAVITY
+from rtemu.instrument import Instrument, load_instrument
+from rtemu.planck import inverse_planck, planck, planck_coefficients, planck_derivative
+
+#: Profiles processed per vectorised block; bounds memory at about
+#: block * bands * levels * 8 bytes per work array.
+DEFAULT_BLOCK_SIZE = 512
+
+JACOBIAN_NAMES = (
+    "jacobian_air_temperature",
+    "jacobian_specific_humidity",
+    "jacobian_surface_temperature",
+    "jacobian_surface_emissivity",
+)
+
+
+class _Tables:
+    """Per-instrument constant arrays (bands flattened over channels)."""
+
+    def __init__(self, instrument: Instrument):
+        self.instrument = instrument
+        chans = instrument.channels
+        self.n_channels = len(chans)
+        band_channel, weight, k = [], [], []
+        for c, ch in enumerate(chans):
+            for band in ch.bands:
+                band_channel.append(c)
+                weight.append(band.weight)
+                k.append((band.dry, band.h2o, band.continuum))
+        self.band_channel = np.array(band_channel)  # [B]
+        self.weight = np.array(weight)  # [B]
+        self.k = np.array(k)  # [B, 3] [m2 kg-1]
+        a = np.empty(self.n_channels)
+        b = np.empty(self.n_channels)
+        for c, ch in enumerate(chans):
+            a[c], b[c] = planck_coefficients(
+                frequency_ghz=ch.frequency_ghz, wavenumber_cm1=ch.wavenumber_cm1
+            )
+        self.a, self.b = a, b  # [C]
+        # Channel sum as a matrix: R_c = sum_b W[c, b] R_b.
+        self.band_to_channel = np.zeros((self.n_channels, len(weight)))
+        self.band_to_channel[self.band_channel, np.arange(len(weight))] = self.weight
+        self.cosmic = planck(a, b, COSMIC_BACKGROUND_TEMPERATURE)  # [C]
+
+
+def _absorber_paths(inst: Instrument, p, t, q):
+    """Band-independent path factors D, W, Cn and their derivatives [kg m-2 ...].
+
+    Returns arrays [N, L-1]: the factor multiplying k_dry, k_h2o and k_cont in eq. 3, and
+    their partial derivatives with respect to the layer-mean temperature and humidity.
+    """
+    tm = 0.5 * (t[:, :-1] + t[:, 1:])  # eq. 1
+    qm = 0.5 * (q[:, :-1] + q[:, 1:])
+    pm = 0.5 * (p[:, :-1] + p[:, 1:])
+    dm = (p[:, :-1] - p[:, 1:]) * 100.0 / STANDARD_GRAVITY  # eq. 2
+    p_ref, t_ref = inst.reference_pressure_hpa, inst.reference_temperature_k
+
+    def law(absorber):
+        return (pm / p_ref) ** absorber.pressure_exponent * (t_ref / tm) ** absorber.temperature_exponent
+
+    f_dry, f_h2o = law(inst.dry), law(inst.h2o)
+    f_cont = (t_ref / tm) ** inst.continuum.temperature_exponent
+    denom = EPSILON + (1.0 - EPSILON) * qm
+    vap = qm * pm / denom  # e_j [hPa]
+    dvap_dq = pm * EPSILON / denom**2
+
+    dry = f_dry * (1.0 - qm) * dm
+    h2o = f_h2o * qm * dm
+    cont = f_cont * (vap / p_ref) * qm * dm
+    paths = np.stack([dry, h2o, cont])  # [3, N, L-1]
+    d_dt = np.stack(
+        [
+            -inst.dry.temperature_exponent * dry / tm,
+            -inst.h2o.temperature_exponent * h2o / tm,
+            -inst.continuum.temperature_exponent * cont / tm,
+        ]
+    )
+    d_dq = np.stack(
+        [-f_dry * dm, f_h2o * dm, f_cont / p_ref * dm * (dvap_dq * qm + vap)]
+    )
+    return tm, paths, d_dt, d_dq
+
+
+def transfer(
+    instrument,
+    pressure_hpa,
+    air_temperature,
+    specific_humidity,
+    surface_temperature,
+    surface_emissivity,
+    sensor_zenith_angle,
+    *,
+    jacobian: bool = False,
+    block_size: int = DEFAULT_BLOCK_SIZE,
+) -> dict:
+    """Brightness temperatures (and exact Jacobians) of the gray-band model, eqs. 1-6.
+
+    All arrays surface-first, canonical units, already validated.
+
+    Parameters
+    ----------
+    instrument : Instrument or str
+    pressure_hpa : ndarray [N, L] or [L]
+        Level pressure [hPa], strictly decreasing along the level axis.
+    air_temperature : ndarray [N, L]
+        [K]
+    specific_humidity : ndarray [N, L]
+        [kg kg-1]
+    surface_temperature : ndarray [N]
+        Skin temperature [K].
+    surface_emissivity : ndarray [N, C]
+        [1]
+    sensor_zenith_angle : ndarray [N]
+        [degree]
+    jacobian : bool
+        Also return the Jacobians.
+    block_size : int
+        Profiles per vectorised block (memory bound only; results do not depend on it).
+
+    Returns
+    -------
+    dict
+        ``brightness_temperature`` [N, C] [K]; with ``jacobian``: ``jacobian_air_temperature``
+        [N, C, L] [K K-1], ``jacobian_specific_humidity`` [N, C, L] [K (kg kg-1)-1],
+        ``jacobian_surface_temperature`` [N, C] [K K-1], ``jacobian_surface_emissivity``
+        [N, C] [K].
+    """
+    inst = load_instrument(instrument)
+    tables = _Tables(inst)
+    t = np.atleast_2d(np.asarray(air_temperature, dtype=float))
+    n, nlev = t.shape
+    p = np.broadcast_to(np.asarray(pressure_hpa, dtype=float), (n, nlev))
+    q = np.asarray(specific_humidity, dtype=float).reshape(n, nlev)
+    ts = np.asarray(surface_temperature, dtype=float).reshape(n)
+    em = np.broadcast_to(np.asarray(surface_emissivity, dtype=float).reshape(n, -1), (n, tables.n_channels))
+    zen = np.asarray(sensor_zenith_angle, dtype=float).reshape(n)
+    out = {"brightness_temperature": np.empty((n, tables.n_channels))}
+    if jacobian:
+        out["jacobian_air_temperature"] = np.empty((n, tables.n_channels, nlev))
+        out["jacobian_specific_humidity"] = np.empty((n, tables.n_channels, nlev))
+        out["jacobian_surface_temperature"] = np.empty((n, tables.n_channels))
+        out["jacobian_surface_emissivity"] = np.empty((n, tables.n_channels))
+    for start in range(0, n, max(1, block_size)):
+        sl = slice(start, min(n, start + block_size))
+        block = _transfer_block(tables, p[sl], t[sl], q[sl], ts[sl], em[sl], zen[sl], jacobian)
+        for key, value in block.items():
+            out[key][sl] = value
+    return out
+
+
+def _transfer_block(tables: _Tables, p, t, q, ts, em, zen, jacobian):
+    inst = tables.instrument
+    bc = tables.band_channel
+    mu = np.cos(np.deg2rad(zen))[:, None, None]  # [N, 1, 1]
+    tm, paths, d_dt, d_dq = _absorber_paths(inst, p, t, q)
+    # eq. 3, slant: tau[n, b, j]
+    tau = np.einsum("bk,knj->nbj", tables.k, paths) / mu
+    a_b, b_b = tables.a[bc][None, :, None], tables.b[bc][None, :, None]
+    e_b = em[:, bc][:, :, None]  # [N, B, 1]
+
+    # eq. 4: cumulative depths from the top (t) and from the surface (s)
+    zeros = np.zeros(tau.shape[:2] + (1,))
+    above = np.concatenate([np.cumsum(tau[:, :, ::-1], axis=2)[:, :, ::-1], zeros], axis=2)
+    below = np.concatenate([zeros, np.cumsum(tau, axis=2)], axis=2)
+    t_up = np.exp(-above)  # [N, B, L]
+    s_dn = np.exp(-below)
+    total = t_up[:, :, :1]  # t_0 = s_L-1, [N, B, 1]
+
+    planck_layer = planck(tables.a[None, :, None], tables.b[None, :, None], tm[:, None, :])[:, bc]
+    planck_sfc = planck(tables.a[None, :], tables.b[None, :], ts[:, None])[:, bc][:, :, None]
+    cosmic = tables.cosmic[bc][None, :, None]
+
+    up_step = t_up[:, :, 1:] - t_up[:, :, :-1]  # t_j+1 - t_j, [N, B, L-1]
+    dn_step = s_dn[:, :, :-1] - s_dn[:, :, 1:]  # s_j - s_j+1
+    upwelling = np.sum(planck_layer * up_step, axis=2, keepdims=True)
+    downwelling = np.sum(planck_layer * dn_step, axis=2, keepdims=True)
+    reflected = downwelling + cosmic * total
+    radiance_b = e_b * planck_sfc * total + upwelling + (1.0 - e_b) * total * reflected  # eq. 5
+    radiance = np.einsum("cb,nb->nc", tables.band_to_channel, radiance_b[:, :, 0])  # eq. 6
+    bt = inverse_planck(tables.a[None, :], tables.b[None, :], radiance)
+    result = {"brightness_temperature": bt}
+    if not jacobian:
+        return result
+
+    # dBT/dR from the inverse Planck function.
+    dbt_drad = 1.0 / planck_derivative(tables.a[None, :], tables.b[None, :], bt)  # [N, C]
+
+    # dR_b / d tau_k (derivation in DEVELOPERS.md, "Jacobians of the physical model")
+    up_contrib = planck_layer * up_step
+    up_cum = np.cumsum(up_contrib, axis=2) - up_contrib  # sum_{j<k}
+    dn_contrib = planck_layer * dn_step
+    dn_cum = np.cumsum(dn_contrib[:, :, ::-1], axis=2)[:, :, ::-1] - dn_contrib  # sum_{j>k}
+    dr_dtau = (
+        -e_b * planck_sfc * total
+        + planck_layer * t_up[:, :, :-1]
+        - up_cum
+        + (1.0 - e_b) * total * (-downwelling - 2.0 * cosmic * total + planck_layer * s_dn[:, :, 1:] - dn_cum)
+    )
+    dr_dplanck = up_step + (1.0 - e_b) * total * dn_step
+    dplanck_dtm = planck_derivative(tables.a[None, :, None], tables.b[None, :, None], tm[:, None, :])[:, bc]
+    dtau_dtm = np.einsum("bk,knj->nbj", tables.k, d_dt) / mu
+    dtau_dqm = np.einsum("bk,knj->nbj", tables.k, d_dq) / mu
+    dr_dtm = dr_dplanck * dplanck_dtm + dr_dtau * dtau_dtm  # [N, B, L-1]
+    dr_dqm = dr_dtau * dtau_dqm
+
+    # Sum sub-bands into channels, then spread layer derivatives onto the two levels.
+    def to_channels(x):  # dBT_c = dBT/dR_c * sum_b w_b dR_b
+        return np.einsum("cb,nbj->ncj", tables.band_to_channel, x) * dbt_drad[:, :, None]
+
+    layer_t = to_channels(dr_dtm)
+    layer_q = to_channels(dr_dqm)
+    result["jacobian_air_temperature"] = _layers_to_levels(layer_t)
+    result["jacobian_specific_humidity"] = _layers_to_levels(layer_q)
+    dr_dts = e_b * total * planck_derivative(a_b, b_b, ts[:, None, None])
+    dr_dem = planck_sfc * total - total * reflected
+    result["jacobian_surface_temperature"] = to_channels(dr_dts)[:, :, 0]
+    result["jacobian_surface_emissivity"] = to_channels(dr_dem)[:, :, 0]
+    return result
+
+
+def _layers_to_levels(layer):
+    """Chain d/d(layer mean) onto levels: each layer mean is half of its two levels."""
+    n, c, nl = layer.shape
+    level = np.zeros((n, c, nl + 1))
+    level[:, :, :-1] += 0.5 * layer
+    level[:, :, 1:] += 0.5 * layer
+    return level
+
+
+# -- labelled entry points ------------------------------------------------------------------
+_OUTPUT_ATTRS = {
+    "brightness_temperature": {
+        "standard_name": "toa_brightness_temperature",
+        "long_name": "top-of-atmosphere brightness temperature",
+        "units": "K",
+    },
+    "jacobian_air_temperature": {
+        "long_name": "derivative of brightness temperature with respect to air temperature",
+        "units": "K K-1",
+    },
+    "jacobian_specific_humidity": {
+        "long_name": "derivative of brightness temperature with respect to specific humidity",
+        "units": "K (kg kg-1)-1",
+    },
+    "jacobian_surface_temperature": {
+        "long_name": "derivative of brightness temperature with respect to surface temperature",
+        "units": "K K-1",
+    },
+    "jacobian_surface_emissivity": {
+        "long_name": "derivative of brightness temperature with respect to surface emissivity",
+        "units": "K",
+    },
+}
+
+
+def output_attrs(name: str) -> dict:
+    """CF attributes of an operator output variable."""
+    return dict(_OUTPUT_ATTRS[name])
+
+
+def label_outputs(arrays: dict, dataset: xr.Dataset, channel_ids, flag: np.ndarray) -> xr.Dataset:
+    """Wrap operator output arrays [N, C(, L)] into a labelled Dataset.
+
+    Profile and level coordinates of ``dataset`` are carried over; ``channel`` holds the ids.
+    """
+    coords = {"channel": ("channel", np.array(list(channel_ids), dtype=object))}
+    for dim in ("profile", "level"):
+        if dim in dataset.coords:
+            coords[dim] = dataset.coords[dim]
+    data_vars = {}
+    for name, values in arrays.items():
+        dims = ("profile", "channel", "level") if values.ndim == 3 else ("profile", "channel")
+        data_vars[name] = (dims, values, output_attrs(name))
+    data_vars["quality_flag"] = (("profile", "channel"), flag.astype(np.int32), _flags.flag_attrs())
+    return xr.Dataset(data_vars, coords=coords)
+
+
+def _compute(instrument, dataset, jacobian, errors, block_size):
+    inst = load_instrument(instrument)
+    prep = prepare_inputs(dataset, inst.channel_ids, errors=errors)
+    arrays = transfer(
+        inst,
+        prep.pressure_hpa,
+        prep.air_temperature,
+        prep.specific_humidity,
+        prep.surface_temperature,
+        prep.surface_emissivity,
+        prep.sensor_zenith_angle,
+        jacobian=jacobian,
+        block_size=block_size,
+    )
+    for name in ("jacobian_air_temperature", "jacobian_specific_humidity"):
+        if name in arrays:
+            arrays[name] = prep.to_caller_order(arrays[name])
+    flag = np.where(prep.valid, 0, _flags.INVALID_INPUT)[:, None] * np.ones(len(inst.channels), np.int32)
+    for values in arrays.values():
+        values[~prep.valid] = np.nan
+    return inst, prep, arrays, flag
+
+
+def simulate(
+    instrument,
+    dataset: xr.Dataset,
+    jacobian: bool = False,
+    *,
+    errors: Literal["raise", "mask"] = "raise",
+    block_size: int = DEFAULT_BLOCK_SIZE,
+) -> xr.Dataset:
+    """Brightness temperatures (and Jacobians) of ``dataset`` with the physical model.
+
+    Parameters
+    ----------
+    instrument : Instrument or str
+        An instrument or the name/path of one (see :func:`rtemu.load_instrument`).
+    dataset : xarray.Dataset
+        ``air_pressure`` (level) or (profile, level) [hPa]; ``air_temperature`` (profile,
+        level) [K]; ``specific_humidity`` (profile, level) [kg kg-1];
+        ``surface_temperature`` (profile) [K]; ``surface_emissivity`` (profile) or
+        (profile, channel) [1]; ``sensor_zenith_angle`` (profile) [degree]. Other units
+        are converted from each variable's ``units`` attribute. Levels surface-first or
+        top-first.
+    jacobian : bool
+        Also return ``jacobian_*`` variables (in the caller's level order and units of
+        the canonical inputs: K, kg kg-1).
+    errors : {"raise", "mask"}
+        * ``"raise"``: invalid input raises ValueError naming variable, rule and profile.
+        * ``"mask"``: invalid profiles get NaN outputs and the ``invalid_input`` flag; the
+          others are computed exactly as they would be alone.
+    block_size : int
+        Profiles per vectorised block (memory only).
+
+    Returns
+    -------
+    xarray.Dataset
+        ``brightness_temperature`` (profile, channel) [K], ``quality_flag`` (profile,
+        channel), and with ``jacobian`` the four ``jacobian_*`` variables.
+    """
+    inst, prep, arrays, flag = _compute(instrument, dataset, jacobian, errors, block_size)
+    out = label_outputs(arrays, dataset, inst.channel_ids, flag)
+    if prep.problems:
+        out.attrs["invalid_input_summary"] = "; ".join(prep.problems)
+    return out
+
+
+_INCREMENT_VARIABLES = (
+    "air_temperature",
+    "specific_humidity",
+    "surface_temperature",
+    "surface_emissivity",
+)
+
+
+def tangent_linear(
+    instrument, dataset: xr.Dataset, perturbation: xr.Dataset, *, errors="raise"
+) -> xr.Dataset:
+    """Tangent-linear product J dx: brightness-temperature increments [K].
+
+    Parameters
+    ----------
+    perturbation : xarray.Dataset
+        Increments of any of ``air_temperature``, ``specific_humidity`` (profile, level),
+        ``surface_temperature`` (profile), ``surface_emissivity`` (profile) or (profile,
+        channel), in the units of the corresponding ``dataset`` variable (missing = 0).
+
+    Returns
+    -------
+    xarray.Dataset
+        ``brightness_temperature`` (profile, channel) [K] increments and ``quality_flag``.
+    """
+    inst, prep, arrays, flag = _compute(instrument, dataset, True, errors, DEFAULT_BLOCK_SIZE)
+    dy = tangent_linear_arrays(arrays, _increments(prep, perturbation, dataset))
+    return label_outputs({"brightness_temperature": dy}, dataset, inst.channel_ids, flag)
+
+
+def adjoint(
+    instrument, dataset: xr.Dataset, bt_perturbation, *, errors="raise"
+) -> xr.Dataset:
+    """Adjoint product J^T dy: gradients of <dy, BT> with respect to the inputs.
+
+    Parameters
+    ----------
+    bt_perturbation : xarray.DataArray or Dataset
+        (profile, channel) [K] (a Dataset must hold ``brightness_temperature``).
+
+    Returns
+    -------
+    xarray.Dataset
+        ``air_temperature``, ``specific_humidity`` (profile, level), ``surface_temperature``
+        (profile), ``surface_emissivity`` (as in ``dataset``), each in [K per unit of the
+        ``dataset`` variable].
+    """
+    inst, prep, arrays, flag = _compute(instrument, dataset, True, errors, DEFAULT_BLOCK_SIZE)
+    dy = _bt_array(bt_perturbation, inst.channel_ids, prep.valid.size)
+    grads = adjoint_arrays(arrays, dy)
+    return _label_gradients(grads, prep, dataset)
+
+
+def tangent_linear_arrays(arrays: dict, dx: dict) -> np.ndarray:
+    """J dx from Jacobian arrays [N, C(, L)] and increments (canonical units) [K]."""
+    dy = np.einsum("ncl,nl->nc", arrays["jacobian_air_temperature"], dx["air_temperature"])
+    dy += np.einsum("ncl,nl->nc", arrays["jacobian_specific_humidity"], dx["specific_humidity"])
+    dy += arrays["jacobian_surface_temperature"] * dx["surface_temperature"][:, None]
+    dy += arrays["jacobian_surface_emissivity"] * dx["surface_emissivity"]
+    return dy
+
+
+def adjoint_arrays(arrays: dict, dy: np.ndarray) -> dict:
+    """J^T dy from Jacobian arrays [N, C(, L)] and BT perturbations dy [N, C] [K]."""
+    return {
+        "air_temperature": np.einsum("ncl,nc->nl", arrays["jacobian_air_temperature"], dy),
+        "specific_humidity": np.einsum("ncl,nc->nl", arrays["jacobian_specific_humidity"], dy),
+        "surface_temperature": np.sum(arrays["jacobian_surface_temperature"] * dy, axis=1),
+        "surface_emissivity": arrays["jacobian_surface_emissivity"] * dy,
+    }
+
+
+def _increments(prep, perturbation: xr.Dataset, dataset: xr.Dataset) -> dict:
+    """Increments in canonical units (unit scale only; offsets cancel in a difference)."""
+    n, nlev = prep.air_temperature.shape
+    nchan = prep.surface_emissivity.shape[1]
+    unknown = sorted(set(perturbation.data_vars) - set(_INCREMENT_VARIABLES))
+    if unknown:
+        raise ValueError(f"perturbation: unknown variable(s) {unknown}; allowed {list(_INCREMENT_VARIABLES)}")
+    shapes = {"air_temperature": ("profile", "level"), "specific_humidity": ("profile", "level"),
+              "surface_temperature": ("profile",)}
+    dx = {}
+    for name, dims in shapes.items():
+        if name in perturbation:
+            values = np.asarray(perturbation[name].transpose(*dims).values, dtype=float)
+            dx[name] = values * prep.scales[name]
+        else:
+            dx[name] = np.zeros((n, nlev) if len(dims) == 2 else n)
+    if "surface_emissivity" in perturbation:
+        da = perturbation["surface_emissivity"]
+        if "channel" in da.dims:
+            values = np.asarray(da.transpose("profile", "channel").values, dtype=float)
+        else:
+            values = np.repeat(np.asarray(da.values, dtype=float)[:, None], nchan, axis=1)
+        dx["surface_emissivity"] = values
+    else:
+        dx["surface_emissivity"] = np.zeros((n, nchan))
+    for name in ("air_temperature", "specific_humidity"):  # caller's level order, like J
+        if dx[name].shape != (n, nlev):
+            raise ValueError(f"perturbation: {name} has shape {dx[name].shape}, expected {(n, nlev)}")
+    return dx
+
+
+def _bt_array(bt_perturbation, channel_ids, n) -> np.ndarray:
+    da = bt_perturbation["brightness_temperature"] if isinstance(bt_perturbation, xr.Dataset) else bt_perturbation
+    if "channel" in da.coords:
+        da = da.sel(channel=list(channel_ids))
+    values = np.asarray(da.transpose("profile", "channel").values, dtype=float)
+    if values.shape != (n, len(channel_ids)):
+        raise ValueError(f"bt_perturbation: shape {values.shape}, expected {(n, len(channel_ids))}")
+    return values
+
+
+def _label_gradients(grads: dict, prep, dataset: xr.Dataset) -> xr.Dataset:
+    data_vars = {}
+    for name, dims in (("air_temperature", ("profile", "level")),
+                       ("specific_humidity", ("profile", "level")),
+                       ("surface_temperature", ("profile",))):
+        data_vars[name] = (dims, grads[name] * prep.scales[name],
+                           {"long_name": f"adjoint gradient with respect to {name}"})
+    em = grads["surface_emissivity"]
+    if prep.emissivity_per_channel:
+        data_vars["surface_emissivity"] = (("profile", "channel"), em,
+                                           {"long_name": "adjoint gradient with respect to surface_emissivity"})
+    else:
+        data_vars["surface_emissivity"] = (("profile",), em.sum(axis=1),
+                                           {"long_name": "adjoint gradient with respect to surface_emissivity"})
+    coords = {d: dataset.coords[d] for d in ("profile", "level") if d in dataset.coords}
+    return xr.Dataset(data_vars, coords=coords)
+
+
+def weighting_functions(
+    instrument, pressure_hpa, air_temperature, specific_humidity, sensor_zenith_angle=0.0
+):
+    """Temperature weighting functions W_j = (t_j+1 - t_j) / (ln p_j - ln p_j+1) [1].
+
+    The band-weighted change of level-to-space transmittance per unit ln p across each
+    layer (eq. 4), for one profile.
+
+    Parameters
+    ----------
+    pressure_hpa, air_temperature, specific_humidity : ndarray [L]
+        Surface-first profile [hPa], [K], [kg kg-1].
+    sensor_zenith_angle : float
+        [degree]
+
+    Returns
+    -------
+    layer_pressure : ndarray [L-1]
+        Layer-mean pressure [hPa].
+    weights : ndarray [C, L-1]
+        Weighting function per channel [1].
+    """
+    inst = load_instrument(instrument)
+    tables = _Tables(inst)
+    p = np.asarray(pressure_hpa, dtype=float)[None, :]
+    t = np.asarray(air_temperature, dtype=float)[None, :]
+    q = np.asarray(specific_humidity, dtype=float)[None, :]
+    mu = np.cos(np.deg2rad(sensor_zenith_angle))
+    _, paths, _, _ = _absorber_paths(inst, p, t, q)
+    tau = np.einsum("bk,knj->nbj", tables.k, paths)[0] / mu  # [B, L-1]
+    above = np.concatenate([np.cumsum(tau[:, ::-1], axis=1)[:, ::-1], np.zeros((tau.shape[0], 1))], axis=1)
+    trans = np.exp(-above)
+    dlnp = np.log(p[0, :-1]) - np.log(p[0, 1:])
+    per_band = (trans[:, 1:] - trans[:, :-1]) / dlnp
+    return 0.5 * (p[0, :-1] + p[0, 1:]), tables.band_to_channel @ per_band
