@@ -1,0 +1,197 @@
+"""Tests of rtemu.atmosphere against published standards, tables and reference libraries."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from fluids.atmosphere import ATMOSPHERE_1976
+
+from rtemu import atmosphere as atm
+from rtemu.constants import EPSILON, STANDARD_GRAVITY
+
+# --- U.S. Standard Atmosphere 1976 ----------------------------------------------------
+
+# Geometric heights [m] spanning all seven layers up to 86 km.
+FLUIDS_HEIGHTS_M = [0.0, 1500.0, 5000.0, 10000.0, 11019.0, 15000.0, 20063.0, 26000.0,
+                    32162.0, 40000.0, 47350.0, 49000.0, 51412.0, 60000.0, 71802.0,
+                    78000.0, 84000.0, 86000.0]
+
+
+@pytest.mark.parametrize("z", FLUIDS_HEIGHTS_M)
+def test_us1976_temperature_matches_fluids(z):
+    # Reference library: fluids.atmosphere.ATMOSPHERE_1976 (an independent implementation
+    # of NOAA-S/T 76-1562), queried at a geometric height; we go in by its pressure.
+    ref = ATMOSPHERE_1976(z)
+    p_hpa = ref.P / 100.0
+    assert atm.us_standard_atmosphere_1976(p_hpa) == pytest.approx(ref.T, abs=2e-4)  # fluids rounds 186.946 K
+    # fluids' .H is the geopotential height of the same level.
+    assert atm.us_standard_atmosphere_1976_height(p_hpa) == pytest.approx(ref.H, abs=1e-3)
+    assert atm.geometric_height(ref.H) == pytest.approx(z, abs=1e-3)
+
+
+# U.S. Standard Atmosphere, 1976 (NOAA-S/T 76-1562), Table 4 layer bases (geopotential
+# height [m'], temperature [K], pressure [hPa]) (from memory).
+US76_LAYER_BASES = [
+    (0.0, 288.15, 1013.25),
+    (11000.0, 216.65, 226.32),
+    (20000.0, 216.65, 54.749),
+    (32000.0, 228.65, 8.6802),
+    (47000.0, 270.65, 1.1091),
+    (51000.0, 270.65, 0.66939),
+    (71000.0, 214.65, 0.039564),
+]
+
+
+@pytest.mark.parametrize("height, temperature, pressure", US76_LAYER_BASES)
+def test_us1976_layer_bases_match_published_table(height, temperature, pressure):
+    # The table gives 5 significant figures of pressure: relative 5e-5.
+    assert atm.us_standard_atmosphere_1976_height(pressure) == pytest.approx(height, abs=1.0)
+    assert atm.us_standard_atmosphere_1976(pressure) == pytest.approx(temperature, abs=0.01)
+
+
+def test_us1976_published_geometric_heights():
+    # NOAA-S/T 76-1562 Table I (geometric altitude) (from memory): 5 km: 255.676 K,
+    # 540.48 hPa; 10 km: 223.252 K, 265.00 hPa; 86 km: 186.87 K, 3.7338e-3 hPa.
+    for z, t, p in [(5000.0, 255.676, 540.48), (10000.0, 223.252, 265.00)]:
+        assert atm.geometric_height(atm.us_standard_atmosphere_1976_height(p)) == pytest.approx(z, abs=2.0)
+        assert atm.us_standard_atmosphere_1976(p) == pytest.approx(t, abs=0.02)
+    # At 86 km the table's kinetic temperature is 0.08 K below the molecular-scale
+    # temperature 186.946 K that the module returns (documented).
+    assert atm.geometric_height(atm.us_standard_atmosphere_1976_height(3.7338e-3)) == pytest.approx(86000.0, abs=5.0)
+    assert atm.us_standard_atmosphere_1976(3.7338e-3) == pytest.approx(186.87, abs=0.1)
+
+
+def test_us1976_shapes_and_bad_input():
+    p = atm.default_pressure_grid()
+    assert np.ndim(atm.us_standard_atmosphere_1976(500.0)) == 0
+    assert atm.us_standard_atmosphere_1976(p).shape == p.shape
+    batch = np.stack([p, p])
+    assert atm.us_standard_atmosphere_1976(batch).shape == batch.shape
+    # monotone height in pressure (hydrostatic)
+    assert np.all(np.diff(atm.us_standard_atmosphere_1976_height(p)) > 0)
+    with pytest.raises(ValueError, match="pressure_hpa"):
+        atm.us_standard_atmosphere_1976([500.0, -1.0])
+    with pytest.raises(ValueError, match="pressure_hpa"):
+        atm.us_standard_atmosphere_1976(np.nan)
+
+
+# --- saturation vapour pressure -------------------------------------------------------
+
+def _murphy_koop_liquid_hpa(t):
+    """Murphy & Koop (2005, Q. J. R. Meteorol. Soc. 131, 1539-1565) eq. 10, over liquid
+    water, 123 K < T < 332 K, an independent formulation (coefficients from memory,
+    confirmed by reproducing the triple-point pressure 611.657 Pa below)."""
+    t = np.asarray(t, dtype=float)
+    ln_e = (54.842763 - 6763.22 / t - 4.210 * np.log(t) + 0.000367 * t
+            + np.tanh(0.0415 * (t - 218.8))
+            * (53.878 - 1331.22 / t - 9.44523 * np.log(t) + 0.014025 * t))
+    return np.exp(ln_e) / 100.0
+
+
+def test_reference_formula_reproduces_triple_point():
+    # Triple point of water 611.657 Pa at 273.16 K (IAPWS; Murphy & Koop 2005 Table 1).
+    assert _murphy_koop_liquid_hpa(273.16) == pytest.approx(6.11657, rel=1e-5)
+
+
+def test_bolton_within_stated_accuracy():
+    # Bolton (1980) states eq. 10 is accurate to 0.3 % for -35 degC <= T <= 35 degC
+    # (from memory); checked against Murphy & Koop (2005) eq. 10.
+    t = np.linspace(273.15 - 35.0, 273.15 + 35.0, 141)
+    rel = atm.saturation_vapour_pressure(t) / _murphy_koop_liquid_hpa(t) - 1.0
+    assert np.max(np.abs(rel)) < 3e-3
+
+
+@pytest.mark.parametrize("celsius, table_hpa", [(0.0, 6.1078), (20.0, 23.373), (30.0, 42.430),
+                                                (-20.0, 1.2540), (10.0, 12.272)])
+def test_bolton_against_smithsonian_table(celsius, table_hpa):
+    # Smithsonian Meteorological Tables (List 1951, Goff-Gratch over water) (from memory).
+    assert atm.saturation_vapour_pressure(273.15 + celsius) == pytest.approx(table_hpa, rel=3e-3)
+
+
+def test_bolton_definition_point_and_dewpoint_inverse():
+    # eq. 10 gives exactly 6.112 hPa at 0 degC by construction (Bolton 1980).
+    assert atm.saturation_vapour_pressure(273.15) == pytest.approx(6.112, rel=1e-12)
+    t = np.array([150.0, 200.0, 250.0, 300.0, 330.0])
+    assert atm.dewpoint_from_vapour_pressure(atm.saturation_vapour_pressure(t)) == pytest.approx(t, rel=1e-12)
+
+
+def test_saturation_vapour_pressure_rejects_out_of_validity():
+    with pytest.raises(ValueError, match="temperature"):
+        atm.saturation_vapour_pressure([250.0, 50.0])
+    with pytest.raises(ValueError, match=r"index \(1,\)"):
+        atm.saturation_vapour_pressure([250.0, np.nan])
+
+
+# --- humidity conversions --------------------------------------------------------------
+
+def test_vapour_pressure_textbook_relation():
+    # Wallace & Hobbs (2006) eq. 3.59 with q = w / (1 + w): w = eps e / (p - e).
+    e, p = 20.0, 1000.0
+    w = EPSILON * e / (p - e)
+    q = w / (1.0 + w)
+    assert atm.vapour_pressure(q, p) == pytest.approx(e, rel=1e-12)
+    assert atm.specific_humidity_from_vapour_pressure(e, p) == pytest.approx(q, rel=1e-12)
+
+
+def test_relative_humidity_round_trip_scalar_profile_batch():
+    p = atm.default_pressure_grid()[:40]
+    t = atm.us_standard_atmosphere_1976(p)
+    rh = np.linspace(0.0, 1.0, p.size)
+    q = atm.specific_humidity_from_relative_humidity(rh, t, p)
+    assert atm.relative_humidity(q, t, p) == pytest.approx(rh, abs=1e-12)
+    batch_rh = np.stack([rh, rh[::-1]])
+    qb = atm.specific_humidity_from_relative_humidity(batch_rh, t, p)
+    assert qb.shape == (2, p.size)
+    assert atm.relative_humidity(qb, t, p) == pytest.approx(batch_rh, abs=1e-12)
+    q0 = atm.specific_humidity_from_relative_humidity(0.5, 290.0, 1000.0)
+    assert np.ndim(q0) == 0
+    # 50 % at 290 K, 1000 hPa against the independent Murphy & Koop (2005) es and the
+    # textbook relation q = eps e / (p - (1 - eps) e) (Wallace & Hobbs 2006).
+    e = 0.5 * _murphy_koop_liquid_hpa(290.0)
+    assert q0 == pytest.approx(EPSILON * e / (1000.0 - (1.0 - EPSILON) * e), rel=3e-3)
+
+
+def test_saturation_specific_humidity_and_unreachable_saturation():
+    assert atm.saturation_specific_humidity(300.0, 1000.0) == pytest.approx(
+        atm.specific_humidity_from_relative_humidity(1.0, 300.0, 1000.0), rel=1e-12)
+    # es(300 K) = 35 hPa exceeds 10 hPa: saturation cannot be reached.
+    assert np.isinf(atm.saturation_specific_humidity(300.0, 10.0))
+    with pytest.raises(ValueError, match="vapour pressure"):
+        atm.specific_humidity_from_relative_humidity(1.0, 300.0, 10.0)
+    with pytest.raises(ValueError, match="relative humidity"):
+        atm.specific_humidity_from_relative_humidity(-0.1, 300.0, 1000.0)
+
+
+# --- column water ----------------------------------------------------------------------
+
+def test_total_column_water_vapour_analytic():
+    # Uniform q over a column from 1000 to 0 hPa: W = q * 1e5 Pa / g (hydrostatics).
+    p = np.linspace(1000.0, 0.0, 11)
+    assert atm.total_column_water_vapour(p, np.full(11, 0.01)) == pytest.approx(0.01 * 1e5 / STANDARD_GRAVITY)
+    # Linear q in p: the trapezoid rule is exact, W = mean(q) * dp / g.
+    q = 0.02 * p / 1000.0
+    expected = 0.5 * (0.02 + 0.0) * 1e5 / STANDARD_GRAVITY
+    assert atm.total_column_water_vapour(p, q) == pytest.approx(expected, rel=1e-12)
+    # Level order does not matter; batches keep their leading shape.
+    assert atm.total_column_water_vapour(p[::-1], q[::-1]) == pytest.approx(expected, rel=1e-12)
+    batch = atm.total_column_water_vapour(p, np.stack([q, 2 * q, 3 * q]))
+    assert batch == pytest.approx([expected, 2 * expected, 3 * expected], rel=1e-12)
+
+
+# --- the demo grid --------------------------------------------------------------------
+
+def test_default_pressure_grid_properties():
+    p = atm.default_pressure_grid()
+    assert p.shape == (60,)
+    assert p[0] == 1013.25 and p[-1] == 0.5
+    assert np.all(np.diff(p) < 0)
+    # boundary layer spacing <= 25 hPa below 850 hPa
+    near_surface = p[p > 850.0]
+    assert np.all(-np.diff(near_surface) <= 25.0)
+    # log-like aloft: the ln-p step grows monotonically and stays below 0.4 (~2.8 km)
+    step = np.log(p[:-1] / p[1:])
+    assert np.all(np.diff(step) > 0)
+    assert step.max() < 0.4
+    # the documented coordinate is equally spaced
+    eta = 15.0 * (1.0 - p / 1013.25) + np.log(1013.25 / p)
+    assert np.diff(eta) == pytest.approx(np.full(59, eta[-1] / 59), rel=1e-9)
