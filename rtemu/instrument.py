@@ -164,7 +164,11 @@ class Instrument:
 
 
 def _toml_str(value: str) -> str:
-    escaped = value.replace("\\", "\\\\").replace('"', '\\"').replace("\n", "\\n")
+    # TOML basic strings may not hold raw control characters (U+0000-U+001F, U+007F).
+    escaped = value.replace("\\", "\\\\").replace('"', '\\"')
+    escaped = "".join(
+        f"\\u{ord(ch):04x}" if ord(ch) < 0x20 or ord(ch) == 0x7F else ch for ch in escaped
+    )
     return f'"{escaped}"'
 
 
