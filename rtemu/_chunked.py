@@ -19,9 +19,10 @@ import sys
 from pathlib import Path
 from typing import Callable
 
+import dask
 import xarray as xr
 
-from rtemu._io import open_dataset, to_netcdf_atomic, write_text_atomic
+from rtemu._io import atomic_path, open_dataset, to_netcdf_atomic, write_text_atomic
 
 MANIFEST = "manifest.json"
 
@@ -157,7 +158,14 @@ def assemble(paths: list[Path], output: Path, attrs: dict | None = None) -> None
         combined = xr.concat(parts, dim="profile", data_vars="minimal", coords="minimal",
                              compat="override", join="override")
         combined.attrs = dict(attrs or parts[0].attrs)
-        to_netcdf_atomic(combined, output)
+        # HDF5 places a variable's data where it is first written, so the file's bytes
+        # depend on write order. Writing one variable at a time, in a fixed order, with a
+        # synchronous scheduler makes them reproducible (and still streams chunk by chunk).
+        with atomic_path(output, suffix=".nc.partial") as tmp, dask.config.set(scheduler="synchronous"):
+            for index, name in enumerate(combined.data_vars):
+                piece = combined[[name]]
+                piece.attrs = combined.attrs if index == 0 else {}
+                piece.to_netcdf(tmp, mode="w" if index == 0 else "a", engine="h5netcdf")
     finally:
         for part in parts:
             part.close()

@@ -133,3 +133,199 @@ class PhysicalOperator(_OperatorBase):
         return _physics.simulate(
             self.instrument, dataset, jacobian, errors=self.errors, block_size=self.block_size
         )
+
+
+# -- emulator -----------------------------------------------------------------------------
+_SESSIONS: dict = {}
+_SESSIONS_LOCK = threading.Lock()
+
+
+def _session_for(path: str, digest: str, threads: int | None):
+    """One onnxruntime session per (file content, thread count) per process."""
+    import onnxruntime as ort
+
+    key = (path, digest, threads)
+    with _SESSIONS_LOCK:
+        session = _SESSIONS.get(key)
+        if session is None:
+            options = ort.SessionOptions()
+            if threads:
+                options.intra_op_num_threads = threads
+            options.inter_op_num_threads = 1
+            options.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+            session = ort.InferenceSession(path, sess_options=options, providers=["CPUExecutionProvider"])
+            _SESSIONS[key] = session
+    return session
+
+
+class EmulatedOperator(_OperatorBase):
+    """An rtemu ONNX bundle as an observation operator.
+
+    Create with :meth:`load`. Inputs are checked against the bundle (pressure grid,
+    channels), converted to canonical units and float32, run in batches and returned as
+    float64 in the schema of :func:`rtemu.physics.simulate`.
+
+    Parameters
+    ----------
+    path : str or Path
+        The bundle file (checked on load: ONNX validity, format version, metadata, weights
+        hash).
+    channels : sequence of str, optional
+        Serve only these channel ids (default: all of the bundle).
+    batch_size : int
+        Profiles per onnxruntime call [1].
+    threads : int, optional
+        onnxruntime intra-op threads (default: onnxruntime's choice).
+    fallback : {None, "physics"}
+        * ``None``: flagged profiles keep emulated values (and their flags).
+        * ``"physics"``: profiles outside the training envelope (flag bits
+          ``outside_training_bounds`` or ``novel_state``) are recomputed with the physical
+          model and get the ``physics_fallback`` bit.
+    errors : {"mask", "raise"}
+        * ``"mask"`` (default): invalid profiles get NaN outputs and ``invalid_input``.
+        * ``"raise"``: invalid input raises ValueError.
+    grid_tolerance_hpa : float
+        Largest accepted difference between the dataset's and the bundle's levels [hPa].
+    """
+
+    def __init__(self, *, path, channels=None, batch_size: int = 4096, threads: int | None = None,
+                 fallback: Literal[None, "physics"] = None, errors: ErrorMode = "mask",
+                 grid_tolerance_hpa: float = 1e-3):
+        from rtemu import bundle as _bundle
+
+        if fallback not in (None, "physics"):
+            raise ValueError(f"fallback must be None or 'physics', got {fallback!r}")
+        if batch_size < 1:
+            raise ValueError(f"batch_size must be >= 1, got {batch_size}")
+        self.path = str(path)
+        self.batch_size = int(batch_size)
+        self.threads = threads
+        self.fallback = fallback
+        self.errors = errors
+        self.grid_tolerance_hpa = float(grid_tolerance_hpa)
+        self.bundle = _bundle.read_bundle(self.path)
+        self.model_instrument = self.bundle.instrument
+        model_ids = self.model_instrument.channel_ids
+        self.instrument = (
+            self.model_instrument if channels is None else self.model_instrument.select(list(channels))
+        )
+        self._columns = np.array([model_ids.index(c) for c in self.instrument.channel_ids])
+        grid = np.asarray(self.bundle.pressure_hpa, dtype=float)
+        self._top_first = grid[0] < grid[-1]
+        self._grid_surface_first = grid[::-1] if self._top_first else grid
+        self._physics = None
+
+    @classmethod
+    def load(cls, path, **options) -> "EmulatedOperator":
+        """Open and check an rtemu ONNX bundle; ``options`` as in the class docstring."""
+        return cls(path=path, **options)
+
+    def __repr__(self):
+        return f"EmulatedOperator({self.path!r}, {len(self.channels)} channels)"
+
+    def __getstate__(self):  # the session is per process: never pickled
+        state = dict(self.__dict__)
+        state["_physics"] = None
+        return state
+
+    @property
+    def pressure_hpa(self) -> np.ndarray:
+        """The bundle's pressure grid, in the order its inputs use [hPa]."""
+        return np.asarray(self.bundle.pressure_hpa, dtype=float)
+
+    @property
+    def envelope(self) -> dict:
+        """The training envelope stored in the bundle."""
+        return self.bundle.envelope
+
+    def _session(self):
+        return _session_for(self.path, self.bundle.weights_sha256, self.threads)
+
+    def _check_grid(self, prep) -> None:
+        diff = np.abs(prep.pressure_hpa - self._grid_surface_first[None, :]) \
+            if prep.pressure_hpa.shape[1] == self._grid_surface_first.size else None
+        if diff is None:
+            raise ValueError(
+                f"air_pressure: {prep.pressure_hpa.shape[1]} levels, the emulator was trained on "
+                f"{self._grid_surface_first.size} (rule: the bundle's fixed pressure grid; "
+                "interpolate first)"
+            )
+        bad = (diff > self.grid_tolerance_hpa).any(axis=1) & prep.valid
+        if bad.any():
+            first = int(np.flatnonzero(bad)[0])
+            raise ValueError(
+                f"air_pressure: levels differ from the emulator's grid by up to "
+                f"{diff[first].max():.4g} hPa (rule: within {self.grid_tolerance_hpa:g} hPa of "
+                f"the bundle's grid); first offending profile index {first}"
+            )
+
+    def run_arrays(self, prep, jacobian: bool) -> dict:
+        """Run the session on prepared (surface-first, canonical) arrays, all channels.
+
+        Returns float64 arrays over the bundle's channels, surface-first levels.
+        """
+        session = self._session()
+        n = prep.air_temperature.shape[0]
+        order = slice(None, None, -1) if self._top_first else slice(None)
+        nmodel = len(self.model_instrument.channels)
+        emissivity = np.full((n, nmodel), 0.95)
+        emissivity[:, self._columns] = prep.surface_emissivity
+        feeds_all = {
+            "air_temperature": prep.air_temperature[:, order].astype(np.float32),
+            "specific_humidity": prep.specific_humidity[:, order].astype(np.float32),
+            "surface_temperature": prep.surface_temperature.astype(np.float32),
+            "surface_emissivity": emissivity.astype(np.float32),
+            "sensor_zenith_angle": prep.sensor_zenith_angle.astype(np.float32),
+        }
+        names = ["brightness_temperature", "quality_flag"]
+        if jacobian:
+            names += list(_physics.JACOBIAN_NAMES)
+        out = {}
+        for start in range(0, n, self.batch_size):
+            sl = slice(start, min(n, start + self.batch_size))
+            result = session.run(names, {k: v[sl] for k, v in feeds_all.items()})
+            for name, value in zip(names, result):
+                out.setdefault(name, []).append(value)
+        arrays = {k: np.concatenate(v).astype(np.float64 if k != "quality_flag" else np.int32)
+                  for k, v in out.items()}
+        for name in ("jacobian_air_temperature", "jacobian_specific_humidity"):
+            if name in arrays:
+                arrays[name] = arrays[name][:, :, order]
+        return arrays
+
+    def _simulate_eager(self, dataset, jacobian):
+        prep = prepare_inputs(dataset, self.channels, errors=self.errors)
+        self._check_grid(prep)
+        arrays = self.run_arrays(prep, jacobian)
+        cols = self._columns
+        flag = arrays.pop("quality_flag")[:, cols]
+        arrays = {k: v[:, cols] for k, v in arrays.items()}
+        if self.fallback == "physics":
+            outside = (flag & (_flags.OUTSIDE_TRAINING_BOUNDS | _flags.NOVEL_STATE)).any(axis=1) & prep.valid
+            if outside.any():
+                self._recompute_with_physics(prep, outside, arrays, jacobian)
+                flag[outside] |= _flags.PHYSICS_FALLBACK
+        for name in ("jacobian_air_temperature", "jacobian_specific_humidity"):
+            if name in arrays:
+                arrays[name] = prep.to_caller_order(arrays[name])
+        flag[~prep.valid] |= _flags.INVALID_INPUT
+        for values in arrays.values():
+            values[~prep.valid] = np.nan
+        out = _physics.label_outputs(arrays, dataset, self.channels, flag)
+        if prep.problems:
+            out.attrs["invalid_input_summary"] = "; ".join(prep.problems)
+        return out
+
+    def _recompute_with_physics(self, prep, rows, arrays, jacobian):
+        exact = _physics.transfer(
+            self.instrument,
+            prep.pressure_hpa[rows],
+            prep.air_temperature[rows],
+            prep.specific_humidity[rows],
+            prep.surface_temperature[rows],
+            prep.surface_emissivity[rows],
+            prep.sensor_zenith_angle[rows],
+            jacobian=jacobian,
+        )
+        for name, values in exact.items():
+            arrays[name][rows] = values

@@ -1,0 +1,177 @@
+"""One contract for every observation operator (physical and emulated).
+
+Each test runs over all operators of the ``operator_case`` fixture: output schema, Jacobian
+against finite differences, tangent-linear Taylor test, adjoint dot-product test,
+level-order invariance, bad-input behaviour, lazy (dask) evaluation.
+
+Tolerances differ by operator only where the arithmetic does: the physical model runs in
+float64, the emulator in float32 (unit roundoff 6e-8, i.e. ~2e-5 K at 300 K).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+import pytest
+import xarray as xr
+
+from rtemu import flags
+from rtemu.runtime import PhysicalOperator
+
+JACOBIANS = (
+    "jacobian_air_temperature",
+    "jacobian_specific_humidity",
+    "jacobian_surface_temperature",
+    "jacobian_surface_emissivity",
+)
+
+
+@dataclasses.dataclass
+class Case:
+    operator: object
+    profiles: xr.Dataset  # valid, in-envelope inputs
+    fd_rel_tol: float  # directional derivative vs finite difference
+    taylor_min_ratio: float  # error ratio when the step halves (2nd order -> 4)
+    adjoint_rel_tol: float
+
+
+def _physical_case(small_profiles):
+    ds = small_profiles(n=6, nlev=40, seed=3)
+    return Case(PhysicalOperator("demo-sounder"), ds, 1e-6, 3.5, 1e-10)
+
+
+@pytest.fixture(params=["physical", "emulated"])
+def operator_case(request, small_profiles):
+    if request.param == "physical":
+        return _physical_case(small_profiles)
+    emulated = request.getfixturevalue("emulated_case")
+    return emulated
+
+
+def _direction(ds, seed, scale=1.0):
+    rng = np.random.default_rng(seed)
+    n, nlev = ds.sizes["profile"], ds.sizes["level"]
+    smooth = np.cumsum(rng.normal(size=(n, nlev)), axis=1) / np.sqrt(nlev)
+    q = ds["specific_humidity"].values
+    return xr.Dataset(
+        {
+            "air_temperature": (("profile", "level"), scale * smooth),
+            "specific_humidity": (("profile", "level"), scale * 0.05 * q * rng.normal(size=(n, nlev))),
+            "surface_temperature": (("profile",), scale * rng.normal(size=n)),
+            "surface_emissivity": (ds["surface_emissivity"].dims,
+                                   scale * 0.01 * rng.normal(size=ds["surface_emissivity"].shape)),
+        }
+    )
+
+
+def _shift(ds, dx, a):
+    out = ds.copy()
+    for name, da in dx.items():
+        out[name] = ds[name] + a * da.values
+    return out
+
+
+def test_output_schema(operator_case):
+    op, ds = operator_case.operator, operator_case.profiles
+    out = op.simulate(ds, jacobian=True)
+    n, nlev, nchan = ds.sizes["profile"], ds.sizes["level"], len(op.channels)
+    assert out["brightness_temperature"].dims == ("profile", "channel")
+    assert out["brightness_temperature"].shape == (n, nchan)
+    assert out["brightness_temperature"].dtype == np.float64
+    assert out["brightness_temperature"].attrs["units"] == "K"
+    for name in ("jacobian_air_temperature", "jacobian_specific_humidity"):
+        assert out[name].dims == ("profile", "channel", "level")
+        assert out[name].shape == (n, nchan, nlev)
+    for name in ("jacobian_surface_temperature", "jacobian_surface_emissivity"):
+        assert out[name].dims == ("profile", "channel")
+    assert list(out["channel"].values) == list(op.channels)
+    qf = out["quality_flag"]
+    assert qf.dtype == np.int32
+    assert list(qf.attrs["flag_masks"]) == list(flags.FLAG_MASKS)
+    assert qf.attrs["flag_meanings"].split() == flags.FLAG_MEANINGS.split()
+    assert (qf.values & flags.INVALID_INPUT).sum() == 0
+    assert np.isfinite(out["brightness_temperature"].values).all()
+    plain = op.simulate(ds)
+    assert set(plain.data_vars) == {"brightness_temperature", "quality_flag"}
+    np.testing.assert_array_equal(plain["brightness_temperature"].values,
+                                  out["brightness_temperature"].values)
+
+
+def test_jacobian_against_finite_differences(operator_case):
+    op, ds = operator_case.operator, operator_case.profiles
+    out = op.simulate(ds, jacobian=True)
+    for name in ("air_temperature", "specific_humidity", "surface_temperature", "surface_emissivity"):
+        dx = _direction(ds, seed=11)[[name]]
+        jdx = op.tangent_linear(ds, dx)["brightness_temperature"].values
+        h = 1e-3 if operator_case.fd_rel_tol < 1e-4 else 0.2
+        plus = op.simulate(_shift(ds, dx, h))["brightness_temperature"].values
+        minus = op.simulate(_shift(ds, dx, -h))["brightness_temperature"].values
+        fd = (plus - minus) / (2 * h)
+        scale = np.abs(jdx).max()
+        assert np.abs(fd - jdx).max() <= operator_case.fd_rel_tol * scale + 1e-12, name
+    assert out is not None
+
+
+def test_tangent_linear_taylor(operator_case):
+    op, ds = operator_case.operator, operator_case.profiles
+    dx = _direction(ds, seed=5)
+    base = op.simulate(ds)["brightness_temperature"].values
+    jdx = op.tangent_linear(ds, dx)["brightness_temperature"].values
+    errors = []
+    for a in (0.8, 0.4, 0.2):
+        moved = op.simulate(_shift(ds, dx, a))["brightness_temperature"].values
+        errors.append(np.linalg.norm(moved - base - a * jdx))
+    ratios = [errors[0] / errors[1], errors[1] / errors[2]]
+    # Second-order remainder: halving the step divides the error by ~4 (Taylor's theorem).
+    assert min(ratios) > operator_case.taylor_min_ratio, (errors, ratios)
+
+
+def test_adjoint_dot_product(operator_case):
+    op, ds = operator_case.operator, operator_case.profiles
+    dx = _direction(ds, seed=7)
+    rng = np.random.default_rng(8)
+    dy = xr.DataArray(rng.normal(size=(ds.sizes["profile"], len(op.channels))),
+                      dims=("profile", "channel"), coords={"channel": list(op.channels)})
+    jdx = op.tangent_linear(ds, dx)["brightness_temperature"].values
+    grads = op.adjoint(ds, dy)
+    lhs = np.sum(jdx * dy.values)
+    rhs = sum(np.sum(grads[name].values * dx[name].values) for name in dx.data_vars)
+    assert abs(lhs - rhs) <= operator_case.adjoint_rel_tol * max(abs(lhs), abs(rhs))
+
+
+def test_level_order_invariance(operator_case):
+    op, ds = operator_case.operator, operator_case.profiles
+    forward = op.simulate(ds, jacobian=True)
+    flipped = op.simulate(ds.isel(level=slice(None, None, -1)), jacobian=True)
+    np.testing.assert_allclose(flipped["brightness_temperature"].values,
+                               forward["brightness_temperature"].values, rtol=0, atol=1e-9)
+    np.testing.assert_allclose(flipped["jacobian_air_temperature"].values[..., ::-1],
+                               forward["jacobian_air_temperature"].values, rtol=1e-9, atol=1e-12)
+
+
+def test_bad_profile_masked_rest_exact(operator_case):
+    op, ds = operator_case.operator, operator_case.profiles
+    clean = op.simulate(ds, jacobian=True)
+    bad = ds.copy(deep=True)
+    bad["air_temperature"][1, 3] = np.nan
+    bad["specific_humidity"][2, 0] = -1e-3
+    out = op.simulate(bad, jacobian=True)
+    for i in (1, 2):
+        assert np.isnan(out["brightness_temperature"].values[i]).all()
+        assert np.isnan(out["jacobian_air_temperature"].values[i]).all()
+        assert (out["quality_flag"].values[i] & flags.INVALID_INPUT).all()
+    keep = [0, 3, 4, 5][: ds.sizes["profile"] - 2]
+    for name in ("brightness_temperature",) + JACOBIANS:
+        np.testing.assert_array_equal(out[name].values[keep], clean[name].values[keep])
+    assert "specific_humidity" in out.attrs["invalid_input_summary"]
+
+
+def test_lazy_equals_eager(operator_case):
+    op, ds = operator_case.operator, operator_case.profiles
+    eager = op.simulate(ds, jacobian=True)
+    lazy = op.simulate(ds.chunk({"profile": 2}), jacobian=True)
+    assert lazy["brightness_temperature"].chunks is not None
+    computed = lazy.compute()
+    for name in ("brightness_temperature",) + JACOBIANS:
+        np.testing.assert_array_equal(computed[name].values, eager[name].values)
