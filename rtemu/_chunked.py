@@ -60,6 +60,19 @@ def _side_directory(output: Path, job_hash: str) -> Path:
     return side
 
 
+def _readable(path: Path) -> bool:
+    """A finished chunk: present and readable (chunks are not fsynced, see atomic_path)."""
+    if not path.exists():
+        return False
+    try:
+        with open_dataset(path) as ds:
+            ds.load()
+        return True
+    except Exception:  # unreadable after a crash: recompute it
+        path.unlink()
+        return False
+
+
 def _client(workers, scheduler):
     from distributed import Client, LocalCluster
 
@@ -105,7 +118,7 @@ def run_chunked(
     side = _side_directory(output, fingerprint(job))
     bounds = chunk_bounds(count, chunk_size)
     paths = [side / f"chunk-{i:06d}.nc" for i in range(len(bounds))]
-    todo = [i for i, p in enumerate(paths) if not p.exists()]
+    todo = [i for i, p in enumerate(paths) if not _readable(p)]
     bar = tqdm(
         total=len(bounds), initial=len(bounds) - len(todo), desc=description,
         unit="chunk", disable=not progress,
@@ -129,7 +142,7 @@ def run_chunked(
                         break
                 for future in running:
                     index = futures.pop(future)
-                    to_netcdf_atomic(future.result(), paths[index])
+                    to_netcdf_atomic(future.result(), paths[index], durable=False)
                     bar.update()
                     nxt = next(pending, None)
                     if nxt is not None:
@@ -142,7 +155,7 @@ def run_chunked(
                     cluster.close()
         else:
             for i in todo:
-                to_netcdf_atomic(compute_chunk(*bounds[i]), paths[i])
+                to_netcdf_atomic(compute_chunk(*bounds[i]), paths[i], durable=False)
                 bar.update()
     finally:
         bar.close()

@@ -17,10 +17,16 @@ import xarray as xr
 
 
 @contextlib.contextmanager
-def atomic_path(path: str | os.PathLike, suffix: str | None = None) -> Iterator[Path]:
+def atomic_path(
+    path: str | os.PathLike, suffix: str | None = None, durable: bool = True
+) -> Iterator[Path]:
     """Yield a temporary path beside ``path``; rename it onto ``path`` on success.
 
-    On any exception the temporary file is removed and ``path`` is left untouched.
+    On any exception the temporary file is removed and ``path`` is left untouched. With
+    ``durable`` the data are flushed to disk (fsync) before the rename, so that even a
+    machine crash leaves either the old or the complete new file; without it only an
+    interrupted process is covered (cheaper, for intermediate files that are checked when
+    reused).
     """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
@@ -31,8 +37,9 @@ def atomic_path(path: str | os.PathLike, suffix: str | None = None) -> Iterator[
     tmp_path = Path(tmp)
     try:
         yield tmp_path
-        with open(tmp_path, "rb+") as handle:
-            os.fsync(handle.fileno())
+        if durable:
+            with open(tmp_path, "rb+") as handle:
+                os.fsync(handle.fileno())
         os.replace(tmp_path, path)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):
@@ -51,9 +58,11 @@ def write_text_atomic(path: str | os.PathLike, text: str) -> None:
     write_bytes_atomic(path, text.encode("utf-8"))
 
 
-def to_netcdf_atomic(dataset: xr.Dataset, path: str | os.PathLike, **kwargs) -> None:
+def to_netcdf_atomic(
+    dataset: xr.Dataset, path: str | os.PathLike, durable: bool = True, **kwargs
+) -> None:
     """Write ``dataset`` to netCDF-4 (h5netcdf engine) at ``path`` atomically."""
-    with atomic_path(path, suffix=".nc.partial") as tmp:
+    with atomic_path(path, suffix=".nc.partial", durable=durable) as tmp:
         dataset.to_netcdf(tmp, engine="h5netcdf", **kwargs)
 
 
