@@ -80,7 +80,7 @@ def _check_positive_finite(name: str, values: np.ndarray) -> None:
     if np.any(bad):
         index = np.unravel_index(int(np.argmax(bad)), values.shape) if values.ndim else ()
         raise ValueError(
-            f"{name} must be finite and > 0; got {values[index]!r} at index {tuple(map(int, index))}"
+            f"{name} must be finite and > 0; got {float(values[index])!r} at index {tuple(map(int, index))}"
         )
 
 
@@ -196,7 +196,7 @@ def _check_temperature(temperature_k: np.ndarray) -> None:
     if np.any(bad):
         index = np.unravel_index(int(np.argmax(bad)), temperature_k.shape) if temperature_k.ndim else ()
         raise ValueError(
-            f"temperature must lie in [{lo}, {hi}] K; got {temperature_k[index]!r} "
+            f"temperature must lie in [{lo}, {hi}] K; got {float(temperature_k[index])!r} "
             f"at index {tuple(map(int, index))}"
         )
 
