@@ -69,8 +69,8 @@ def _dims(ds: xr.Dataset, name: str, allowed: list[tuple[str, ...]]) -> tuple[st
     )
 
 
-def _values(ds, name, order):
-    da = ds[name]
+def _values(ds, name, order, da=None):
+    da = ds[name] if da is None else da
     scale, offset = unit_conversion(name, da.attrs.get("units"))
     values = np.asarray(da.transpose(*order).values, dtype=float)
     return values * scale + offset, scale
@@ -138,7 +138,9 @@ def prepare_inputs(
         elif dataset.sizes["channel"] != nchan:
             _fail(f"surface_emissivity: {dataset.sizes['channel']} channels, operator has {nchan} "
                   "(rule: one value per operator channel)")
-    ds = dataset.assign(surface_emissivity=emissivity_da)
+    # Read emissivity from the re-ordered DataArray itself: assigning it back into the
+    # dataset would re-align it to the caller's channel order.
+    ds = dataset
 
     p, p_scale = _values(ds, "air_pressure", p_order)
     p = np.broadcast_to(p, (n, nlev)).copy()
@@ -146,7 +148,7 @@ def prepare_inputs(
     q, q_scale = _values(ds, "specific_humidity", ("profile", "level"))
     ts, ts_scale = _values(ds, "surface_temperature", ("profile",))
     zen, z_scale = _values(ds, "sensor_zenith_angle", ("profile",))
-    em, e_scale = _values(ds, "surface_emissivity", e_order)
+    em, e_scale = _values(ds, "surface_emissivity", e_order, da=emissivity_da)
     em = np.broadcast_to(em.reshape(n, -1), (n, nchan)).copy()
 
     bad = np.zeros(n, dtype=bool)

@@ -407,7 +407,7 @@ def tangent_linear(
         ``brightness_temperature`` (profile, channel) [K] increments and ``quality_flag``.
     """
     inst, prep, arrays, flag = _compute(instrument, dataset, True, errors, DEFAULT_BLOCK_SIZE)
-    dy = tangent_linear_arrays(arrays, _increments(prep, perturbation, dataset))
+    dy = tangent_linear_arrays(arrays, _increments(prep, perturbation, dataset, inst.channel_ids))
     return label_outputs({"brightness_temperature": dy}, dataset, inst.channel_ids, flag)
 
 
@@ -431,7 +431,7 @@ def adjoint(
     inst, prep, arrays, flag = _compute(instrument, dataset, True, errors, DEFAULT_BLOCK_SIZE)
     dy = _bt_array(bt_perturbation, inst.channel_ids, prep.valid.size)
     grads = adjoint_arrays(arrays, dy)
-    return _label_gradients(grads, prep, dataset)
+    return _label_gradients(grads, prep, dataset, inst.channel_ids)
 
 
 def tangent_linear_arrays(arrays: dict, dx: dict) -> np.ndarray:
@@ -453,7 +453,7 @@ def adjoint_arrays(arrays: dict, dy: np.ndarray) -> dict:
     }
 
 
-def _increments(prep, perturbation: xr.Dataset, dataset: xr.Dataset) -> dict:
+def _increments(prep, perturbation: xr.Dataset, dataset: xr.Dataset, channel_ids=None) -> dict:
     """Increments in canonical units (unit scale only; offsets cancel in a difference)."""
     n, nlev = prep.air_temperature.shape
     nchan = prep.surface_emissivity.shape[1]
@@ -471,6 +471,8 @@ def _increments(prep, perturbation: xr.Dataset, dataset: xr.Dataset) -> dict:
             dx[name] = np.zeros((n, nlev) if len(dims) == 2 else n)
     if "surface_emissivity" in perturbation:
         da = perturbation["surface_emissivity"]
+        if channel_ids is not None and "channel" in da.coords:  # labelled: operator's order
+            da = da.sel(channel=list(channel_ids))
         if "channel" in da.dims:
             values = np.asarray(da.transpose("profile", "channel").values, dtype=float)
         else:
@@ -494,7 +496,7 @@ def _bt_array(bt_perturbation, channel_ids, n) -> np.ndarray:
     return values
 
 
-def _label_gradients(grads: dict, prep, dataset: xr.Dataset) -> xr.Dataset:
+def _label_gradients(grads: dict, prep, dataset: xr.Dataset, channel_ids=None) -> xr.Dataset:
     data_vars = {}
     for name, dims in (("air_temperature", ("profile", "level")),
                        ("specific_humidity", ("profile", "level")),
@@ -509,6 +511,8 @@ def _label_gradients(grads: dict, prep, dataset: xr.Dataset) -> xr.Dataset:
         data_vars["surface_emissivity"] = (("profile",), em.sum(axis=1),
                                            {"long_name": "adjoint gradient with respect to surface_emissivity"})
     coords = {d: dataset.coords[d] for d in ("profile", "level") if d in dataset.coords}
+    if channel_ids is not None and prep.emissivity_per_channel:  # operator's channel order
+        coords["channel"] = ("channel", np.array(list(channel_ids), dtype=object))
     return xr.Dataset(data_vars, coords=coords)
 
 
