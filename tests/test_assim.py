@@ -19,6 +19,7 @@ import pytest
 import xarray as xr
 
 from rtemu import assim
+from rtemu.atmosphere import saturation_specific_humidity
 from rtemu.assim import qc
 from rtemu.assim._control import ControlLayout, from_control, read_columns, to_control, write_columns
 from rtemu.assim.covariance import covariance_dataarray
@@ -93,7 +94,7 @@ def dry_columns(n_prof, n_lev, seed=0, emissivity_channels=None):
     rng = np.random.default_rng(seed)
     p = np.geomspace(1000.0, 200.0, n_lev)
     t = 290.0 * (p / 1000.0) ** 0.19 + rng.normal(0.0, 1.0, (n_prof, n_lev))
-    q = 0.1 * assim.saturation_specific_humidity(t, p) * np.exp(rng.normal(0.0, 0.1, (n_prof, n_lev)))
+    q = 0.1 * saturation_specific_humidity(t, p) * np.exp(rng.normal(0.0, 0.1, (n_prof, n_lev)))
     ds = xr.Dataset(
         {
             "air_pressure": ("level", p),
@@ -140,30 +141,22 @@ def optimal_estimate(xb, b, h, r, y, hxb):
     return np.array(xa), np.array(kernels), np.array(covs)
 
 
-# -- saturation humidity (used for the humidity limits) ------------------------------------
-@pytest.mark.parametrize(
-    "t_celsius, e_pa",
-    # Saturation vapour pressure of water, CRC Handbook of Chemistry and Physics,
-    # "Vapor pressure of water from 0 to 370 C" (values from memory).
-    [(0.01, 611.66), (20.0, 2339.3), (30.0, 4246.9)],
-)
-def test_saturation_vapour_pressure_against_handbook(t_celsius, e_pa):
-    # Alduchov and Eskridge (1996) quote errors below 0.4 % over -40..50 C (from memory).
-    got = assim.saturation_vapour_pressure(t_celsius + 273.15) * 100.0
-    assert got == pytest.approx(e_pa, rel=5e-3)
-
-
-def test_humidity_bounds_respect_model_limit_and_saturation():
-    t = np.array([[300.0, 250.0, 400.0]])
-    p = np.array([[1000.0, 500.0, 1.0]])
+# -- humidity limits of the iterates --------------------------------------------------------
+def test_humidity_bounds_respect_saturation_and_model_limit():
+    t = np.array([[303.15, 250.0, 400.0, 50.0]])
+    p = np.array([[1000.0, 500.0, 1.0, 500.0]])
     lo, hi = assim.humidity_bounds(t, p)
-    # Saturation at 300 K, 1000 hPa: e_s = 35.4 hPa -> q_s = 0.622 e / (p - 0.378 e) = 0.0224
-    # (Wallace and Hobbs 2006, section 3.5 formula; e_s from the CRC table: 3.537 kPa at 27 C
-    # rounded, from memory).
-    assert hi[0, 0] == pytest.approx(0.0224, rel=0.02)
-    assert hi[0, 2] < 0.1  # e_s >> p: capped just inside the physical model's q < 0.1
-    assert (lo == assim.humidity_bounds(t, p)[0]).all() and (lo > 0).all()
-    assert not np.isnan(hi).any()
+    # Saturation at 30 degC, 1000 hPa: e_s = 4.2470 kPa (CRC Handbook of Chemistry and
+    # Physics, vapour pressure of water, from memory), q_s = 0.622 e / (p - 0.378 e)
+    # (Wallace and Hobbs 2006, section 3.5) = 0.02685 kg kg-1.
+    assert hi[0, 0] == pytest.approx(0.622 * 42.470 / (1000.0 - 0.378 * 42.470), rel=5e-3)
+    assert hi[0, 1] < hi[0, 0]
+    # e_s >> p at 400 K and 1 hPa: capped just inside the physical model's q < 0.1.
+    assert 0.0999 < hi[0, 2] < 0.1
+    # Cold air (clipped to the 100 K model limit) may leave no room above the lower bound.
+    assert np.isfinite(hi).all() and (lo == 1e-8).all() and (hi >= lo).all() and hi[0, 3] == lo[0, 3]
+    # With a 50 % cap the bound halves where saturation, not the model limit, binds.
+    assert assim.humidity_bounds(t, p, 0.5)[1][0, 0] == pytest.approx(0.5 * hi[0, 0])
 
 
 # -- 1D-Var against the closed form ---------------------------------------------------------
@@ -514,3 +507,85 @@ def test_ensemble_qc_rejects_gross_error_and_flag():
     assert reason[0, 1] == qc.OPERATOR_FLAG and reason[1, 2] == qc.DEPARTURE
     assert (reason == qc.USED).sum() == reason.size - 2
     assert res.diagnostics["n_used"].values.tolist() == [3, 3]
+
+
+# -- 1D-Var with the physical model ------------------------------------------------------------
+def _physical_case(n_prof=100, seed=0, sd_t=1.5, sd_lnq=0.3):
+    """Synthetic truth, obs = H(truth) + noise, background = truth + error drawn from B."""
+    from rtemu.atmosphere import default_pressure_grid, us_standard_atmosphere_1976
+    from rtemu.runtime import PhysicalOperator
+
+    op = PhysicalOperator("demo-sounder")  # an invented instrument (see its description)
+    rng = np.random.default_rng(seed)
+    p = default_pressure_grid()
+    n_lev = len(p)
+    layout = ControlLayout(n_levels=n_lev)
+    b = ar1_b(layout, sd_t=sd_t, sd_lnq=sd_lnq, sd_ts=2.0, length=3.0)
+    chol = np.linalg.cholesky(b)
+    t = (us_standard_atmosphere_1976(p) + rng.uniform(-10, 10, (n_prof, 1)) * (p / p[0])
+         + (rng.standard_normal((n_prof, layout.size)) @ chol.T)[:, :n_lev])
+    rh = rng.uniform(0.3, 0.8, (n_prof, 1)) * (p / p[0]) ** 0.3
+    with np.errstate(invalid="ignore"):  # q_s is infinite where e_s > p, aloft
+        q = np.where(p < 100.0, 4e-6, np.maximum(rh * saturation_specific_humidity(t, p), 4e-6))
+    truth = xr.Dataset({
+        "air_pressure": ("level", p),
+        "air_temperature": (("profile", "level"), t),
+        "specific_humidity": (("profile", "level"), q),
+        "surface_temperature": ("profile", t[:, 0] + rng.normal(0.0, 2.0, n_prof)),
+        "surface_emissivity": ("profile", rng.uniform(0.6, 0.95, n_prof)),
+        "sensor_zenith_angle": ("profile", rng.uniform(0.0, 50.0, n_prof)),
+    })
+    x_true = control(truth, layout)
+    cols = read_columns(truth, ("profile",), (), "truth")
+    bg_cols, x_bg = from_control(x_true + rng.standard_normal(x_true.shape) @ chol.T, cols, layout)
+    background = write_columns(truth, bg_cols, ("profile",), False)
+    simulated = op.simulate(truth)["brightness_temperature"]
+    obs = simulated + rng.standard_normal(simulated.shape) * op.instrument.noise_k
+    return op, background, obs, b, layout, x_true, x_bg
+
+
+def _mahalanobis(err, b):
+    return np.einsum("pi,ij,pj->p", err, np.linalg.inv(b), err)
+
+
+def test_var1d_on_physical_model_converges_and_beats_background():
+    op, background, obs, b, layout, x_true, x_bg = _physical_case()
+    res = assim.var1d(op, background, obs, b_matrix=b, max_iter=30)
+    d = res.diagnostics
+    assert d["status"].values.tolist() == [0] * len(x_true)  # all converged
+    assert d["n_iterations"].values.max() <= 10
+    cost = d["cost"].values
+    steps = np.diff(cost, axis=1)
+    assert (steps[np.isfinite(steps)] <= 0).all()  # monotone with LM damping
+    final = cost[np.arange(len(cost)), d["n_iterations"].values]
+    assert (final < cost[:, 0]).all()
+    x_an = control(res.analysis, layout)
+    n_lev = layout.n_levels
+    err_bg, err_an = x_bg - x_true, x_an - x_true
+    assert np.sqrt((err_an[:, :n_lev] ** 2).mean()) < np.sqrt((err_bg[:, :n_lev] ** 2).mean())
+    assert np.sqrt((err_an[:, n_lev:2 * n_lev] ** 2).mean()) < np.sqrt((err_bg[:, n_lev:2 * n_lev] ** 2).mean())
+    m_bg, m_an = _mahalanobis(err_bg, b).mean(), _mahalanobis(err_an, b).mean()
+    assert m_an < m_bg
+    # Optimal estimation theory (Rodgers 2000, section 2.4, from memory):
+    # E[(xa - xt)^T B^-1 (xa - xt)] = trace(B^-1 S) = n - DFS. The sample mean over 100
+    # columns has sd <= sqrt(2 n / 100); allow 4 sd.
+    n = layout.size
+    assert abs(m_an - (n - d["dfs"].values.mean())) < 4 * np.sqrt(2 * n / len(x_true))
+    # J at the minimum is about m/2 with the 1/2 convention (chi-square, m degrees of freedom).
+    j_per_obs = (d["cost_background"] + d["cost_observation"]).sum() / d["n_used"].sum()
+    assert 0.35 < float(j_per_obs) < 0.65
+
+
+def test_var1d_levenberg_marquardt_handles_a_strongly_nonlinear_case():
+    # Larger background errors: humidity often at saturation, Jacobians change a lot.
+    op, background, obs, b, layout, x_true, x_bg = _physical_case(seed=1, sd_t=3.0, sd_lnq=0.5)
+    lm = assim.var1d(op, background, obs, b_matrix=b, max_iter=30)
+    gn = assim.var1d(op, background, obs, b_matrix=b, max_iter=30, lm_damping=0.0)
+    steps_gn = np.diff(gn.cost.values, axis=1)
+    assert (steps_gn[np.isfinite(steps_gn)] > 0).any()  # plain Gauss-Newton goes uphill here
+    steps_lm = np.diff(lm.cost.values, axis=1)
+    assert (steps_lm[np.isfinite(steps_lm)] <= 0).all()
+    assert lm.converged.values.all()
+    assert (lm.diagnostics["n_rejected_steps"].values > 0).any()
+    x_an = control(lm.analysis, layout)
+    assert _mahalanobis(x_an - x_true, b).mean() < _mahalanobis(x_bg - x_true, b).mean()

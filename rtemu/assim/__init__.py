@@ -1,7 +1,8 @@
 """Assimilation of radiances with any rtemu observation operator: 1D-Var and ensemble updates.
 
-The last stage of rtemu: it consumes an observation operator and imports nothing from
-the stages' internals beyond the input checks' physical limits.
+The last stage of rtemu: it consumes an observation operator through the protocol below
+and uses only the physical limits of the input checks and the moisture functions of
+:mod:`rtemu.atmosphere` from the earlier stages.
 
 Operator protocol
 -----------------
@@ -32,12 +33,7 @@ Contents
 """
 
 from rtemu.assim import qc
-from rtemu.assim._control import (
-    ControlLayout,
-    humidity_bounds,
-    saturation_specific_humidity,
-    saturation_vapour_pressure,
-)
+from rtemu.assim._control import ControlLayout, humidity_bounds
 from rtemu.assim._operator import observation_error_variance
 from rtemu.assim.covariance import (
     estimate_background_covariance,
@@ -74,8 +70,6 @@ __all__ = [
     # control vector and limits
     "ControlLayout",
     "humidity_bounds",
-    "saturation_specific_humidity",
-    "saturation_vapour_pressure",
     # quality control
     "qc",
 ]

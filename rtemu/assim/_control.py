@@ -24,7 +24,7 @@ import xarray as xr
 
 from rtemu._checks import HUMIDITY_MAX, TEMPERATURE_RANGE_K
 from rtemu._units import CANONICAL_UNITS, unit_conversion
-from rtemu.constants import EPSILON
+from rtemu.atmosphere import saturation_specific_humidity
 
 #: Lowest specific humidity an iterate may take [kg kg-1]; keeps ln q finite and far
 #: below any tropospheric or stratospheric value (common practice).
@@ -49,71 +49,14 @@ COLUMN_VARIABLES = (
 )
 
 
-def saturation_vapour_pressure(air_temperature):
-    """Saturation vapour pressure over plane liquid water (Magnus form).
-
-    e_s = 6.1094 exp(17.625 t / (t + 243.04)),  t = T - 273.15 [degC]
-
-    Parameters
-    ----------
-    air_temperature : array_like
-        Temperature [K].
-
-    Returns
-    -------
-    numpy.ndarray
-        Saturation vapour pressure [hPa].
-
-    References
-    ----------
-    Alduchov, O. A. and Eskridge, R. E. (1996), Improved Magnus form approximation of
-    saturation vapor pressure, J. Appl. Meteor. 35, 601-609,
-    doi:10.1175/1520-0450(1996)035<0601:IMFAOS>2.0.CO;2 (coefficients of their eq. 21).
-    """
-    t_c = np.asarray(air_temperature, dtype=float) - 273.15
-    # The Magnus fit is meant for -80..50 degC; clamping the argument keeps exp finite
-    # for any temperature the physical model accepts (100-400 K).
-    t_c = np.clip(t_c, -150.0, 150.0)
-    return 6.1094 * np.exp(17.625 * t_c / (t_c + 243.04))
-
-
-def saturation_specific_humidity(air_temperature, air_pressure):
-    """Specific humidity at saturation over liquid water, capped at the model's limit.
-
-    q_s = epsilon e_s / (p - (1 - epsilon) e_s), epsilon = 0.622; where e_s approaches p
-    (warm air at very low pressure, not a real atmosphere) q_s is set to the ceiling
-    0.1 (1 - 1e-6) kg kg-1 of the physical model's validity rule.
-
-    Parameters
-    ----------
-    air_temperature : array_like
-        Temperature [K].
-    air_pressure : array_like
-        Pressure [hPa].
-
-    Returns
-    -------
-    numpy.ndarray
-        Saturation specific humidity [kg kg-1].
-
-    References
-    ----------
-    Wallace, J. M. and Hobbs, P. V. (2006), Atmospheric Science, 2nd ed., Academic Press,
-    section 3.5 (q = epsilon e / (p - (1 - epsilon) e)).
-    """
-    e_s = saturation_vapour_pressure(air_temperature)
-    p = np.asarray(air_pressure, dtype=float)
-    denominator = p - (1.0 - EPSILON) * e_s
-    # Below this denominator q_s would exceed the ceiling (or be negative).
-    threshold = EPSILON * e_s / HUMIDITY_CEILING
-    safe = np.where(denominator > threshold, denominator, threshold)
-    return np.where(denominator > threshold, EPSILON * e_s / safe, HUMIDITY_CEILING)
-
-
 def humidity_bounds(air_temperature, air_pressure, max_relative_humidity=MAX_RELATIVE_HUMIDITY):
     """Lower and upper bound of specific humidity allowed for an iterate.
 
-    Lower: 1e-8 kg kg-1. Upper: min(max_relative_humidity q_s(T, p), 0.1 (1 - 1e-6)).
+    Lower: 1e-8 kg kg-1. Upper: min(max_relative_humidity q_s(T, p), 0.1 (1 - 1e-6)),
+    with q_s the saturation specific humidity over liquid water of
+    :func:`rtemu.atmosphere.saturation_specific_humidity` (Bolton 1980 e_s; the same
+    definition the sampler uses for relative humidity). Where e_s >= p, q_s is infinite
+    and the model ceiling applies.
 
     Parameters
     ----------
@@ -129,9 +72,10 @@ def humidity_bounds(air_temperature, air_pressure, max_relative_humidity=MAX_REL
     (numpy.ndarray, numpy.ndarray)
         Lower and upper bound [kg kg-1], broadcast to the inputs.
     """
+    t_lo, t_hi = TEMPERATURE_LIMITS
+    t = np.clip(np.asarray(air_temperature, dtype=float), t_lo, t_hi)
     upper = np.minimum(
-        max_relative_humidity * saturation_specific_humidity(air_temperature, air_pressure),
-        HUMIDITY_CEILING,
+        max_relative_humidity * saturation_specific_humidity(t, air_pressure), HUMIDITY_CEILING
     )
     upper = np.maximum(upper, HUMIDITY_MIN)
     return np.full_like(upper, HUMIDITY_MIN), upper
@@ -370,6 +314,23 @@ def from_control(x: np.ndarray, cols: Columns, layout: ControlLayout) -> tuple[C
     if layout.emissivity != "none":
         projected[:, layout.surface_emissivity] = emissivity.reshape(cols.n, -1)
     return new, projected
+
+
+def control_bounds(cols: Columns, layout: ControlLayout) -> tuple[np.ndarray, np.ndarray]:
+    """Lower and upper limits [N, n] of every control element at the state ``cols``.
+
+    The ln q limits depend on the temperature of ``cols`` (the relative humidity cap), so
+    they are exactly the limits :func:`from_control` applied when it produced ``cols``.
+    """
+    t_lo, t_hi = TEMPERATURE_LIMITS
+    lo = np.empty((cols.n, layout.size))
+    hi = np.empty((cols.n, layout.size))
+    lo[:, layout.temperature], hi[:, layout.temperature] = t_lo, t_hi
+    q_lo, q_hi = humidity_bounds(cols.temperature, cols.pressure)
+    lo[:, layout.ln_humidity], hi[:, layout.ln_humidity] = np.log(q_lo), np.log(q_hi)
+    lo[:, layout.surface_temperature], hi[:, layout.surface_temperature] = t_lo, t_hi
+    lo[:, layout.surface_emissivity], hi[:, layout.surface_emissivity] = 0.0, 1.0
+    return lo, hi
 
 
 def write_columns(

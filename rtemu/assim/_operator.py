@@ -28,7 +28,7 @@ def _take(out: xr.Dataset, name: str, channels, n: int, trailing: tuple[str, ...
     if name not in out:
         raise ValueError(f"operator output: variable {name!r} missing (rule: the operator protocol)")
     da = out[name]
-    if "channel" in da.coords:
+    if "channel" in da.coords and [str(c) for c in da["channel"].values] != list(channels):
         da = da.sel(channel=list(channels))
     values = np.asarray(da.transpose("profile", "channel", *trailing).values)
     if values.shape[:2] != (n, len(channels)):

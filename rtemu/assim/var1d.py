@@ -54,7 +54,14 @@ import numpy as np
 import xarray as xr
 
 from rtemu.assim import qc as _qc
-from rtemu.assim._control import from_control, layout_for, read_columns, to_control, write_columns
+from rtemu.assim._control import (
+    control_bounds,
+    from_control,
+    layout_for,
+    read_columns,
+    to_control,
+    write_columns,
+)
 from rtemu.assim._operator import (
     control_jacobian,
     observation_error_variance,
@@ -120,30 +127,101 @@ class Var1DResult:
         return self.diagnostics["qc_count"]
 
 
-def _sym_inverse(m: np.ndarray) -> np.ndarray:
-    inv = np.linalg.inv(m)
-    return 0.5 * (inv + np.swapaxes(inv, -1, -2))
+def _t(a: np.ndarray) -> np.ndarray:
+    return np.swapaxes(a, -1, -2)
 
 
-def _cost_terms(x, xb, b_inv, hx, y, weight):
+def _mv(m: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """Batched matrix-vector product; ``m`` [N, n, k] or shared [1, n, k], ``v`` [N, k]."""
+    return (m @ v[..., None])[..., 0]
+
+
+class _Covariance:
+    """B and B^-1, shared by all columns ([1, n, n]) or per column ([N, n, n])."""
+
+    def __init__(self, b: np.ndarray):
+        self.b = b[None] if b.ndim == 2 else b
+        inv = np.linalg.inv(self.b)
+        self.inv = 0.5 * (inv + _t(inv))
+
+    def pick(self, idx) -> "_Covariance":
+        if self.b.shape[0] == 1:
+            return self
+        out = object.__new__(_Covariance)
+        out.b, out.inv = self.b[idx], self.inv[idx]
+        return out
+
+
+def _scaled_jacobian(h, weight):
+    """H~ = W^1/2 H: rows of rejected observations are zero [N, C, n]."""
+    return h * np.sqrt(weight)[..., None]
+
+
+def _apply_inverse_hessian(v, cov: _Covariance, h_tilde, scale):
+    """[scale B^-1 + H~^T H~]^-1 v by the Sherman-Morrison-Woodbury identity.
+
+    With B_s = B / scale: B_s v - B_s H~^T (H~ B_s H~^T + I)^-1 H~ B_s v; only C x C
+    systems (C channels) are solved, never n x n ones (the identity behind Rodgers 2000
+    eqs. 2.44-2.45, from memory).
+    """
+    bht = (cov.b @ _t(h_tilde)) / scale[:, None, None]  # B_s H~^T [N, n, C]
+    inner = h_tilde @ bht + np.eye(h_tilde.shape[1])
+    bv = _mv(cov.b, v) / scale[:, None]
+    return bv - _mv(bht, np.linalg.solve(inner, _mv(h_tilde, bv)[..., None])[..., 0])
+
+
+def _cost_terms(x, xb, cov: _Covariance, hx, y, weight):
     dxb = x - xb
-    jb = 0.5 * np.einsum("pn,pnm,pm->p", dxb, b_inv, dxb)
+    jb = 0.5 * np.einsum("pn,pn->p", dxb, _mv(cov.inv, dxb))
     d = np.where(weight > 0, y - hx, 0.0)
     jo = 0.5 * np.einsum("pc,pc->p", weight, d * d)
     return jb, jo
 
 
-def _gradient_and_curvature(x, xb, b_inv, h, hx, y, weight):
-    """g = B^-1 (x - xb) - H^T R^-1 (y - H(x)) and H^T R^-1 H for a set of columns."""
+def _gradient(x, xb, cov: _Covariance, h, hx, y, weight):
+    """g = B^-1 (x - xb) - H^T R^-1 (y - H(x)) [control units^-1]."""
     d = np.where(weight > 0, y - hx, 0.0)
-    grad = np.einsum("pnm,pm->pn", b_inv, x - xb) - np.einsum("pcn,pc->pn", h, weight * d)
-    curvature = np.einsum("pcn,pc,pcm->pnm", h, weight, h)
-    return grad, curvature
+    return _mv(cov.inv, x - xb) - np.einsum("pcn,pc->pn", h, weight * d)
 
 
-def _gauss_newton_d2(grad, b_inv, curvature):
-    """d^2 = g^T (B^-1 + H^T R^-1 H)^-1 g of the undamped step [1]."""
-    step = np.linalg.solve(b_inv + curvature, grad[..., None])[..., 0]
+def _blocked(x, grad, cols, layout):
+    """Elements held at a physical limit: at the limit with descent (-g) pointing outward.
+
+    This is the active set of a projected Newton method (Bertsekas 1982, SIAM J. Control
+    Optim. 20, 221-246, doi:10.1137/0320018): those elements are fixed for the step and
+    left out of the convergence test, so that an optimum on a limit (e.g. saturation)
+    is recognised as one.
+    """
+    lo, hi = control_bounds(cols, layout)
+    tol = 1e-9 * np.maximum(1.0, np.abs(x))
+    return ((x >= hi - tol) & (grad < 0)) | ((x <= lo + tol) & (grad > 0))
+
+
+def _newton_solve(grad, cov: _Covariance, h_tilde, scale, blocked):
+    """[scale B^-1 + H~^T H~]^-1 g over the free elements; blocked elements get 0.
+
+    Columns without blocked elements use the Woodbury form (C x C solves); the others
+    solve the n x n system with the blocked rows and columns replaced by the identity.
+    """
+    out = np.empty_like(grad)
+    free = ~blocked.any(axis=1)
+    if free.any():
+        f = np.flatnonzero(free)
+        out[f] = _apply_inverse_hessian(grad[f], cov.pick(f), h_tilde[f], scale[f])
+    if not free.all():
+        c = np.flatnonzero(~free)
+        fixed = blocked[c]
+        keep = ~fixed
+        hessian = scale[c][:, None, None] * cov.pick(c).inv + _t(h_tilde[c]) @ h_tilde[c]
+        hessian = hessian * (keep[:, :, None] & keep[:, None, :]) + np.eye(grad.shape[1]) * fixed[:, :, None]
+        rhs = np.where(fixed, 0.0, grad[c])
+        out[c] = np.linalg.solve(hessian, rhs[..., None])[..., 0]
+    return out
+
+
+def _gauss_newton_d2(grad, cov: _Covariance, h_tilde, blocked):
+    """d^2 = g^T (B^-1 + H^T R^-1 H)^-1 g of the undamped step over the free elements [1]."""
+    step = _newton_solve(grad, cov, h_tilde, np.ones(len(grad)), blocked)
     return np.einsum("pn,pn->p", grad, step)
 
 
@@ -219,9 +297,7 @@ def var1d(
     layout = layout_for(cols_b, control_emissivity)
     xb = to_control(cols_b, layout, "background")
     n_prof, n_ctl = xb.shape
-    b = check_b_matrix(b_matrix, layout, n_prof)
-    b_full = np.broadcast_to(b, (n_prof, n_ctl, n_ctl))
-    b_inv = np.broadcast_to(_sym_inverse(b), (n_prof, n_ctl, n_ctl))
+    cov = _Covariance(check_b_matrix(b_matrix, layout, n_prof))
     y = read_observations(observations, channels, n_prof, background.coords.get("profile"))
     r = observation_error_variance(operator, observation_error, emulator_error)
 
@@ -231,7 +307,7 @@ def var1d(
     h = control_jacobian(raw, cols_b, layout)
     finite_h = np.isfinite(h).all(axis=-1)
     h = np.where(finite_h[..., None], h, 0.0)
-    hbh = np.einsum("pcn,pnm,pcm->pc", h, b_full, h)
+    hbh = np.einsum("pcn,pcn->pc", h, _t(cov.b @ _t(h)))
     departure_std = np.sqrt(hbh + r)
     flag = np.where(finite_h, raw["flag"], raw["flag"] | 1)
     reason = _qc.screen(y, h_xb, flag, departure_std, qc_threshold)
@@ -243,7 +319,7 @@ def var1d(
     x = xb.copy()
     cols = cols_b
     hx = np.where(used, h_xb, 0.0)
-    jb, jo = _cost_terms(x, xb, b_inv, hx, y, weight)
+    jb, jo = _cost_terms(x, xb, cov, hx, y, weight)
     cost_now = jb + jo
     cost = np.full((n_prof, max_iter + 1), np.nan)
     trial_cost = np.full((n_prof, max_iter + 1), np.nan)
@@ -257,8 +333,10 @@ def var1d(
     active = n_used > 0
     idx = np.flatnonzero(active)
     if idx.size:
-        grad, curv = _gradient_and_curvature(x[idx], xb[idx], b_inv[idx], h[idx], hx[idx], y[idx], weight[idx])
-        done = _gauss_newton_d2(grad, b_inv[idx], curv) < step_tol * n_ctl
+        grad = _gradient(x[idx], xb[idx], cov.pick(idx), h[idx], hx[idx], y[idx], weight[idx])
+        blocked = _blocked(x[idx], grad, cols.subset(idx), layout)
+        d2 = _gauss_newton_d2(grad, cov.pick(idx), _scaled_jacobian(h[idx], weight[idx]), blocked)
+        done = d2 < step_tol * n_ctl
         status[idx[done]] = CONVERGED
         active[idx[done]] = False
 
@@ -266,9 +344,11 @@ def var1d(
         idx = np.flatnonzero(active)
         if idx.size == 0:
             break
-        grad, curv = _gradient_and_curvature(x[idx], xb[idx], b_inv[idx], h[idx], hx[idx], y[idx], weight[idx])
-        lhs = (1.0 + gamma[idx])[:, None, None] * b_inv[idx] + curv
-        dx = np.linalg.solve(lhs, -grad[..., None])[..., 0]
+        grad = _gradient(x[idx], xb[idx], cov.pick(idx), h[idx], hx[idx], y[idx], weight[idx])
+        blocked = _blocked(x[idx], grad, cols.subset(idx), layout)
+        dx = -_newton_solve(
+            grad, cov.pick(idx), _scaled_jacobian(h[idx], weight[idx]), 1.0 + gamma[idx], blocked
+        )
         trial_cols, trial_x = from_control(x[idx] + dx, cols.subset(idx), layout)
         raw = run_operator(operator, trial_cols, channels, jacobian=True)
         trial_h = control_jacobian(raw, trial_cols, layout)
@@ -280,7 +360,7 @@ def var1d(
         )
         trial_hx = np.where(u, raw["bt"], 0.0)
         trial_h = np.where(u[..., None], trial_h, 0.0)
-        tjb, tjo = _cost_terms(trial_x, xb[idx], b_inv[idx], trial_hx, y[idx], weight[idx])
+        tjb, tjo = _cost_terms(trial_x, xb[idx], cov.pick(idx), trial_hx, y[idx], weight[idx])
         tj = np.where(valid, tjb + tjo, np.nan)
         trial_cost[idx, it] = tj
         n_iter[idx] = it
@@ -307,17 +387,17 @@ def var1d(
         cost[idx, it] = cost_now[idx]
 
         if acc.size:
-            grad, curv = _gradient_and_curvature(x[acc], xb[acc], b_inv[acc], h[acc], hx[acc], y[acc], weight[acc])
-            d2 = _gauss_newton_d2(grad, b_inv[acc], curv)
-            done = (d2 < step_tol * n_ctl) | (
-                (decrease < cost_tol * np.maximum(n_used[acc], 1)) & (d2 < n_ctl)
-            )
+            grad = _gradient(x[acc], xb[acc], cov.pick(acc), h[acc], hx[acc], y[acc], weight[acc])
+            blocked = _blocked(x[acc], grad, cols.subset(acc), layout)
+            d2 = _gauss_newton_d2(grad, cov.pick(acc), _scaled_jacobian(h[acc], weight[acc]), blocked)
+            small_decrease = (decrease >= 0) & (decrease < cost_tol * np.maximum(n_used[acc], 1))
+            done = (d2 < step_tol * n_ctl) | (small_decrease & (d2 < n_ctl))
             status[acc[done]] = CONVERGED
             active[acc[done]] = False
 
     analysis = write_columns(background, cols, ("profile",), control_emissivity)
     diagnostics = _diagnostics(
-        background=background, channels=channels, layout=layout, b_full=b_full, b_inv=b_inv,
+        background=background, channels=channels, layout=layout, cov=cov,
         h=h, weight=weight, y=y, h_xb=h_xb, hx=hx, used=used, reason=reason,
         departure_std=departure_std, r=r, x=x, xb=xb, cost=cost, trial_cost=trial_cost,
         status=status, n_iter=n_iter, n_rejected=n_rejected, gamma=gamma,
@@ -348,17 +428,28 @@ def _replace_columns(cols, index, new):
     return out
 
 
-def _diagnostics(*, background, channels, layout, b_full, b_inv, h, weight, y, h_xb, hx, used,
+def _diagnostics(*, background, channels, layout, cov, h, weight, y, h_xb, hx, used,
                  reason, departure_std, r, x, xb, cost, trial_cost, status, n_iter, n_rejected,
                  gamma, diagnostic_matrices, settings) -> xr.Dataset:
-    curvature = np.einsum("pcn,pc,pcm->pnm", h, weight, h)
-    s_hat = _sym_inverse(b_inv + curvature)
-    kernel = s_hat @ curvature
-    diag_a = np.einsum("pii->pi", kernel)
+    # m-form (Rodgers 2000 eq. 2.44 gain, from memory): G~ = B H~^T (H~ B H~^T + I)^-1,
+    # A = G~ H~, S = B - G~ H~ B = (I - A) B; no n x n inverse is needed.
+    h_tilde = _scaled_jacobian(h, weight)
+    b_full = np.broadcast_to(cov.b, (len(h),) + cov.b.shape[1:])
+    bht = cov.b @ _t(h_tilde)
+    inner = h_tilde @ bht + np.eye(h_tilde.shape[1])
+    gain = _t(np.linalg.solve(inner, _t(bht)))  # inner is symmetric
+    diag_a = np.einsum("pnc,pcn->pn", gain, h_tilde)
+    if diagnostic_matrices:
+        kernel = gain @ h_tilde
+        s_hat = cov.b - gain @ _t(bht)  # (I - A) B with H~ B = (B H~^T)^T
+        s_hat = 0.5 * (s_hat + _t(s_hat))
+        s_diag = np.einsum("pii->pi", s_hat)
+    else:
+        s_diag = np.einsum("pii->pi", b_full) - np.einsum("pnc,pcn->pn", gain, _t(bht))
     groups = np.array(layout.groups)
     group_names = list(dict.fromkeys(layout.groups))
     dfs_by = np.stack([diag_a[:, groups == g].sum(axis=1) for g in group_names], axis=1)
-    jb, jo = _cost_terms(x, xb, b_inv, hx, y, weight)
+    jb, jo = _cost_terms(x, xb, cov, hx, y, weight)
     dep_an = np.where(np.isnan(y), np.nan, y - np.where(used, hx, np.nan))
 
     coords = {
@@ -400,13 +491,13 @@ def _diagnostics(*, background, channels, layout, b_full, b_inv, h, weight, y, h
         "departure_analysis": (pc, dep_an, {"long_name": "analysis departure y - H(xa), used observations",
                                             "units": "K"}),
         "observation_error_variance": ("channel", r, {"long_name": "diagonal of R", "units": "K2"}),
-        "dfs": ("profile", np.trace(kernel, axis1=1, axis2=2),
+        "dfs": ("profile", diag_a.sum(axis=1),
                 {"long_name": "degrees of freedom for signal, trace(A)", "units": "1"}),
         "dfs_by_variable": (("profile", "control_group"), dfs_by,
                             {"long_name": "partial trace of the averaging kernel per variable", "units": "1"}),
         "background_error_std": (("profile", ROW), np.sqrt(np.einsum("pii->pi", b_full)),
                                  {"long_name": "sqrt(diag(B))", "units": "K or 1 (see control_row)"}),
-        "analysis_error_std": (("profile", ROW), np.sqrt(np.einsum("pii->pi", s_hat)),
+        "analysis_error_std": (("profile", ROW), np.sqrt(s_diag),
                                {"long_name": "sqrt(diag(S)), S analysis error covariance",
                                 "units": "K or 1 (see control_row)"}),
     }
