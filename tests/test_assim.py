@@ -589,3 +589,40 @@ def test_var1d_levenberg_marquardt_handles_a_strongly_nonlinear_case():
     assert (lm.diagnostics["n_rejected_steps"].values > 0).any()
     x_an = control(lm.analysis, layout)
     assert _mahalanobis(x_an - x_true, b).mean() < _mahalanobis(x_bg - x_true, b).mean()
+
+
+def test_per_channel_emissivity_follows_channel_labels_not_positions():
+    op, bg, layout, b, h, r, y, hxb, xb, obs = _linear_case(emissivity="channel")
+    res = assim.var1d(op, bg, obs, b_matrix=covariance_dataarray(b, layout), lm_damping=0.0,
+                      control_emissivity=True)
+    reversed_bg = bg.isel(channel=slice(None, None, -1))
+    res_rev = assim.var1d(op, reversed_bg, obs.isel(channel=slice(None, None, -1)),
+                          b_matrix=covariance_dataarray(b, layout), lm_damping=0.0, control_emissivity=True)
+    em = res.analysis["surface_emissivity"]
+    em_rev = res_rev.analysis["surface_emissivity"]
+    assert list(em_rev["channel"].values) == list(reversed_bg["channel"].values)
+    xr.testing.assert_allclose(em, em_rev.sel(channel=em["channel"]))
+    assert not np.allclose(em.values, em_rev.values)  # the order really differs
+    with pytest.raises(ValueError, match="surface_emissivity channels"):
+        assim.var1d(op, bg.isel(channel=slice(1, None)), obs, b_matrix=b, control_emissivity=True)
+
+
+@pytest.mark.parametrize("method", ["perturbed", "transform"])
+def test_ensemble_update_on_physical_model_improves_the_mean(method):
+    op, background, obs, b, layout, x_true, x_bg = _physical_case(n_prof=30, seed=2)
+    ens = assim.sample_ensemble(background, b, seed=3)  # default size 64
+    res = assim.ensemble_update(op, ens, obs, method=method, seed=4)
+    n_lev = layout.n_levels
+
+    def mean_error(ds):
+        cols = read_columns(ds, ("profile", "member"), (), "ens")
+        return to_control(cols, layout, "ens").reshape(30, 64, -1).mean(axis=1) - x_true
+
+    err_f, err_a = mean_error(ens), mean_error(res.analysis)
+    for part in (slice(0, n_lev), slice(n_lev, 2 * n_lev), slice(2 * n_lev, 2 * n_lev + 1)):
+        assert np.sqrt((err_a[:, part] ** 2).mean()) < np.sqrt((err_f[:, part] ** 2).mean())
+    # Spread shrinks where observed: surface temperature (window channels).
+    ts = layout.surface_temperature
+    spread = lambda ds: to_control(read_columns(ds, ("profile", "member"), (), "e"), layout, "e").reshape(
+        30, 64, -1)[:, :, ts].std(axis=1).mean()
+    assert spread(res.analysis) < 0.8 * spread(ens)

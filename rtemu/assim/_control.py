@@ -204,11 +204,10 @@ def read_columns(
     if "channel" in emis.dims:
         if "channel" in ds.coords:
             have = [str(c) for c in ds["channel"].values]
-            absent = [c for c in channels if c not in have]
-            if absent:
+            if sorted(have) != sorted(channels):
                 raise ValueError(
-                    f"{what}: surface_emissivity lacks operator channel(s) {absent} "
-                    "(rule: one value per operator channel)"
+                    f"{what}: surface_emissivity channels {have} differ from the operator's "
+                    f"{list(channels)} (rule: one value per operator channel)"
                 )
             ds = ds.assign(surface_emissivity=emis.sel(channel=list(channels)))
         elif ds.sizes["channel"] != len(channels):
@@ -359,19 +358,10 @@ def write_columns(
         if cols.emissivity_channels is None:
             put("surface_emissivity", cols.emissivity, ())
         else:
+            values = cols.emissivity
             if "channel" in template.coords:
-                # Keep the template's own channel set; write the operator's channels.
-                em = template["surface_emissivity"]
-                em = em.transpose(*[d for d in em.dims])
-                full = out["surface_emissivity"].broadcast_like(
-                    xr.DataArray(np.zeros(shape), dims=column_dims)
-                ).transpose(*column_dims, "channel").copy()
-                full.loc[{"channel": list(cols.emissivity_channels)}] = cols.emissivity.reshape(
-                    *shape, -1
-                )
-                full.attrs["units"] = CANONICAL_UNITS["surface_emissivity"]
-                order = [d for d in em.dims] + [d for d in full.dims if d not in em.dims]
-                out["surface_emissivity"] = full.transpose(*order)
-            else:
-                put("surface_emissivity", cols.emissivity, ("channel",))
+                # Columns hold the operator's channel order; the template may use another.
+                order = [list(cols.emissivity_channels).index(str(c)) for c in template["channel"].values]
+                values = values[:, order]
+            put("surface_emissivity", values, ("channel",))
     return out

@@ -42,6 +42,7 @@ import numpy as np
 import xarray as xr
 
 from rtemu.assim import qc as _qc
+from rtemu.assim._linalg import one_blas_thread
 from rtemu.assim._control import from_control, layout_for, read_columns, to_control, write_columns
 from rtemu.assim._operator import (
     observation_error_variance,
@@ -78,6 +79,7 @@ class EnsembleResult:
         return self.diagnostics["qc_reason"]
 
 
+@one_blas_thread
 def perturbed_observation_update(x, hx, y, r, weight, eps):
     """Stochastic EnKF analysis with perturbed observations, batched over columns.
 
@@ -112,6 +114,7 @@ def perturbed_observation_update(x, hx, y, r, weight, eps):
     return x + np.swapaxes(pht @ z, 1, 2)
 
 
+@one_blas_thread
 def transform_update(x, hx, y, r, weight):
     """Deterministic ETKF analysis (symmetric square root), batched over columns.
 

@@ -54,6 +54,7 @@ import numpy as np
 import xarray as xr
 
 from rtemu.assim import qc as _qc
+from rtemu.assim._linalg import one_blas_thread
 from rtemu.assim._control import (
     control_bounds,
     from_control,
@@ -139,6 +140,7 @@ def _mv(m: np.ndarray, v: np.ndarray) -> np.ndarray:
 class _Covariance:
     """B and B^-1, shared by all columns ([1, n, n]) or per column ([N, n, n])."""
 
+    @one_blas_thread
     def __init__(self, b: np.ndarray):
         self.b = b[None] if b.ndim == 2 else b
         inv = np.linalg.inv(self.b)
@@ -157,6 +159,7 @@ def _scaled_jacobian(h, weight):
     return h * np.sqrt(weight)[..., None]
 
 
+@one_blas_thread
 def _apply_inverse_hessian(v, cov: _Covariance, h_tilde, scale):
     """[scale B^-1 + H~^T H~]^-1 v by the Sherman-Morrison-Woodbury identity.
 
@@ -168,6 +171,12 @@ def _apply_inverse_hessian(v, cov: _Covariance, h_tilde, scale):
     inner = h_tilde @ bht + np.eye(h_tilde.shape[1])
     bv = _mv(cov.b, v) / scale[:, None]
     return bv - _mv(bht, np.linalg.solve(inner, _mv(h_tilde, bv)[..., None])[..., 0])
+
+
+@one_blas_thread
+def _background_variance_in_bt(h, cov: _Covariance):
+    """diag(H B H^T) [K2] per column and channel."""
+    return np.einsum("pcn,pcn->pc", h, _t(cov.b @ _t(h)))
 
 
 def _cost_terms(x, xb, cov: _Covariance, hx, y, weight):
@@ -197,6 +206,7 @@ def _blocked(x, grad, cols, layout):
     return ((x >= hi - tol) & (grad < 0)) | ((x <= lo + tol) & (grad > 0))
 
 
+@one_blas_thread
 def _newton_solve(grad, cov: _Covariance, h_tilde, scale, blocked):
     """[scale B^-1 + H~^T H~]^-1 g over the free elements; blocked elements get 0.
 
@@ -307,8 +317,7 @@ def var1d(
     h = control_jacobian(raw, cols_b, layout)
     finite_h = np.isfinite(h).all(axis=-1)
     h = np.where(finite_h[..., None], h, 0.0)
-    hbh = np.einsum("pcn,pcn->pc", h, _t(cov.b @ _t(h)))
-    departure_std = np.sqrt(hbh + r)
+    departure_std = np.sqrt(_background_variance_in_bt(h, cov) + r)
     flag = np.where(finite_h, raw["flag"], raw["flag"] | 1)
     reason = _qc.screen(y, h_xb, flag, departure_std, qc_threshold)
     used = reason == _qc.USED
@@ -428,6 +437,7 @@ def _replace_columns(cols, index, new):
     return out
 
 
+@one_blas_thread
 def _diagnostics(*, background, channels, layout, cov, h, weight, y, h_xb, hx, used,
                  reason, departure_std, r, x, xb, cost, trial_cost, status, n_iter, n_rejected,
                  gamma, diagnostic_matrices, settings) -> xr.Dataset:
