@@ -192,8 +192,8 @@ def _transfer_block(tables: _Tables, p, t, q, ts, em, zen, jacobian):
     bc = tables.band_channel
     mu = np.cos(np.deg2rad(zen))[:, None, None]  # [N, 1, 1]
     tm, paths, d_dt, d_dq = _absorber_paths(inst, p, t, q)
-    # eq. 3, slant: tau[n, b, j]
-    tau = np.einsum("bk,knj->nbj", tables.k, paths) / mu
+    # eq. 3, slant: tau[n, b, j]; matmul (BLAS) is much faster than einsum for this contraction
+    tau = np.matmul(tables.k, paths.transpose(1, 0, 2)) / mu
     a_b, b_b = tables.a[bc][None, :, None], tables.b[bc][None, :, None]
     e_b = em[:, bc][:, :, None]  # [N, B, 1]
 
@@ -205,14 +205,17 @@ def _transfer_block(tables: _Tables, p, t, q, ts, em, zen, jacobian):
     s_dn = np.exp(-below)
     total = t_up[:, :, :1]  # t_0 = s_L-1, [N, B, 1]
 
-    planck_layer = planck(tables.a[None, :, None], tables.b[None, :, None], tm[:, None, :])[:, bc]
+    planck_channel = planck(tables.a[None, :, None], tables.b[None, :, None], tm[:, None, :])  # [N, C, L-1]
+    planck_layer = planck_channel[:, bc]
     planck_sfc = planck(tables.a[None, :], tables.b[None, :], ts[:, None])[:, bc][:, :, None]
     cosmic = tables.cosmic[bc][None, :, None]
 
     up_step = t_up[:, :, 1:] - t_up[:, :, :-1]  # t_j+1 - t_j, [N, B, L-1]
     dn_step = s_dn[:, :, :-1] - s_dn[:, :, 1:]  # s_j - s_j+1
-    upwelling = np.sum(planck_layer * up_step, axis=2, keepdims=True)
-    downwelling = np.sum(planck_layer * dn_step, axis=2, keepdims=True)
+    up_contrib = planck_layer * up_step
+    dn_contrib = planck_layer * dn_step
+    upwelling = np.sum(up_contrib, axis=2, keepdims=True)
+    downwelling = np.sum(dn_contrib, axis=2, keepdims=True)
     reflected = downwelling + cosmic * total
     radiance_b = e_b * planck_sfc * total + upwelling + (1.0 - e_b) * total * reflected  # eq. 5
     radiance = np.einsum("cb,nb->nc", tables.band_to_channel, radiance_b[:, :, 0])  # eq. 6
@@ -224,32 +227,46 @@ def _transfer_block(tables: _Tables, p, t, q, ts, em, zen, jacobian):
     # dBT/dR from the inverse Planck function.
     dbt_drad = 1.0 / planck_derivative(tables.a[None, :], tables.b[None, :], bt)  # [N, C]
 
-    # dR_b / d tau_k (derivation in DEVELOPERS.md, "Jacobians of the physical model")
-    up_contrib = planck_layer * up_step
-    up_cum = np.cumsum(up_contrib, axis=2) - up_contrib  # sum_{j<k}
-    dn_contrib = planck_layer * dn_step
-    dn_cum = np.cumsum(dn_contrib[:, :, ::-1], axis=2)[:, :, ::-1] - dn_contrib  # sum_{j>k}
-    dr_dtau = (
-        -e_b * planck_sfc * total
-        + planck_layer * t_up[:, :, :-1]
-        - up_cum
-        + (1.0 - e_b) * total * (-downwelling - 2.0 * cosmic * total + planck_layer * s_dn[:, :, 1:] - dn_cum)
-    )
-    dr_dplanck = up_step + (1.0 - e_b) * total * dn_step
-    dplanck_dtm = planck_derivative(tables.a[None, :, None], tables.b[None, :, None], tm[:, None, :])[:, bc]
-    dtau_dtm = np.einsum("bk,knj->nbj", tables.k, d_dt) / mu
-    dtau_dqm = np.einsum("bk,knj->nbj", tables.k, d_dq) / mu
-    dr_dtm = dr_dplanck * dplanck_dtm + dr_dtau * dtau_dtm  # [N, B, L-1]
-    dr_dqm = dr_dtau * dtau_dqm
+    # dR_b / d tau_k (derivation in DEVELOPERS.md, "Jacobians of the physical model"), with
+    # w = (1 - e) t_0:
+    #   B_k (t_k + w s_k+1) - sum_{j<k} B_j (t_j+1 - t_j) - w sum_{j>k} B_j (s_j - s_j+1)
+    #   - e B_s t_0 - w (D + 2 B_cosmic t_0)
+    # Written with in-place updates: the [N, B, L-1] temporaries dominate the cost.
+    w = (1.0 - e_b) * total  # [N, B, 1]
+    dr_dtau = w * s_dn[:, :, 1:]
+    dr_dtau += t_up[:, :, :-1]
+    dr_dtau *= planck_layer
+    up_cum = np.cumsum(up_contrib, axis=2)
+    up_cum -= up_contrib  # sum_{j<k}
+    dr_dtau -= up_cum
+    dn_cum = np.cumsum(dn_contrib[:, :, ::-1], axis=2)[:, :, ::-1]
+    dn_cum -= dn_contrib  # sum_{j>k}
+    dn_cum *= w
+    dr_dtau -= dn_cum
+    dr_dtau -= e_b * planck_sfc * total + w * (downwelling + 2.0 * cosmic * total)
+
+    dr_dplanck = w * dn_step
+    dr_dplanck += up_step
+    # dB/dT = B (b / T^2) (1 + B / a): the Planck derivative from B itself, no second exp
+    dplanck_dtm = planck_channel * (tables.b[None, :, None] / tm[:, None, :] ** 2)
+    dplanck_dtm *= 1.0 + planck_channel / tables.a[None, :, None]
+    dr_dtm = dr_dplanck
+    dr_dtm *= dplanck_dtm[:, bc]
+    inv_mu = 1.0 / mu[:, :, 0]  # [N, 1]
+    dtau_dtm = np.matmul(tables.k, (d_dt * inv_mu).transpose(1, 0, 2))
+    dtau_dtm *= dr_dtau
+    dr_dtm += dtau_dtm  # [N, B, L-1]
+    dr_dqm = np.matmul(tables.k, (d_dq * inv_mu).transpose(1, 0, 2))
+    dr_dqm *= dr_dtau
 
     # Sum sub-bands into channels, then spread layer derivatives onto the two levels.
     def to_channels(x):  # dBT_c = dBT/dR_c * sum_b w_b dR_b
-        return np.einsum("cb,nbj->ncj", tables.band_to_channel, x) * dbt_drad[:, :, None]
+        out = np.matmul(tables.band_to_channel, x)
+        out *= dbt_drad[:, :, None]
+        return out
 
-    layer_t = to_channels(dr_dtm)
-    layer_q = to_channels(dr_dqm)
-    result["jacobian_air_temperature"] = _layers_to_levels(layer_t)
-    result["jacobian_specific_humidity"] = _layers_to_levels(layer_q)
+    result["jacobian_air_temperature"] = _layers_to_levels(to_channels(dr_dtm))
+    result["jacobian_specific_humidity"] = _layers_to_levels(to_channels(dr_dqm))
     dr_dts = e_b * total * planck_derivative(a_b, b_b, ts[:, None, None])
     dr_dem = planck_sfc * total - total * reflected
     result["jacobian_surface_temperature"] = to_channels(dr_dts)[:, :, 0]
@@ -260,9 +277,11 @@ def _transfer_block(tables: _Tables, p, t, q, ts, em, zen, jacobian):
 def _layers_to_levels(layer):
     """Chain d/d(layer mean) onto levels: each layer mean is half of its two levels."""
     n, c, nl = layer.shape
-    level = np.zeros((n, c, nl + 1))
-    level[:, :, :-1] += 0.5 * layer
-    level[:, :, 1:] += 0.5 * layer
+    level = np.empty((n, c, nl + 1))
+    half = 0.5 * layer
+    level[:, :, :-1] = half
+    level[:, :, -1] = 0.0
+    level[:, :, 1:] += half
     return level
 
 
