@@ -617,7 +617,7 @@ def _jacobian_examples(emulator, reference, dataset, rows: dict) -> dict:
 
 def _derivative_checks(emulator, dataset, rows) -> dict:
     if rows.size == 0:
-        reason = "not run: no profile with every channel unflagged"
+        reason = "no profile with every channel unflagged"
         return {"tangent_linear": {"run": False, "reason": reason},
                 "adjoint": {"run": False, "reason": reason}}
     block = dataset.isel(profile=rows).load()
@@ -1009,5 +1009,5 @@ def _report(summary: dict, examples: dict) -> str:
                      "unflagged profiles): "
                      + ", ".join(f"{k} = row {v['row']} ({v['tcwv']:.1f} kg m-2)" for k, v in examples.items())
                      + ".")
-    lines += ["", "Per-profile errors: `audit.nc`; all figures of this report: `summary.json`.", ""]
+    lines += ["", "Per-profile errors: `audit.nc`; every number of this report: `summary.json`.", ""]
     return "\n".join(lines)

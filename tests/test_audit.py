@@ -452,3 +452,16 @@ def test_drawn_test_set_records_its_seed(tmp_path, instrument, capsys):
     assert summary["profiles"] == 12
     assert "audit" in capsys.readouterr().err  # the tqdm bar
     assert "seed 3" in (tmp_path / "a" / "report.md").read_text()
+
+
+def test_everything_flagged_gives_no_data_verdicts(tmp_path, instrument):
+    n = 6
+    emulator = _CraftedOperator(instrument, offset=OFFSET, flagged={(p, c) for p in range(n) for c in range(3)})
+    summary = audit.run_audit(None, tmp_path / "a", data=_profiles(n, seed=8), operator=emulator, progress=False)
+    assert [summary["channels"][c]["verdict"] for c in CHANNELS] == ["no data"] * 3
+    assert all(summary["channels"][c]["rmse_k"] is None for c in CHANNELS)  # NaN -> JSON null
+    assert summary["tangent_linear"]["run"] is False and summary["adjoint"]["run"] is False
+    assert "jacobians_temperature.png" not in summary["figures"]
+    text = (tmp_path / "a" / "report.md").read_text()
+    assert "Not run: no profile with every channel unflagged" in text
+    assert "0 of 3 channels pass" in text
