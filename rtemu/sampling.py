@@ -779,51 +779,58 @@ def _write_chunk(path: Path, arrays: dict, index: int, arguments_hash: str) -> N
                 f.create_dataset(name, data=values, track_times=False)
 
 
+def _compute_chunk_to_file(path: str, index: int, arguments_hash: str, *, start: int, count: int,
+                           **job) -> None:
+    """Compute one chunk and save it (runs on a worker that shares our file system)."""
+    _write_chunk(Path(path), _compute_chunk(start=start, count=count, **job), index, arguments_hash)
+
+
 @contextlib.contextmanager
 def _dask_client(workers, scheduler):
+    """(client or None, whether the workers share this process's file system)."""
     if scheduler is not None:
         import distributed
 
         with distributed.Client(scheduler) as client:
-            yield client
+            yield client, False
     elif workers is None or workers == 1:
-        yield None
+        yield None, True
     else:
         import distributed
 
         with distributed.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                                       dashboard_address=None) as cluster, distributed.Client(cluster) as client:
-            yield client
+            yield client, True
 
 
-def _run_chunks(todo: list[tuple[int, int, int]], job: dict, client, on_done) -> None:
-    """Compute chunks (index, start, count); ``on_done(index, result)`` on the caller's side."""
+def _run_chunks(tasks: list[tuple[int, object, dict]], client, on_done) -> None:
+    """Run ``func(**kwargs)`` for each (index, func, kwargs); ``on_done(index, result)`` here."""
     if client is None:
-        for index, start, count in todo:
-            on_done(index, _compute_chunk(start=start, count=count, **job))
+        for index, func, kwargs in tasks:
+            on_done(index, func(**kwargs))
         return
     import distributed
 
-    # Bounded number of chunks in flight, so finished results never pile up in memory.
-    in_flight = max(2, 2 * len(client.scheduler_info().get("workers", {})) or 2)
-    pending = iter(todo)
+    # A bounded number of chunks in flight, so finished results never pile up in memory.
+    in_flight = max(2, 2 * len(client.nthreads()))
+    pending = iter(tasks)
     futures = {}
+    queue = distributed.as_completed([])
 
-    def submit_next(queue):
-        for index, start, count in pending:
-            future = client.submit(_compute_chunk, start=start, count=count, pure=False, **job)
+    def submit_next():
+        for index, func, kwargs in pending:
+            future = client.submit(func, pure=False, **kwargs)
             futures[future] = index
             queue.add(future)
             return
 
-    queue = distributed.as_completed([])
     for _ in range(in_flight):
-        submit_next(queue)
+        submit_next()
     for future in queue:
         result = future.result()
         on_done(futures.pop(future), result)
-        del future
-        submit_next(queue)
+        del future, result
+        submit_next()
 
 
 def sample_to_netcdf(
@@ -926,14 +933,22 @@ def sample_to_netcdf(
                desc=f"rtemu sample {output.name}", disable=not progress)
 
     def on_done(index, arrays):
-        _write_chunk(paths[index], arrays, index, arguments_hash)
+        if arrays is not None:
+            _write_chunk(paths[index], arrays, index, arguments_hash)
         bar.update(1)
 
     job = {"instrument_toml": inst.to_toml(), "seed": seed, "grid": grid, "jacobian": bool(jacobian)}
     try:
         if todo:
-            with _dask_client(workers, scheduler) as client:
-                _run_chunks(todo, job, client, on_done)
+            with _dask_client(workers, scheduler) as (client, shared_files):
+                if client is not None and shared_files:
+                    # Local workers save their own chunks: no result crosses the network.
+                    tasks = [(i, _compute_chunk_to_file,
+                              dict(path=str(paths[i]), index=i, arguments_hash=arguments_hash,
+                                   start=s, count=n, **job)) for i, s, n in todo]
+                else:
+                    tasks = [(i, _compute_chunk, dict(start=s, count=n, **job)) for i, s, n in todo]
+                _run_chunks(tasks, client, on_done)
     finally:
         bar.close()
     _assemble(output, inst, [paths[i] for i, _, _ in chunks], grid, arguments, chunk_size)

@@ -306,6 +306,17 @@ def test_one_and_two_workers_give_the_same_bytes(tmp_path, inst):
     assert one.read_bytes() == two.read_bytes()
 
 
+def test_scheduler_address_gives_the_same_bytes(tmp_path, inst):
+    distributed = pytest.importorskip("distributed")
+    one = _write(tmp_path / "one", "t.nc", inst, count=200, chunk_size=50)
+    # An in-process cluster starts fast; results travel back to the caller, which writes.
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=2, processes=False,
+                                  dashboard_address=None) as cluster:
+        remote = _write(tmp_path / "remote", "t.nc", inst, count=200, chunk_size=50,
+                        scheduler=cluster.scheduler_address)
+    assert one.read_bytes() == remote.read_bytes()
+
+
 def test_failure_leaves_no_output_and_rerun_completes(tmp_path, inst, monkeypatch):
     real = physics.simulate
     calls = []
