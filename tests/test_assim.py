@@ -626,3 +626,16 @@ def test_ensemble_update_on_physical_model_improves_the_mean(method):
     spread = lambda ds: to_control(read_columns(ds, ("profile", "member"), (), "e"), layout, "e").reshape(
         30, 64, -1)[:, :, ts].std(axis=1).mean()
     assert spread(res.analysis) < 0.8 * spread(ens)
+
+
+def test_accept_flags_lets_chosen_flag_bits_through():
+    op, bg, layout, b, h, r, y, hxb, xb, obs = _linear_case()
+    op.flagged = ((0, 2),)  # the stub sets bit 2
+    strict = assim.var1d(op, bg, obs, b_matrix=b)
+    lenient = assim.var1d(op, bg, obs, b_matrix=b, accept_flags=2)
+    other_bit = assim.var1d(op, bg, obs, b_matrix=b, accept_flags=8)
+    assert strict.qc_reason.values[0, 2] == qc.OPERATOR_FLAG
+    assert lenient.qc_reason.values[0, 2] == qc.USED
+    assert other_bit.qc_reason.values[0, 2] == qc.OPERATOR_FLAG
+    with pytest.raises(ValueError, match="accept_flags"):
+        assim.var1d(op, bg, obs, b_matrix=b, accept_flags=-1)

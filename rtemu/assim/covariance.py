@@ -124,9 +124,11 @@ def estimate_background_covariance(
 ) -> xr.DataArray:
     """Background error covariance B in control space from a sample of states.
 
-    The states (e.g. background-minus-truth pairs added to a reference, or an ensemble
-    of forecasts) are converted to control vectors (T, ln q, Ts[, emissivity]); their
-    covariance is shrunk toward the diagonal (:func:`shrunk_covariance`).
+    The spread of the sample is taken as the background error: use e.g. an ensemble of
+    forecasts valid at one time, or a reference plus many background-minus-truth
+    differences; a climatological sample gives a climatological prior. The states are
+    converted to control vectors (T, ln q, Ts[, emissivity]) and their covariance is
+    shrunk toward its diagonal (:func:`shrunk_covariance`).
 
     Parameters
     ----------

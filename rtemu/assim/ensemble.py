@@ -167,6 +167,7 @@ def ensemble_update(
     emulator_error=None,
     qc_threshold: float | None = _qc.DEFAULT_THRESHOLD,
     control_emissivity: bool = False,
+    accept_flags: int = 0,
     member_dim: str = "member",
 ) -> EnsembleResult:
     """Ensemble Kalman analysis of an ensemble of columns.
@@ -190,9 +191,14 @@ def ensemble_update(
     observation_error, emulator_error : mapping, DataArray or array_like [C], optional
         Standard deviations [K] as in :func:`rtemu.assim.observation_error_variance`.
     qc_threshold : float or None
-        First-guess check against sqrt(var_k H(x_k) + R) [1]; None: off.
+        First-guess check of |y - mean_k H(x_k)| against qc_threshold sqrt(var_k H(x_k) + R)
+        [1]; None: off. A channel flagged (or non-finite) for any member of a column is
+        not used in that column (reason ``operator_flag``).
     control_emissivity : bool
         Also update surface emissivity.
+    accept_flags : int
+        quality_flag bits that do not make an observation unusable (see
+        :func:`rtemu.assim.var1d`); default 0: any nonzero flag rejects.
     member_dim : str
         Name of the member dimension.
 
@@ -228,7 +234,7 @@ def ensemble_update(
     r = observation_error_variance(operator, observation_error, emulator_error)
     raw = run_operator(operator, cols, channels, jacobian=False)
     hx = raw["bt"].reshape(n_prof, n_mem, -1)
-    flag = raw["flag"].reshape(n_prof, n_mem, -1)
+    flag = (raw["flag"] & ~_qc.check_accept_flags(accept_flags)).reshape(n_prof, n_mem, -1)
     member_bad = (flag != 0) | ~np.isfinite(hx)
     hx_mean = np.where(member_bad.any(axis=1), np.nan, hx.mean(axis=1))
     spread = np.where(member_bad.any(axis=1), np.nan, hx.std(axis=1, ddof=1))
@@ -249,6 +255,7 @@ def ensemble_update(
     analysis = write_columns(ds, new_cols, column_dims, control_emissivity)
     diagnostics = _diagnostics(ds, channels, reason, used, y, hx_mean, spread, departure_std, r,
                                method, inflation, n_mem)
+    diagnostics.attrs["accept_flags"] = _qc.check_accept_flags(accept_flags)
     if single:
         analysis = analysis.isel(profile=0)
         diagnostics = diagnostics.isel(profile=0)
@@ -311,7 +318,7 @@ def sample_ensemble(
     x = xb[:, None, :] + np.einsum("pij,pkj->pki", chol, z)
     rep = cols.subset(np.repeat(np.arange(n_prof), n_members))
     new_cols, _ = from_control(x.reshape(n_prof * n_members, n_ctl), rep, layout)
-    template = background.expand_dims({member_dim: n_members}).copy()
+    template = background.expand_dims({member_dim: n_members}).copy(deep=True)
     return write_columns(template, new_cols, ("profile", member_dim), control_emissivity).transpose(
         member_dim, ...
     )

@@ -71,6 +71,13 @@ def screen(observed, simulated, flag, departure_std, threshold=DEFAULT_THRESHOLD
     return reason
 
 
+def check_accept_flags(accept_flags) -> int:
+    """Validate the bitmask of quality_flag bits that do not reject an observation."""
+    if isinstance(accept_flags, bool) or not isinstance(accept_flags, (int, np.integer)) or accept_flags < 0:
+        raise ValueError(f"accept_flags must be a non-negative integer bitmask, got {accept_flags!r}")
+    return int(accept_flags)
+
+
 def reason_attrs() -> dict:
     """CF flag attributes of a ``qc_reason`` variable."""
     return {

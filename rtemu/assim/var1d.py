@@ -248,6 +248,7 @@ def var1d(
     lm_factor: float = 10.0,
     qc_threshold: float | None = _qc.DEFAULT_THRESHOLD,
     control_emissivity: bool = False,
+    accept_flags: int = 0,
     cost_tol: float = 1e-3,
     step_tol: float = 1e-2,
     diagnostic_matrices: bool = True,
@@ -283,6 +284,10 @@ def var1d(
     control_emissivity : bool
         Also analyse surface emissivity (one element, or one per channel when the
         background's surface_emissivity has a channel dim).
+    accept_flags : int
+        quality_flag bits that do not make an observation unusable (e.g.
+        ``rtemu.flags.PHYSICS_FALLBACK``: the value was recomputed by the physical
+        model); default 0: any nonzero flag rejects.
     cost_tol, step_tol : float
         Convergence tolerances [1] (see the module docstring).
     diagnostic_matrices : bool
@@ -302,6 +307,7 @@ def var1d(
     damped = gamma0 > 0
     if damped and not lm_factor > 1:
         raise ValueError(f"lm_factor must be > 1, got {lm_factor}")
+    tolerated_bits = _qc.check_accept_flags(accept_flags)
 
     cols_b = read_columns(background, ("profile",), channels, "background")
     layout = layout_for(cols_b, control_emissivity)
@@ -313,6 +319,7 @@ def var1d(
 
     # First guess and quality control.
     raw = run_operator(operator, cols_b, channels, jacobian=True)
+    raw["flag"] = raw["flag"] & ~tolerated_bits
     h_xb = raw["bt"]
     h = control_jacobian(raw, cols_b, layout)
     finite_h = np.isfinite(h).all(axis=-1)
@@ -360,6 +367,7 @@ def var1d(
         )
         trial_cols, trial_x = from_control(x[idx] + dx, cols.subset(idx), layout)
         raw = run_operator(operator, trial_cols, channels, jacobian=True)
+        raw["flag"] = raw["flag"] & ~tolerated_bits
         trial_h = control_jacobian(raw, trial_cols, layout)
         u = used[idx]
         valid = (
@@ -413,6 +421,7 @@ def var1d(
         diagnostic_matrices=diagnostic_matrices, settings=dict(
             max_iter=max_iter, lm_damping=gamma0, lm_factor=lm_factor,
             qc_threshold="none" if qc_threshold is None else float(qc_threshold),
+            accept_flags=tolerated_bits,
             cost_tol=cost_tol, step_tol=step_tol,
             control_emissivity=int(control_emissivity),
         ),
