@@ -35,6 +35,9 @@ def atomic_path(
     )
     os.close(fd)
     tmp_path = Path(tmp)
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp_path, 0o666 & ~umask)  # mkstemp makes 0600; finished files get the usual mode
     try:
         yield tmp_path
         if durable:

@@ -1,0 +1,52 @@
+"""Write the shipped example profile file (INVENTED scenario).
+
+Scenario (invented for demonstration): a late-autumn pass of the invented `demo-sounder`
+over the invented archipelago of Kerrow, from a cold, dry polar air mass in the north to
+a moist subtropical one in the south. The profiles are drawn with rtemu's own state
+generator on the demo level grid; nothing here is observed data.
+
+Usage:  python examples/make_example_profiles.py [OUTPUT]   (default examples/data/example_profiles.nc)
+"""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+import numpy as np
+
+from rtemu import load_instrument
+from rtemu._io import to_netcdf_atomic
+from rtemu.sampling import draw_states
+
+HERE = Path(__file__).resolve().parent
+DEFAULT_OUTPUT = HERE / "data" / "example_profiles.nc"
+COUNT = 24
+SEED = 20261201
+
+
+def make_profiles():
+    states = draw_states(COUNT, seed=SEED, channels=load_instrument("demo-sounder"))
+    # Order the pass from the driest (north) to the moistest (south) column.
+    order = np.argsort(states["total_column_water_vapour"].values)
+    keep = ["air_pressure", "air_temperature", "specific_humidity", "surface_temperature",
+            "surface_emissivity", "sensor_zenith_angle", "total_column_water_vapour"]
+    ds = states[keep].isel(profile=order)
+    ds = ds.assign_coords(profile=np.arange(COUNT))
+    ds.attrs = {
+        "title": "rtemu example profiles (INVENTED scenario: a pass over the invented Kerrow archipelago)",
+        "comment": "Drawn with rtemu.sampling.draw_states; not observed data.",
+        "source": f"examples/make_example_profiles.py, seed {SEED}",
+    }
+    return ds
+
+
+def main(argv=None):
+    argv = sys.argv[1:] if argv is None else argv
+    output = Path(argv[0]) if argv else DEFAULT_OUTPUT
+    to_netcdf_atomic(make_profiles(), output)
+    print(f"wrote {output}")
+
+
+if __name__ == "__main__":
+    main()
