@@ -27,17 +27,18 @@ import functools
 import hashlib
 import json
 import os
-import shutil
 import warnings
 from pathlib import Path
-from typing import Iterable, Sequence
+from typing import Sequence
 
 import numpy as np
 import xarray as xr
 from scipy.stats import qmc
 
 from rtemu import atmosphere as atm
-from rtemu._io import atomic_path, to_netcdf_atomic
+from rtemu import flags, physics
+from rtemu._io import atomic_path, write_text_atomic
+from rtemu._units import unit_conversion
 from rtemu._warnings import RtemuWarning
 from rtemu.constants import EPSILON, STANDARD_GRAVITY
 from rtemu.instrument import Instrument, load_instrument
@@ -653,8 +654,6 @@ def _read_levels_text(path: Path) -> np.ndarray:
 
 
 def _read_levels_netcdf(path: Path, engine: str) -> np.ndarray:
-    from rtemu._units import unit_conversion
-
     with xr.open_dataset(path, engine=engine, decode_cf=False) as ds:
         if "air_pressure" not in ds.variables:
             raise ValueError(f"levels file {str(path)!r} has no variable 'air_pressure' "
@@ -682,8 +681,6 @@ _CHUNK_PATTERN = "chunk-{:06d}.h5"
 def _compute_chunk(instrument_toml: str, seed: int, start: int, count: int, grid: np.ndarray,
                    jacobian: bool) -> dict:
     """States and model outputs of one chunk, as plain arrays (runs on a worker)."""
-    from rtemu import physics  # looked up at call time: a worker imports it fresh
-
     inst = Instrument.from_toml(instrument_toml, source="<sampling job>")
     states = draw_states(count, seed=seed, pressure_hpa=grid, start=start, channels=inst)
     inputs = states[["air_pressure", "air_temperature", "specific_humidity", "surface_temperature",
@@ -734,8 +731,6 @@ def _prepare_chunk_dir(side: Path, arguments: dict) -> None:
             "they are discarded and the run starts over", RtemuWarning, stacklevel=3)
         _remove_chunk_dir(side)
     side.mkdir(parents=True)
-    from rtemu._io import write_text_atomic
-
     write_text_atomic(side / _MANIFEST, json.dumps(manifest, sort_keys=True, indent=1) + "\n")
 
 
@@ -978,8 +973,6 @@ def _assemble(output: Path, inst: Instrument, chunk_paths: list[Path], grid: np.
     """Stream the chunk files into one netCDF file at ``output`` (atomically)."""
     import h5netcdf
     import h5py
-
-    from rtemu import flags, physics
 
     count = arguments["count"]
     with h5py.File(chunk_paths[0], "r") as first:
