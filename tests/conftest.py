@@ -61,7 +61,7 @@ def demo_pressure_grid(nlev: int = 30, surface_hpa: float = 1013.25, top_hpa: fl
     return p
 
 
-@pytest.fixture
+@pytest.fixture(scope="session")
 def small_profiles(demo_instrument, us1976_temperature):
     """Builder of a small realistic input Dataset (surface-first, canonical units).
 
@@ -105,6 +105,12 @@ def small_profiles(demo_instrument, us1976_temperature):
         t = t_ref + bumps + rng.normal(0.0, 0.3, (n, nlev))
         q_sfc = rng.uniform(2e-3, 1.5e-2, (n, 1))
         q = np.maximum(q_sfc * (p / p[:, :1]) ** 3, 3e-6) * rng.uniform(0.8, 1.2, (n, nlev))
+        # Keep columns subsaturated (RH <= 95 % over water; Bolton 1980, eq. 10), as clear-sky
+        # columns are: operators flag supersaturated input (rtemu.flags.SUPERSATURATED).
+        es = 6.112 * np.exp(17.67 * (t - 273.15) / (t - 29.65))
+        with np.errstate(divide="ignore"):
+            q_sat = np.where(es < p, 0.622 * es / np.maximum(p - 0.378 * es, 1e-12), np.inf)
+        q = np.minimum(q, 0.95 * q_sat)
         ts = t[:, 0] + rng.normal(0.0, 2.0, n)
         zen = rng.uniform(0.0, 60.0, n)
         nchan = len(inst.channels)
