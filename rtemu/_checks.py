@@ -14,6 +14,7 @@ import numpy as np
 import xarray as xr
 
 from rtemu._units import unit_conversion
+from rtemu.atmosphere import saturation_specific_humidity
 
 INPUT_VARIABLES = (
     "air_pressure",
@@ -27,6 +28,7 @@ INPUT_VARIABLES = (
 TEMPERATURE_RANGE_K = (100.0, 400.0)
 HUMIDITY_MAX = 0.1  # [kg kg-1], exclusive
 ZENITH_MAX_DEG = 85.0
+PRESSURE_MAX_HPA = 1200.0  # above any observed sea-level pressure (about 1084 hPa)
 
 ErrorMode = Literal["raise", "mask"]
 
@@ -42,6 +44,7 @@ class Prepared:
     surface_emissivity: np.ndarray  # [N, C]
     sensor_zenith_angle: np.ndarray  # [N]
     flipped: np.ndarray  # [N] bool: profile was given top-first
+    supersaturated: np.ndarray  # [N] bool: q above saturation over water at some level
     valid: np.ndarray  # [N] bool
     problems: list  # messages for invalid profiles (mask mode)
     emissivity_per_channel: bool  # input emissivity had a channel dim
@@ -184,7 +187,17 @@ def prepare_inputs(
         rule("sensor_zenith_angle", (zen < 0) | (zen > ZENITH_MAX_DEG),
              f"outside [0, {ZENITH_MAX_DEG:g}] degree (rule: plane-parallel geometry)")
 
+    rule("air_pressure", p > PRESSURE_MAX_HPA,
+         f"above {PRESSURE_MAX_HPA:g} hPa (rule: physical range; Pa labelled hPa?)")
+
     valid = ~bad
+    supersaturated = np.zeros(n, dtype=bool)
+    if valid.any():
+        # Not an error: the clear-sky model is defined for any q < 0.1, but a state above
+        # saturation is one it cannot represent; operators flag it (rtemu.flags.SUPERSATURATED).
+        with np.errstate(invalid="ignore"):
+            q_sat = saturation_specific_humidity(t[valid], p[valid])
+        supersaturated[valid] = (q[valid] > q_sat).any(axis=1)
     if bad.any():
         # Give invalid profiles a harmless valid stand-in so the batch computes; their
         # outputs are set to NaN by the caller. A valid profile of the batch serves if any.
@@ -208,6 +221,7 @@ def prepare_inputs(
         surface_emissivity=em,
         sensor_zenith_angle=zen,
         flipped=flipped,
+        supersaturated=supersaturated,
         valid=valid,
         problems=problems,
         emissivity_per_channel="channel" in e_order,

@@ -15,16 +15,22 @@ NOVEL_STATE = 4
 """Multivariate novelty: the state is farther from the training set than any training state."""
 PHYSICS_FALLBACK = 8
 """The value was recomputed by the physical model instead of the emulator."""
+SUPERSATURATED = 16
+"""Specific humidity above saturation over liquid water at some level (Bolton 1980): the
+value is computed (the clear-sky model is defined for any q < 0.1) but the state is one a
+clear-sky model does not represent."""
 
 FLAG_MASKS = np.array(
-    [INVALID_INPUT, OUTSIDE_TRAINING_BOUNDS, NOVEL_STATE, PHYSICS_FALLBACK], dtype=np.int32
+    [INVALID_INPUT, OUTSIDE_TRAINING_BOUNDS, NOVEL_STATE, PHYSICS_FALLBACK, SUPERSATURATED],
+    dtype=np.int32,
 )
-FLAG_MEANINGS = "invalid_input outside_training_bounds novel_state physics_fallback"
+FLAG_MEANINGS = "invalid_input outside_training_bounds novel_state physics_fallback supersaturated"
 FLAG_DESCRIPTIONS = {
     "invalid_input": "non-finite input or outside the physical validity rules",
     "outside_training_bounds": "a variable outside its per-level training range",
     "novel_state": "state farther from the training set than any training state",
     "physics_fallback": "value recomputed by the physical model",
+    "supersaturated": "humidity above saturation over liquid water at some level; value computed",
 }
 
 

@@ -350,7 +350,8 @@ def _compute(instrument, dataset, jacobian, errors, block_size):
     for name in ("jacobian_air_temperature", "jacobian_specific_humidity"):
         if name in arrays:
             arrays[name] = prep.to_caller_order(arrays[name])
-    flag = np.where(prep.valid, 0, _flags.INVALID_INPUT)[:, None] * np.ones(len(inst.channels), np.int32)
+    flag = np.where(prep.valid, 0, _flags.INVALID_INPUT) | np.where(prep.supersaturated, _flags.SUPERSATURATED, 0)
+    flag = flag[:, None] * np.ones(len(inst.channels), np.int32)
     for values in arrays.values():
         values[~prep.valid] = np.nan
     return inst, prep, arrays, flag

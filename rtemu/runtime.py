@@ -309,6 +309,7 @@ class EmulatedOperator(_OperatorBase):
             if name in arrays:
                 arrays[name] = prep.to_caller_order(arrays[name])
         flag[~prep.valid] |= _flags.INVALID_INPUT
+        flag[prep.supersaturated] |= _flags.SUPERSATURATED
         for values in arrays.values():
             values[~prep.valid] = np.nan
         out = _physics.label_outputs(arrays, dataset, self.channels, flag)

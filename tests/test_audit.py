@@ -49,6 +49,10 @@ def _profiles(n: int, seed: int, nlev: int = 25) -> xr.Dataset:
     t = t + 15.0 * np.clip(np.log(100.0 / p) / np.log(200.0), 0.0, None)  # warm stratosphere
     t = t + rng.normal(0.0, 0.5, (n, nlev))
     q = np.maximum(rng.uniform(1e-3, 2e-2, (n, 1)) * (p / p[0]) ** 3, 3e-6)
+    # Subsaturated (RH <= 95 % over water, Bolton 1980 eq. 10): operators flag supersaturation.
+    es = 6.112 * np.exp(17.67 * (t - 273.15) / (t - 29.65))
+    with np.errstate(divide="ignore"):
+        q = np.minimum(q, np.where(es < p, 0.95 * 0.622 * es / np.maximum(p - 0.378 * es, 1e-12), np.inf))
     return xr.Dataset(
         {
             "air_pressure": (("level",), p, {"units": "hPa"}),
