@@ -70,7 +70,8 @@ def small_profiles(demo_instrument, us1976_temperature):
 
     Temperatures are the US-1976 profile plus smooth random perturbations of a few K;
     humidity decays as (p/ps)^3 from a random surface value (2-15 g/kg) with a 3 ppmv-like
-    floor; zenith angles 0-60 degree; emissivities 0.6-0.98. With
+    floor, capped at 95 % relative humidity over water (so no profile is flagged
+    supersaturated); zenith angles 0-60 degree; emissivities 0.6-0.98. With
     ``per_profile_pressure`` every profile gets its own grid (surface pressure 850-1030
     hPa, top 0.3-2 hPa) and ``air_pressure`` has dims (profile, level).
     """

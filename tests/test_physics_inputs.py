@@ -271,3 +271,28 @@ def test_mask_in_tangent_linear_and_adjoint(demo_instrument, masked_case):
     grads = physics.adjoint(demo_instrument, bad, dy, errors="mask")
     assert np.all(np.isnan(grads["air_temperature"].values[invalid]))
     assert np.all(np.isfinite(grads["air_temperature"].values[valid]))
+
+
+# -- pressure upper bound and the supersaturation flag ---------------------------------------
+def test_pascal_labelled_hpa(demo_instrument, profiles):
+    ds = profiles.copy(deep=True)
+    ds["air_pressure"].values[BAD] *= 100.0  # Pa values, but units say hPa
+    raises(demo_instrument, ds, "^air_pressure: ", "above 1200 hPa", "Pa labelled hPa", f"profile index {BAD}\\b")
+
+
+def test_supersaturated_profile_is_flagged_not_rejected(demo_instrument, profiles):
+    # q = 50 g/kg at ~290 K near 1000 hPa is far above saturation (q_sat ~ 11-12 g/kg;
+    # Bolton 1980, MWR 108, 1046, from memory: e_s(15 degC) = 17.0 hPa).
+    ds = with_value(profiles, "specific_humidity", (BAD, 0), 0.05)
+    out = physics.simulate(demo_instrument, ds, jacobian=True, errors="raise")
+    flag = out["quality_flag"].values
+    assert flags.SUPERSATURATED == 16
+    np.testing.assert_array_equal(flag[BAD], flags.SUPERSATURATED)
+    np.testing.assert_array_equal(np.delete(flag, BAD, axis=0), 0)
+    assert np.all(np.isfinite(out["brightness_temperature"].values[BAD]))
+    alone = physics.simulate(demo_instrument, ds.isel(profile=[BAD]), jacobian=True)
+    np.testing.assert_array_equal(out["brightness_temperature"].values[BAD], alone["brightness_temperature"].values[0])
+    # both bits together in mask mode
+    both = with_value(ds, "sensor_zenith_angle", 0, 89.0)
+    masked = physics.simulate(demo_instrument, both, errors="mask")["quality_flag"].values
+    assert np.all(masked[0] == flags.INVALID_INPUT) and np.all(masked[BAD] == flags.SUPERSATURATED)
