@@ -473,7 +473,7 @@ def adjoint_arrays(arrays: dict, dy: np.ndarray) -> dict:
     }
 
 
-def _increments(prep, perturbation: xr.Dataset, dataset: xr.Dataset, channel_ids=None) -> dict:
+def _increments(prep, perturbation: xr.Dataset, dataset: xr.Dataset, channel_ids) -> dict:
     """Increments in canonical units (unit scale only; offsets cancel in a difference)."""
     n, nlev = prep.air_temperature.shape
     nchan = prep.surface_emissivity.shape[1]
@@ -491,7 +491,7 @@ def _increments(prep, perturbation: xr.Dataset, dataset: xr.Dataset, channel_ids
             dx[name] = np.zeros((n, nlev) if len(dims) == 2 else n)
     if "surface_emissivity" in perturbation:
         da = perturbation["surface_emissivity"]
-        if channel_ids is not None and "channel" in da.coords:  # labelled: operator's order
+        if "channel" in da.coords:  # labelled: operator's order
             da = da.sel(channel=list(channel_ids))
         if "channel" in da.dims:
             values = np.asarray(da.transpose("profile", "channel").values, dtype=float)
@@ -516,7 +516,7 @@ def _bt_array(bt_perturbation, channel_ids, n) -> np.ndarray:
     return values
 
 
-def _label_gradients(grads: dict, prep, dataset: xr.Dataset, channel_ids=None) -> xr.Dataset:
+def _label_gradients(grads: dict, prep, dataset: xr.Dataset, channel_ids) -> xr.Dataset:
     data_vars = {}
     for name, dims in (("air_temperature", ("profile", "level")),
                        ("specific_humidity", ("profile", "level")),
@@ -531,7 +531,7 @@ def _label_gradients(grads: dict, prep, dataset: xr.Dataset, channel_ids=None) -
         data_vars["surface_emissivity"] = (("profile",), em.sum(axis=1),
                                            {"long_name": "adjoint gradient with respect to surface_emissivity"})
     coords = {d: dataset.coords[d] for d in ("profile", "level") if d in dataset.coords}
-    if channel_ids is not None and prep.emissivity_per_channel:  # operator's channel order
+    if prep.emissivity_per_channel:  # operator's channel order
         coords["channel"] = ("channel", np.array(list(channel_ids), dtype=object))
     return xr.Dataset(data_vars, coords=coords)
 

@@ -88,7 +88,7 @@ class _OperatorBase:
         out = self._simulate_eager(dataset, True)
         prep = prepare_inputs(dataset, self.channels, errors="mask")
         arrays = {k: out[k].values for k in _physics.JACOBIAN_NAMES}
-        dy = _physics.tangent_linear_arrays(arrays, _physics._increments(prep, perturbation, dataset))
+        dy = _physics.tangent_linear_arrays(arrays, _physics._increments(prep, perturbation, dataset, self.channels))
         return _physics.label_outputs(
             {"brightness_temperature": dy}, dataset, self.channels, out["quality_flag"].values
         )
@@ -99,7 +99,7 @@ class _OperatorBase:
         prep = prepare_inputs(dataset, self.channels, errors="mask")
         arrays = {k: out[k].values for k in _physics.JACOBIAN_NAMES}
         dy = _physics._bt_array(bt_perturbation, self.channels, dataset.sizes["profile"])
-        return _physics._label_gradients(_physics.adjoint_arrays(arrays, dy), prep, dataset)
+        return _physics._label_gradients(_physics.adjoint_arrays(arrays, dy), prep, dataset, self.channels)
 
 
 def _simulate_block(block: xr.Dataset, operator: _OperatorBase, jacobian: bool) -> xr.Dataset:
@@ -140,20 +140,20 @@ _SESSIONS: dict = {}
 _SESSIONS_LOCK = threading.Lock()
 
 
-def _session_for(path: str, digest: str, threads: int | None):
-    """One onnxruntime session per (file content, thread count) per process."""
-    import onnxruntime as ort
+def _session_for(path: str, digest: str, threads: int | None, jacobian: bool):
+    """One onnxruntime session per (file content, threads, outputs) per process.
 
-    key = (path, digest, threads)
+    Without Jacobians the session runs a pruned copy of the graph that computes only the
+    brightness temperatures and flags (onnxruntime evaluates every node otherwise).
+    """
+    from rtemu import bundle as _bundle
+
+    key = (path, digest, threads, jacobian)
     with _SESSIONS_LOCK:
         session = _SESSIONS.get(key)
         if session is None:
-            options = ort.SessionOptions()
-            if threads:
-                options.intra_op_num_threads = threads
-            options.inter_op_num_threads = 1
-            options.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
-            session = ort.InferenceSession(path, sess_options=options, providers=["CPUExecutionProvider"])
+            outputs = None if jacobian else ["brightness_temperature", "quality_flag"]
+            session = _bundle.make_session(path, outputs=outputs, threads=threads, check=False)
             _SESSIONS[key] = session
     return session
 
@@ -238,8 +238,8 @@ class EmulatedOperator(_OperatorBase):
         """The training envelope stored in the bundle."""
         return self.bundle.envelope
 
-    def _session(self):
-        return _session_for(self.path, self.bundle.weights_sha256, self.threads)
+    def _session(self, jacobian: bool):
+        return _session_for(self.path, self.bundle.weights_sha256, self.threads, jacobian)
 
     def _check_grid(self, prep) -> None:
         diff = np.abs(prep.pressure_hpa - self._grid_surface_first[None, :]) \
@@ -264,7 +264,7 @@ class EmulatedOperator(_OperatorBase):
 
         Returns float64 arrays over the bundle's channels, surface-first levels.
         """
-        session = self._session()
+        session = self._session(jacobian)
         n = prep.air_temperature.shape[0]
         order = slice(None, None, -1) if self._top_first else slice(None)
         nmodel = len(self.model_instrument.channels)
