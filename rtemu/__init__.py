@@ -1,23 +1,82 @@
 """rtemu: fast, audited emulators of a clear-sky radiance observation operator.
 
-Public API, grouped by stage (physics -> sampling -> training -> runtime -> audit ->
-assimilation). Everything else is internal.
+The public API, grouped by stage (physics -> sampling -> training -> runtime -> audit ->
+assimilation). Names of later stages are imported on first use, so that ``import rtemu``
+and the command line start quickly; everything not listed here is internal.
 """
+
+from __future__ import annotations
+
+import importlib
 
 __version__ = "0.1.0"
 
-from rtemu.instrument import Band, Channel, Instrument, list_instruments, load_instrument
 from rtemu import flags, physics
+from rtemu.instrument import Band, Channel, Instrument, list_instruments, load_instrument
+
+_LAZY = {
+    # sampling
+    "draw_states": "rtemu.sampling",
+    "sample_to_netcdf": "rtemu.sampling",
+    "default_pressure_grid": "rtemu.atmosphere",
+    # training and export
+    "train_to_onnx": "rtemu.training",
+    "load_recipe": "rtemu.training",
+    "list_recipes": "rtemu.training",
+    "read_bundle": "rtemu.bundle",
+    "BundleError": "rtemu.bundle",
+    # runtime
+    "PhysicalOperator": "rtemu.runtime",
+    "EmulatedOperator": "rtemu.runtime",
+    "simulate_file": "rtemu.streaming",
+    # audit
+    "run_audit": "rtemu.audit",
+    # demo
+    "run_demo": "rtemu.demo",
+}
+_LAZY_MODULES = ("assim", "atmosphere", "sampling", "training", "bundle", "runtime", "audit")
 
 __all__ = [
     "__version__",
-    # instruments
+    # instruments and physics
     "Band",
     "Channel",
     "Instrument",
     "list_instruments",
     "load_instrument",
-    # physics and flags
     "physics",
     "flags",
+    "atmosphere",
+    # sampling
+    "draw_states",
+    "sample_to_netcdf",
+    "default_pressure_grid",
+    # training and export
+    "train_to_onnx",
+    "load_recipe",
+    "list_recipes",
+    "read_bundle",
+    "BundleError",
+    # runtime
+    "PhysicalOperator",
+    "EmulatedOperator",
+    "simulate_file",
+    # audit
+    "run_audit",
+    # assimilation
+    "assim",
+    # demo
+    "run_demo",
 ]
+
+
+def __getattr__(name):
+    if name in _LAZY:
+        return getattr(importlib.import_module(_LAZY[name]), name)
+    if name in _LAZY_MODULES:
+        return importlib.import_module(f"rtemu.{name}")
+    raise AttributeError(f"module 'rtemu' has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(set(globals()) | set(__all__))
