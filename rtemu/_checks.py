@@ -28,6 +28,7 @@ INPUT_VARIABLES = (
 TEMPERATURE_RANGE_K = (100.0, 400.0)
 HUMIDITY_MAX = 0.1  # [kg kg-1], exclusive
 ZENITH_MAX_DEG = 85.0
+SATURATION_TOLERANCE = 1e-6  # relative: a state projected onto saturation is not flagged
 PRESSURE_MAX_HPA = 1200.0  # above any observed sea-level pressure (about 1084 hPa)
 
 ErrorMode = Literal["raise", "mask"]
@@ -197,7 +198,7 @@ def prepare_inputs(
         # saturation is one it cannot represent; operators flag it (rtemu.flags.SUPERSATURATED).
         with np.errstate(invalid="ignore"):
             q_sat = saturation_specific_humidity(t[valid], p[valid])
-        supersaturated[valid] = (q[valid] > q_sat).any(axis=1)
+        supersaturated[valid] = (q[valid] > q_sat * (1.0 + SATURATION_TOLERANCE)).any(axis=1)
     if bad.any():
         # Give invalid profiles a harmless valid stand-in so the batch computes; their
         # outputs are set to NaN by the caller. A valid profile of the batch serves if any.
