@@ -797,11 +797,12 @@ def _dask_client(workers, scheduler):
         # dask gives its workers MALLOC_TRIM_THRESHOLD_=65536, which switches off glibc's
         # adaptive mmap threshold: every large numpy temporary is then mmapped afresh and
         # the generator + physics cost ~1.7x the CPU time (measured). Our workers go without.
+        # The scheduler's HTTP server takes any free port: a fixed one collides with other clusters.
         environ = dict(dask.config.get("distributed.nanny.pre-spawn-environ", default={}))
         environ.pop("MALLOC_TRIM_THRESHOLD_", None)
         with dask.config.set({"distributed.nanny.pre-spawn-environ": environ}), \
                 distributed.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
-                                         dashboard_address=None) as cluster, \
+                                         dashboard_address=":0") as cluster, \
                 distributed.Client(cluster) as client:
             yield client, True
 

@@ -311,7 +311,7 @@ def test_scheduler_address_gives_the_same_bytes(tmp_path, inst):
     one = _write(tmp_path / "one", "t.nc", inst, count=200, chunk_size=50)
     # An in-process cluster starts fast; results travel back to the caller, which writes.
     with distributed.LocalCluster(n_workers=1, threads_per_worker=2, processes=False,
-                                  dashboard_address=None) as cluster:
+                                  dashboard_address=":0") as cluster:
         remote = _write(tmp_path / "remote", "t.nc", inst, count=200, chunk_size=50,
                         scheduler=cluster.scheduler_address)
     assert one.read_bytes() == remote.read_bytes()
