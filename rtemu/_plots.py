@@ -130,31 +130,30 @@ def error_vs_tcwv(collected, summary: dict, channels, rng_seed: int = 0) -> byte
 def jacobian_profiles(examples: dict, channels, which: str) -> bytes:
     """Physical (wide, pale) and emulated (thin, dashed) Jacobians of typical profiles.
 
-    ``which`` is ``"t"`` (air temperature, [K K-1]) or ``"q"`` (specific humidity, shown
-    per g kg-1: [K (g kg-1)-1]). Each panel title gives the largest relative error
+    ``which`` is ``"t"`` (dBT/dT [K K-1]) or ``"q"`` (dBT/dln q = q dBT/dq [K], as the
+    audit compares them). Each panel title gives the largest relative error
     ||K_e - K_p|| / ||K_p|| of the profiles shown.
     """
     from matplotlib.lines import Line2D
     from matplotlib.ticker import FixedLocator, FuncFormatter, MaxNLocator, NullLocator
 
     fig, axes = _grid(len(channels), panel_w=3.0, panel_h=3.2)
-    # dBT/dq per kg kg-1 is ~1e3 times dBT/dq per g kg-1; g kg-1 gives readable numbers.
-    scale = 1.0 if which == "t" else 1e-3
-    unit = "K K-1" if which == "t" else "K (g kg-1)-1"
-    symbol = "∂BT/∂T" if which == "t" else "∂BT/∂q"
+    unit = "K K-1" if which == "t" else "K"
+    symbol = "∂BT/∂T" if which == "t" else "∂BT/∂ln q"
     p_all = np.concatenate([ex["pressure_hpa"] for ex in examples.values()])
     p_ticks = [t for t in (1000, 500, 200, 100, 50, 20, 10, 5, 2, 1, 0.5, 0.2, 0.1)
                if p_all.min() <= t <= p_all.max()]
     for c, (ax, cid) in enumerate(zip(axes, channels)):
         worst = 0.0
-        factor, prefix = _power_of_ten(
-            np.concatenate([ex[f"physical_{which}"][c] for ex in examples.values()]) * scale)
+        # One power of ten per panel from both curves, so that no offset text is needed.
+        factor, prefix = _power_of_ten(np.concatenate(
+            [ex[f"{kind}_{which}"][c] for ex in examples.values() for kind in ("physical", "emulated")]))
         for label, ex in examples.items():
             colour = _PROFILE_COLOURS.get(label, None)
             p = ex["pressure_hpa"]
             phys, emu = ex[f"physical_{which}"][c], ex[f"emulated_{which}"][c]
-            ax.plot(phys * scale * factor, p, color=colour, lw=3.5, alpha=0.45, solid_capstyle="butt")
-            ax.plot(emu * scale * factor, p, color=colour, lw=1.1, ls="--")
+            ax.plot(phys * factor, p, color=colour, lw=3.5, alpha=0.45, solid_capstyle="butt")
+            ax.plot(emu * factor, p, color=colour, lw=1.1, ls="--")
             norm = np.linalg.norm(phys)
             if norm > 0:
                 worst = max(worst, float(np.linalg.norm(emu - phys) / norm))
@@ -164,8 +163,9 @@ def jacobian_profiles(examples: dict, channels, which: str) -> bytes:
         ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
         ax.yaxis.set_minor_locator(NullLocator())
         ax.xaxis.set_major_locator(MaxNLocator(4))
+        ax.xaxis.get_major_formatter().set_useOffset(False)
         ax.axvline(0.0, color="k", lw=0.6)
-        ax.set_title(f"{cid}  (max rel. error {worst:.2%})", fontsize=9)
+        ax.set_title(f"{cid}  (max rel. error {_relative(worst)})", fontsize=9)
         ax.set_xlabel(f"{symbol} [{prefix}{unit}]")
         ax.set_ylabel("pressure [hPa]")
     handles = [Line2D([], [], color=_PROFILE_COLOURS.get(k), lw=3.5, alpha=0.45,
@@ -173,9 +173,13 @@ def jacobian_profiles(examples: dict, channels, which: str) -> bytes:
     handles += [Line2D([], [], color="0.3", lw=3.5, alpha=0.45, label="physical"),
                 Line2D([], [], color="k", lw=1.1, ls="--", label="emulated")]
     fig.legend(handles=handles, loc="outside lower center", ncols=len(handles))
-    name = "Air-temperature" if which == "t" else "Specific-humidity"
+    name = "Air-temperature" if which == "t" else "Humidity (per ln q)"
     fig.suptitle(f"{name} Jacobians of typical profiles (dry, median, moist by total column water vapour)")
     return _png(fig)
+
+
+def _relative(value: float) -> str:
+    return f"{value:.2%}" if value < 10.0 else f"{value:.3g}"
 
 
 def _power_of_ten(values) -> tuple[float, str]:

@@ -15,9 +15,11 @@ Definitions (also printed in the report):
 
 * brightness-temperature error d = BT_emulated - BT_physical [K] per (profile, channel);
   bias = mean(d), RMSE = sqrt(mean(d^2)), and the 99.9th percentile and maximum of |d|.
-* Jacobian error per (profile, channel), separately for temperature (T) and specific
+* Jacobian error per (profile, channel), separately for air temperature (T) and specific
   humidity (q):  e = ||K_emulated - K_physical||_2 / ||K_physical||_2  over the levels
-  [1]; undefined (NaN) where ||K_physical|| = 0.
+  [1]; undefined (NaN) where ||K_physical|| = 0. For humidity K is q dBT/dq = dBT/d(ln q)
+  [K]: per unit q (kg kg-1) the norm would be ruled by the driest (upper) levels, where a
+  harmless sensitivity to a relative change is magnified by 1/q ~ 1e6.
 * An entry (profile, channel) whose ``quality_flag`` (emulator's or physical model's) is
   not zero is left out of every error statistic; the flag rate counts it.
 * recommended observation error = sqrt(noise^2 + RMSE^2) [K]: instrument noise and
@@ -472,6 +474,29 @@ def _draw_test_data(count, seed, operator) -> tuple[xr.Dataset, dict, xr.Dataset
     return _select_inputs(ds, tuple(operator.channels)), description, None
 
 
+def _training_hashes(operator) -> set:
+    """SHA-256 digests of the files the emulator was trained on, if its bundle records them."""
+    bundle = getattr(operator, "bundle", None)
+    if bundle is None:
+        return set()
+    hashes = {getattr(bundle, "training_data_sha256", None)}
+    hashes |= {stats.get("training_data_sha256") for stats in getattr(bundle, "channel_stats", {}).values()
+               if isinstance(stats, dict)}
+    return {h for h in hashes if h}
+
+
+def _check_independent(data, operator) -> None:
+    """Refuse the emulator's own training file as a test set: it would flatter the emulator."""
+    hashes = _training_hashes(operator)
+    if not hashes or isinstance(data, xr.Dataset):
+        return
+    from rtemu.streaming import _sha256
+
+    if _sha256(data) in hashes:
+        raise ValueError(f"data {data}: is the emulator's training file (same SHA-256) "
+                         "(rule: audit on an independent test set, e.g. rtemu sample with another seed)")
+
+
 def _check_arguments(data, count, seed, threshold) -> float:
     if data is not None and count is not None:
         raise ValueError("give data (a test file) or count (profiles to draw), not both")
@@ -498,6 +523,7 @@ class _Collected:
     bt_physical: np.ndarray  # [N, C] [K]
     jacobian_t_error: np.ndarray  # [N, C] [1]
     jacobian_q_error: np.ndarray  # [N, C] [1]
+    humidity_sensitivity: np.ndarray  # [N, C] ||q dBT/dq||_2 of the physics [K]
     quality_flag: np.ndarray  # [N, C] int32
     tcwv: np.ndarray  # [N] [kg m-2]
     zenith: np.ndarray  # [N] [degree]
@@ -508,9 +534,8 @@ class _Collected:
         return self.quality_flag != 0
 
 
-def _geometry(block: xr.Dataset, channels) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _geometry(block: xr.Dataset, prep) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Column water [kg m-2], zenith angle [degree], emissivity [1]; NaN for invalid profiles."""
-    prep = prepare_inputs(block, channels, errors="mask")
     tcwv = total_column_water_vapour(prep.pressure_hpa, prep.specific_humidity)
     zen = prep.sensor_zenith_angle.copy()
     em = prep.surface_emissivity.copy()
@@ -540,15 +565,18 @@ def _evaluate(emulator, reference, dataset: xr.Dataset, progress: bool) -> _Coll
             block = dataset.isel(profile=slice(start, min(n, start + CHUNK_SIZE))).load()
             emu = _outputs(emulator.simulate(block, jacobian=True), _COMPARED)
             phys = _outputs(reference.simulate(block, jacobian=True), _COMPARED)
-            tcwv, zen, em = _geometry(block, channels)
+            prep = prepare_inputs(block, channels, errors="mask")
+            tcwv, zen, em = _geometry(block, prep)
+            q = prep.to_caller_order(prep.specific_humidity)[:, None, :]  # the Jacobians' level order
             piece = {
                 "profile": block["profile"].values if "profile" in block.coords else np.arange(start, start + block.sizes["profile"]),
                 "bt_error": emu["brightness_temperature"] - phys["brightness_temperature"],
                 "bt_physical": phys["brightness_temperature"],
                 "jacobian_t_error": jacobian_relative_error(emu["jacobian_air_temperature"],
                                                             phys["jacobian_air_temperature"]),
-                "jacobian_q_error": jacobian_relative_error(emu["jacobian_specific_humidity"],
-                                                            phys["jacobian_specific_humidity"]),
+                "jacobian_q_error": jacobian_relative_error(emu["jacobian_specific_humidity"] * q,
+                                                            phys["jacobian_specific_humidity"] * q),
+                "humidity_sensitivity": np.linalg.norm(phys["jacobian_specific_humidity"] * q, axis=2),
                 "quality_flag": (emu["quality_flag"] | phys["quality_flag"]).astype(np.int32),
                 "tcwv": tcwv,
                 "zenith": zen,
@@ -600,6 +628,7 @@ def _jacobian_examples(emulator, reference, dataset, rows: dict) -> dict:
     phys = _outputs(reference.simulate(block, jacobian=True), names)
     prep = prepare_inputs(block, tuple(emulator.channels), errors="mask")
     pressure = prep.to_caller_order(prep.pressure_hpa)  # the Jacobians' level order
+    q = prep.to_caller_order(prep.specific_humidity)[:, None, :]
     tcwv = total_column_water_vapour(prep.pressure_hpa, prep.specific_humidity)
     return {
         label: {
@@ -608,8 +637,8 @@ def _jacobian_examples(emulator, reference, dataset, rows: dict) -> dict:
             "pressure_hpa": pressure[i],
             "emulated_t": emu["jacobian_air_temperature"][i],
             "physical_t": phys["jacobian_air_temperature"][i],
-            "emulated_q": emu["jacobian_specific_humidity"][i],
-            "physical_q": phys["jacobian_specific_humidity"][i],
+            "emulated_q": (emu["jacobian_specific_humidity"] * q)[i],  # dBT/dln q [K]
+            "physical_q": (phys["jacobian_specific_humidity"] * q)[i],
         }
         for i, label in enumerate(labels)
     }
@@ -661,7 +690,7 @@ def _model_description(model, emulator) -> dict:
 
     path = Path(model)
     return {"path": str(path.resolve()), "sha256": _sha256(path) if path.is_file() else None,
-            "operator": repr(emulator)}
+            "operator": repr(emulator), "training_data_sha256": sorted(_training_hashes(emulator))}
 
 
 def _flag_counts(quality_flag: np.ndarray) -> dict:
@@ -681,6 +710,9 @@ def _summary(collected, emulator, model, data_description, threshold, checks) ->
     per_channel = {}
     for i, cid in enumerate(channels):
         entry = {"noise_k": float(noise[i]), **_per_channel(stats, i)}
+        usable = collected.humidity_sensitivity[~collected.flagged[:, i], i]
+        usable = usable[np.isfinite(usable)]
+        entry["humidity_sensitivity_median_k"] = _quantile(usable, 50.0)
         entry["rmse_over_noise"] = entry["rmse_k"] / noise[i]
         entry["recommended_error_k"] = float(rec[i])
         entry["verdict"] = verdict[i]
@@ -712,8 +744,8 @@ def _summary(collected, emulator, model, data_description, threshold, checks) ->
         "verdict_rule": f"pass when rmse_k <= {threshold:g} x noise_k",
         "recommended_error_rule": "sqrt(noise_k**2 + rmse_k**2), rmse_k the emulator RMSE (bias included)",
         "jacobian_error_definition": "||K_emulated - K_physical||_2 / ||K_physical||_2 over levels, per "
-                                     "profile and channel, separately for air temperature (t) and "
-                                     "specific humidity (q)",
+                                     "profile and channel, separately for air temperature (t: K = "
+                                     "dBT/dT) and specific humidity (q: K = q dBT/dq = dBT/dln q)",
         "statistics_exclude": "entries (profile, channel) with a non-zero quality_flag of either model",
         "channels": per_channel,
         "splits": splits,
@@ -737,6 +769,9 @@ def _audit_dataset(collected: _Collected, emulator, summary: dict) -> xr.Dataset
             "jacobian_specific_humidity_error": (pc, collected.jacobian_q_error, {
                 "long_name": "relative error of the specific-humidity Jacobian profile",
                 "units": "1", "comment": summary["jacobian_error_definition"]}),
+            "humidity_sensitivity": (pc, collected.humidity_sensitivity, {
+                "long_name": "norm over levels of q dBT/dq of the physical model (the denominator of "
+                             "jacobian_specific_humidity_error)", "units": "K"}),
             "quality_flag": (pc, collected.quality_flag.astype(np.int32), {
                 **_flags.flag_attrs(),
                 "comment": "bitwise or of the emulator's and the physical model's flags; "
@@ -837,6 +872,12 @@ def run_audit(
 
     if data is not None:
         dataset, data_description, opened = _open_test_data(data, tuple(operator.channels))
+        try:
+            _check_independent(data, operator)
+        except BaseException:
+            if opened is not None:
+                opened.close()
+            raise
     else:
         dataset, data_description, opened = _draw_test_data(count or DEFAULT_COUNT, seed, operator)
     try:
@@ -915,8 +956,12 @@ def _report(summary: dict, examples: dict) -> str:
         "- **BT error** = emulated − physical brightness temperature; bias = mean, RMSE = root mean "
         "square, p99.9 and max of the absolute error.",
         "- **Jacobian error** = ‖K_emulated − K_physical‖₂ / ‖K_physical‖₂ over the levels, per profile "
-        "and channel; reported separately for air temperature (T) and specific humidity (q) as median "
-        "and 95th percentile over profiles.",
+        "and channel; reported separately for air temperature (T, K = ∂BT/∂T) and specific humidity "
+        "(q, K = q ∂BT/∂q = ∂BT/∂ln q, the response to a relative change: per kg kg-1 the driest upper "
+        "levels would dominate through 1/q) as median and 95th percentile over profiles. "
+        "`q sensitivity` is the median ‖q ∂BT/∂q‖₂ of the physics, the denominator: where it is tiny "
+        "(channels that hardly see humidity) any emulated humidity sensitivity makes the relative "
+        "q error large.",
         "- Entries (profile, channel) with any quality flag set (emulator or physics) are left out of "
         "all error statistics; the flag rate is their share.",
     ]
@@ -931,7 +976,7 @@ def _report(summary: dict, examples: dict) -> str:
 
     lines += ["", "## Per-channel accuracy", ""]
     header = ["channel", "noise [K]", "used", "flag rate", "bias [K]", "RMSE [K]", "p99.9 abs [K]",
-              "max abs [K]", "T-Jac err median", "T-Jac err p95", "q-Jac err median", "q-Jac err p95",
+              "max abs [K]", "T-Jac err median", "T-Jac err p95", "q-Jac err median", "q-Jac err p95", "q sensitivity [K]",
               "RMSE / noise", "recommended error [K]", "verdict"]
     rows = []
     for c in ids:
@@ -940,6 +985,7 @@ def _report(summary: dict, examples: dict) -> str:
                      _fmt(s["bias_k"], "+.3f"), _fmt(s["rmse_k"]), _fmt(s["p999_abs_k"]), _fmt(s["max_abs_k"]),
                      _fmt(s["jacobian_t_error_median"], ".3g"), _fmt(s["jacobian_t_error_p95"], ".3g"),
                      _fmt(s["jacobian_q_error_median"], ".3g"), _fmt(s["jacobian_q_error_p95"], ".3g"),
+                     _fmt(s["humidity_sensitivity_median_k"], ".2g"),
                      _fmt(s["rmse_over_noise"], ".2f"), _fmt(s["recommended_error_k"]),
                      f"**{s['verdict']}**" if s["verdict"] == _VERDICT_FAIL else s["verdict"]])
     lines += _table(header, rows)
@@ -997,10 +1043,10 @@ def _report(summary: dict, examples: dict) -> str:
                                 "(unflagged entries); dotted lines at ± instrument noise.",
         "error_vs_tcwv.png": "Error against total column water vapour per channel: points, and bias and "
                              "RMSE in column-water bins.",
-        "jacobians_temperature.png": "Air-temperature Jacobians of typical profiles: physical (solid) and "
-                                     "emulated (dashed).",
-        "jacobians_humidity.png": "Specific-humidity Jacobians of typical profiles: physical (solid) and "
-                                  "emulated (dashed).",
+        "jacobians_temperature.png": "Air-temperature Jacobians of typical profiles: physical (wide, pale) "
+                                     "and emulated (dashed).",
+        "jacobians_humidity.png": "Humidity Jacobians (∂BT/∂ln q) of typical profiles: physical (wide, "
+                                  "pale) and emulated (dashed).",
     }
     for name in summary["figures"]:
         lines += [f"![{captions.get(name, name)}]({name})", "", captions.get(name, ""), ""]

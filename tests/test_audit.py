@@ -338,6 +338,11 @@ def test_scaled_instrument_statistics_match_an_independent_computation(tmp_path,
     kt_e = e["jacobian_air_temperature"].transpose("profile", "channel", "level").values
     kt_r = r["jacobian_air_temperature"].transpose("profile", "channel", "level").values
     jt = np.linalg.norm(kt_e - kt_r, axis=2) / np.linalg.norm(kt_r, axis=2)
+    # Humidity Jacobians are compared per ln q: K = q dBT/dq (see rtemu.audit docstring).
+    q = ds["specific_humidity"].transpose("profile", "level").values[:, None, :]
+    kq_e = e["jacobian_specific_humidity"].transpose("profile", "channel", "level").values * q
+    kq_r = r["jacobian_specific_humidity"].transpose("profile", "channel", "level").values * q
+    jq = np.linalg.norm(kq_e - kq_r, axis=2) / np.linalg.norm(kq_r, axis=2)
     noise = instrument.noise_k
     for c, cid in enumerate(CHANNELS):
         s = summary["channels"][cid]
@@ -345,6 +350,9 @@ def test_scaled_instrument_statistics_match_an_independent_computation(tmp_path,
         assert s["rmse_k"] == pytest.approx(np.sqrt(np.mean(d[:, c] ** 2)), rel=1e-9)
         assert s["max_abs_k"] == pytest.approx(np.abs(d[:, c]).max(), rel=1e-9)
         assert s["jacobian_t_error_median"] == pytest.approx(np.median(jt[:, c]), rel=1e-9)
+        assert s["jacobian_q_error_p95"] == pytest.approx(np.quantile(jq[:, c], 0.95), rel=1e-9)
+        assert s["humidity_sensitivity_median_k"] == pytest.approx(
+            np.median(np.linalg.norm(kq_r[:, c], axis=1)), rel=1e-9)
         assert s["verdict"] == ("pass" if s["rmse_k"] <= 0.3 * noise[c] else "fail")
     assert summary["threshold"] == 0.3
     # More absorption in a microwave window over a reflective surface (emissivity < 1)
@@ -469,3 +477,91 @@ def test_everything_flagged_gives_no_data_verdicts(tmp_path, instrument):
     text = (tmp_path / "a" / "report.md").read_text()
     assert "Not run: no profile with every channel unflagged" in text
     assert "0 of 3 channels pass" in text
+
+
+def test_the_training_file_is_refused_as_test_set(tmp_path, instrument, data_file):
+    import hashlib
+
+    emulator = _CraftedOperator(instrument, offset=OFFSET)
+    digest = hashlib.sha256(data_file.read_bytes()).hexdigest()  # FIPS 180-4 via hashlib
+    emulator.bundle = type("FakeBundle", (), {"training_data_sha256": digest, "channel_stats": {}})()
+    with pytest.raises(ValueError, match="training file"):
+        audit.run_audit(None, tmp_path / "a", data=data_file, operator=emulator, progress=False)
+    assert not (tmp_path / "a").exists()
+
+
+# -- end to end with a real (tiny) ONNX bundle -------------------------------------------------
+_TINY_RECIPE = """
+name = "tiny-audit-test"
+description = "A deliberately poor, fast recipe: the audit must report what it gets."
+[training]
+seed = 0
+validation_fraction = 0.2
+max_profiles = 400
+[features]
+humidity = "log"
+humidity_floor = 1e-9
+zenith = "secant"
+temperature_components = 6
+humidity_components = 6
+[linear]
+residual = true
+ridge_alpha = 1e-6
+[network]
+hidden_layers = [4]
+activation = "tanh"
+solver = "lbfgs"
+alpha = 1e-4
+max_iter = 30
+tol = 0.0
+early_stopping = false
+check_every = 30
+patience = 1
+[envelope]
+bounds_margin = 0.02
+novelty_margin = 1.0
+"""
+
+
+@pytest.fixture(scope="module")
+def tiny_bundle(tmp_path_factory, instrument):
+    sampling = pytest.importorskip("rtemu.sampling")
+    training = pytest.importorskip("rtemu.training")
+    export = pytest.importorskip("rtemu.export")
+    d = tmp_path_factory.mktemp("bundle")
+    (d / "tiny.toml").write_text(_TINY_RECIPE)
+    sampling.sample_to_netcdf(instrument, d / "train.nc", count=400, seed=0, progress=False)
+    emu = training.fit_emulator(d / "train.nc", d / "tiny.toml", progress=False, workers=1)
+    export.export_bundle(emu, d / "tiny.onnx")
+    return d
+
+
+def test_audit_of_an_onnx_bundle_matches_a_direct_comparison(tiny_bundle, instrument):
+    from rtemu.runtime import EmulatedOperator
+    from rtemu.sampling import draw_states
+
+    model = tiny_bundle / "tiny.onnx"
+    summary = audit.run_audit(model, tiny_bundle / "audit", count=30, seed=99, progress=False)
+    emulator = EmulatedOperator.load(model)
+    ds = draw_states(30, seed=99, pressure_hpa=emulator.pressure_hpa, channels=emulator.instrument)
+    e = emulator.simulate(ds)
+    r = PhysicalOperator(instrument).simulate(ds)
+    use = (e["quality_flag"] == 0) & (r["quality_flag"] == 0)
+    d = (e["brightness_temperature"] - r["brightness_temperature"]).where(use)
+    for cid in CHANNELS:
+        x = d.sel(channel=cid).values
+        x = x[np.isfinite(x)]
+        assert summary["channels"][cid]["count"] == x.size
+        assert summary["channels"][cid]["rmse_k"] == pytest.approx(np.sqrt(np.mean(x**2)), rel=1e-9)
+    import hashlib
+
+    assert summary["model"]["sha256"] == hashlib.sha256(model.read_bytes()).hexdigest()
+    assert summary["tangent_linear"]["run"] and summary["adjoint"]["passed"]
+    assert (tiny_bundle / "audit" / "report.md").is_file()
+
+
+def test_audit_refuses_the_bundles_training_file(tiny_bundle):
+    out = tiny_bundle / "refused"
+    with pytest.raises(ValueError, match="training file"):
+        audit.run_audit(tiny_bundle / "tiny.onnx", out, data=tiny_bundle / "train.nc", progress=False)
+    assert not out.exists()
