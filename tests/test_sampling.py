@@ -151,6 +151,21 @@ def test_envelope_description_and_covered_envelope(states, inst):
     assert covered["specific_humidity"]["min"] >= ranges["specific_humidity_floor"]["min"]
 
 
+def test_column_solver_reaches_its_targets():
+    # The shift solver must hit any target between the dry and the saturated column.
+    p = atm.default_pressure_grid()
+    rng = np.random.default_rng(0)
+    n = 200
+    t = atm.us_standard_atmosphere_1976(p)[None, :] + rng.uniform(-20, 25, (n, 1))
+    weight = sampling._sigmoid((np.log(p)[None, :] - np.log(200.0)) / 0.1) * np.ones((n, 1))
+    shape = -2.0 * np.clip((p[0] - p) / (p[0] - 200.0), 0, 1.2)[None, :] * np.ones((n, 1))
+    humidity = sampling._Humidity(p, t, weight, shape, np.full(n, 3e-6))
+    dry, wet = humidity.column(np.full(n, -40.0)), humidity.column(np.full(n, 40.0))
+    target = dry * (wet / dry) ** rng.uniform(0, 1, n)
+    shift = sampling._solve_shift(humidity, target, -40.0, 40.0, dry, wet)
+    np.testing.assert_allclose(humidity.column(shift), target, rtol=1e-10)
+
+
 # --- determinism ------------------------------------------------------------------------------
 
 def test_same_seed_same_numbers_other_seed_other_numbers(inst):
