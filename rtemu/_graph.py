@@ -1,0 +1,413 @@
+"""Hand-built ONNX graph of an rtemu emulator bundle.
+
+One graph computes, for all channels at once, the brightness temperatures, their exact
+derivatives with respect to every input (reverse-mode differentiation of the very function
+the graph evaluates, written out as nodes), and the quality-flag bitmask.
+
+Function evaluated (per profile n, channel c; all linear maps folded at export)::
+
+    x      = [T, h(q), (q), Ts, s(theta)] - x_ref         shared raw features [F = 2L + 2
+                                                          or 3L + 2], centred (float32 accuracy)
+    h(q)   = ln(max(q, q_floor))  or  q                   humidity transform ("log+linear":
+                                                          both ln q and q blocks)
+    s      = sec(theta)  or  theta                        zenith transform
+    z      = x A + a0                                     standardise + PCA + whiten [K]
+    a1     = tanh(z W1_c + e_c w1e_c + b1_c)              hidden layer 1 [H1]
+    a_k    = tanh(a_{k-1} W_k,c + b_k,c)                  further hidden layers
+    y_c    = a_d w_out,c + x l_c + e_c (x m_c + l_e,c) + s (x n_c + l_s,c) + b_c
+
+Jacobian (chain rule, reverse order)::
+
+    g_d    = w_out,c (1 - a_d^2)
+    g_k-1  = (g_k W_k,c^T) (1 - a_{k-1}^2)
+    dy/dz  = g_1 W1_c^T ;  dy/de = g_1 . w1e_c + x m_c + l_e,c
+    dy/dx  = dy/dz A^T + l_c + e_c m_c + s n_c      (s(theta) is not differentiated)
+    dy/dT  = dy/dx[:L];  dy/dq = dy/dx[L:2L] h'(q) (+ dy/dx[2L:3L]);  dy/dTs = dy/dx[F-2]
+
+Per-channel tensors carry the channel as their leading axis ([C, ...]); hidden layers of
+different widths are zero-padded to a common width, which leaves the function and its
+derivative unchanged (a padded unit has zero pre-activation and zero outgoing weight).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+
+import numpy as np
+import onnx
+from onnx import TensorProto, helper, numpy_helper
+
+#: ONNX opset of the exported graph (onnxruntime >= 1.17 runs it).
+OPSET = 21
+IR_VERSION = 10
+
+INPUT_NAMES = (
+    "air_temperature",
+    "specific_humidity",
+    "surface_temperature",
+    "surface_emissivity",
+    "sensor_zenith_angle",
+)
+OUTPUT_NAMES = (
+    "brightness_temperature",
+    "jacobian_air_temperature",
+    "jacobian_specific_humidity",
+    "jacobian_surface_temperature",
+    "jacobian_surface_emissivity",
+    "quality_flag",
+)
+
+# Flag bit values; mirror rtemu/flags.py (checked against it in tests/test_export.py).
+INVALID_INPUT = 1
+OUTSIDE_TRAINING_BOUNDS = 2
+NOVEL_STATE = 4
+
+def layer_weight_name(k: int) -> str:
+    return f"layer{k}_weight"
+
+
+def layer_bias_name(k: int) -> str:
+    return f"layer{k}_bias"
+
+
+@dataclasses.dataclass(frozen=True)
+class GraphLayout:
+    """Static shape and transform choices of a bundle graph."""
+
+    n_levels: int
+    n_channels: int
+    n_components: int
+    hidden: tuple[int, ...]
+    humidity: str = "log+linear"
+    zenith: str = "secant"
+    n_reconstruction_blocks: int = 2
+
+    @property
+    def n_profile_blocks(self) -> int:
+        return 3 if self.humidity == "log+linear" else 2
+
+    @property
+    def n_features(self) -> int:
+        return self.n_profile_blocks * self.n_levels + 2
+
+    @property
+    def n_bounded(self) -> int:
+        """Number of bounded input scalars per profile: T, q, Ts, theta, e [P]."""
+        return 2 * self.n_levels + 2 + self.n_channels
+
+
+class _Builder:
+    def __init__(self, dtype):
+        self.dtype = np.dtype(dtype)
+        self.elem = helper.np_dtype_to_tensor_dtype(self.dtype)
+        self.nodes: list[onnx.NodeProto] = []
+        self.initializers: dict[str, np.ndarray] = {}
+        self._count = 0
+
+    def const(self, name: str, value, dtype=None) -> str:
+        value = np.asarray(value, dtype=dtype or self.dtype)
+        if name in self.initializers:
+            raise ValueError(f"duplicate initializer {name!r}")
+        self.initializers[name] = value
+        return name
+
+    def ints(self, values) -> str:
+        """Shared int64 constant (axes, starts, shapes)."""
+        values = [int(v) for v in np.atleast_1d(values)]
+        name = "int64_" + "_".join(str(v).replace("-", "m") for v in values)
+        if name not in self.initializers:
+            self.initializers[name] = np.asarray(values, dtype=np.int64)
+        return name
+
+    def op(self, op_type: str, *inputs: str, out: str | None = None, **attrs) -> str:
+        self._count += 1
+        out = out or f"{op_type.lower()}_{self._count}"
+        self.nodes.append(
+            helper.make_node(op_type, list(inputs), [out], name=f"n{self._count}_{op_type}", **attrs)
+        )
+        return out
+
+    def op_multi(self, op_type: str, inputs, n_out: int, **attrs) -> list[str]:
+        self._count += 1
+        outs = [f"{op_type.lower()}_{self._count}_{i}" for i in range(n_out)]
+        self.nodes.append(
+            helper.make_node(op_type, list(inputs), outs, name=f"n{self._count}_{op_type}", **attrs)
+        )
+        return outs
+
+
+def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.float32,
+                metadata: dict[str, str] | None = None) -> onnx.ModelProto:
+    """Build the bundle graph from assembled (padded, channel-stacked) ``arrays``.
+
+    ``arrays`` holds only primary weights (see :func:`primary_shapes`); derived constants
+    (transposes, block matrices) are nodes on initializers only, which onnxruntime folds
+    once at session creation. ``dtype`` float64 builds the same function in double
+    precision (the tests use it for precise finite-difference checks); bundles are float32.
+    """
+    b = _Builder(dtype)
+    L, C, K = layout.n_levels, layout.n_channels, layout.n_components
+    depth = len(layout.hidden)
+    expected = primary_shapes(layout)
+    if set(arrays) != set(expected):
+        raise ValueError(f"graph arrays mismatch: missing {sorted(set(expected) - set(arrays))}, "
+                         f"unexpected {sorted(set(arrays) - set(expected))}")
+    for name in sorted(arrays):
+        value = np.asarray(arrays[name])
+        if value.shape != expected[name]:
+            raise ValueError(f"graph array {name!r} has shape {value.shape}, expected {expected[name]}")
+        b.const(name, value)
+    ax1, ax2 = b.ints([1]), b.ints([2])
+    one = b.const("one", 1.0)
+    T, q, Ts, E, theta = INPUT_NAMES
+
+    def cols(src, start, stop, axis):
+        return b.op("Slice", src, b.ints(start), b.ints(stop), b.ints(axis))
+
+    # ---- input transforms -> raw features X [N, F]
+    log_q = layout.humidity.startswith("log")
+    if log_q:
+        q_clip = b.op("Max", q, "humidity_floor")
+        x_q = b.op("Log", q_clip)
+    else:
+        x_q = q
+    profile = [T, x_q, q] if layout.n_profile_blocks == 3 else [T, x_q]
+    if layout.zenith == "secant":
+        ang = b.op("Mul", theta, b.const("degree", math.pi / 180.0))
+        x_theta = b.op("Reciprocal", b.op("Cos", ang))
+    else:
+        x_theta = theta
+    Ts1 = b.op("Unsqueeze", Ts, ax1)
+    s1 = b.op("Unsqueeze", x_theta, ax1)  # [N, 1]
+    # centring first keeps float32 round-off of the following products at the size of the
+    # deviations, not of the raw values (e.g. 250 K)
+    X = b.op("Sub", b.op("Concat", *profile, Ts1, s1, axis=1), "feature_center")
+
+    # ---- one Gemm gives Y = [z (K), 1, r (R)]: whitened PCA coordinates, a constant-1
+    # column carrying the first-layer bias, and (for the novelty flag) the residuals
+    # of the standardised profiles off their PCA subspaces
+    Y = b.op("Gemm", X, "projection_weight", "projection_offset")
+    z1 = cols(Y, 0, K + 1, 1)  # [N, K+1]
+
+    # ---- per-channel networks, channel-major [C, N, H]. Channel c sees u = [z, 1, e_c]:
+    # the first-layer matrix [C, K+1+C, H1] has e rows that are zero except row K+1+c.
+    w1 = layer_weight_name(1)
+    eye3 = b.const("eye_channels_3d", np.eye(C)[:, :, None])
+    w1_full = b.op("Concat", w1, b.op("Mul", eye3, "layer1_emissivity"), axis=1)
+    u = b.op("Concat", z1, E, axis=1)  # [N, K+1+C]
+    acts = [b.op("Tanh", b.op("MatMul", u, w1_full))]  # [C, N, H1]
+    for k in range(2, depth + 1):
+        pre = b.op("Add", b.op("MatMul", acts[-1], layer_weight_name(k)), layer_bias_name(k))
+        acts.append(b.op("Tanh", pre))
+    y_net = b.op("MatMul", acts[-1], "output_weight")  # [C, N, 1]
+    y_net = b.op("Transpose", b.op("Squeeze", y_net, ax2), perm=[1, 0])  # [N, C]
+
+    # ---- linear part on the raw features, with coefficients affine in e_c and in s:
+    # X l_c + e_c (X m_c + l_e,c) + s (X n_c + l_s,c) + b_c
+    lin = b.op("Gemm", X, "linear_weight", "output_bias")  # [N, C]
+    e_slope = b.op("Gemm", X, "linear_emissivity_weight", "linear_emissivity")
+    s_slope = b.op("Gemm", X, "linear_zenith_weight", "linear_zenith")
+    lin = b.op("Add", lin, b.op("Add", b.op("Mul", E, e_slope), b.op("Mul", s1, s_slope)))
+    b.op("Add", y_net, lin, out="brightness_temperature")
+
+    # ---- Jacobians: reverse mode through the same nodes
+    w_out_row = b.op("Transpose", "output_weight", perm=[0, 2, 1])  # [C, 1, Hd]
+    g = b.op("Mul", b.op("Sub", one, b.op("Mul", acts[-1], acts[-1])), w_out_row)
+    for k in range(depth, 1, -1):
+        back = b.op("MatMul", g, b.op("Transpose", layer_weight_name(k), perm=[0, 2, 1]))
+        a = acts[k - 2]
+        g = b.op("Mul", back, b.op("Sub", one, b.op("Mul", a, a)))
+    # back through the first layer onto (z, e_c): [C, N, K+1]; transposing this small
+    # tensor is the only channel-major -> profile-major copy on the Jacobian path
+    w1_ze = b.op("Concat", cols(w1, 0, K, 1), "layer1_emissivity", axis=1)  # [C, K+1, H1]
+    d_ze = b.op("MatMul", g, b.op("Transpose", w1_ze, perm=[0, 2, 1]))
+    d_ze = b.op("Transpose", d_ze, perm=[1, 0, 2])  # [N, C, K+1]
+    d_e = b.op("Squeeze", cols(d_ze, K, K + 1, 2), ax2)
+    b.op("Add", d_e, e_slope, out="jacobian_surface_emissivity")
+
+    # dy/dx = dy/dz A^T + l_c + e_c m_c + s n_c as one product:
+    # [dy/dz, dy/de, onehot_c, e_c onehot_c, s onehot_c] [N, C, K+1+3C]
+    # times [A^T; 0; l^T; m^T; n^T] [K+1+3C, F-part]
+    E3 = b.op("Unsqueeze", E, ax2)  # [N, C, 1]
+    s3 = b.op("Unsqueeze", s1, ax2)  # [N, 1, 1]
+    eye, zeros = np.eye(C), np.zeros((C, C))
+    block = lambda i: np.concatenate([eye if j == i else zeros for j in range(3)], 1)  # noqa: E731
+    onehots = b.op("Add", b.op("Add", b.op("Mul", E3, b.const("eye_emissivity", block(1))),
+                               b.op("Mul", s3, b.const("eye_zenith", block(2)))),
+                   b.const("eye_constant", block(0)))  # [N, C, 3C]
+    d_aug = b.op("Concat", d_ze, onehots, axis=2)
+
+    def back_matrix(r0, r1):
+        parts = [
+            b.op("Transpose", cols(cols("projection_weight", 0, K, 1), r0, r1, 0), perm=[1, 0]),
+            b.const(f"zero_row_{r0}", np.zeros((1, r1 - r0))),
+        ] + [b.op("Transpose", cols(w, r0, r1, 0), perm=[1, 0])
+             for w in ("linear_weight", "linear_emissivity_weight", "linear_zenith_weight")]
+        return b.op("Concat", *parts, axis=0)
+
+    b.op("MatMul", d_aug, back_matrix(0, L), out="jacobian_air_temperature")
+    jq = "jacobian_specific_humidity"
+    three = layout.n_profile_blocks == 3
+    if log_q:
+        d_xq = b.op("MatMul", d_aug, back_matrix(L, 2 * L))
+        # d ln(max(q, floor)) / dq = 1/q above the floor, 0 below (the clip is flat there)
+        above = b.op("Cast", b.op("Greater", q, "humidity_floor"), to=b.elem)
+        dh = b.op("Unsqueeze", b.op("Div", above, q_clip), ax1)  # [N, 1, L]
+        d_xq = b.op("Mul", d_xq, dh, out=None if three else jq)
+        if three:
+            b.op("Add", d_xq, b.op("MatMul", d_aug, back_matrix(2 * L, 3 * L)), out=jq)
+    else:
+        b.op("MatMul", d_aug, back_matrix(L, 2 * L), out=jq)
+    # a [.., 1] matrix, not a vector: onnxruntime runs MatMul by a 1-D operand as one
+    # small product per profile (measured 10x slower)
+    F = layout.n_features
+    d_ts = b.op("MatMul", d_aug, back_matrix(F - 2, F - 1))
+    b.op("Squeeze", d_ts, ax2, out="jacobian_surface_temperature")
+
+    # ---- quality flags
+    _flags(b, layout, Y, Ts1)
+
+    graph = helper.make_graph(
+        b.nodes,
+        "rtemu_emulator",
+        _inputs(layout, b.elem),
+        _outputs(layout, b.elem),
+        initializer=[numpy_helper.from_array(v, name=k) for k, v in b.initializers.items()],
+    )
+    model = helper.make_model(
+        graph,
+        opset_imports=[helper.make_opsetid("", OPSET)],
+        producer_name="rtemu",
+        ir_version=IR_VERSION,
+    )
+    if metadata:
+        helper.set_model_props(model, metadata)
+    return model
+
+
+def _flags(b: _Builder, layout: GraphLayout, Y: str, Ts1: str) -> None:
+    """Quality flag bitmask [N, C] int32 (bits from rtemu.flags).
+
+    Bounds: every input scalar (T and q per level, Ts, theta, e per channel) is compared
+    with the physical validity range and with the training range in one broadcast
+    comparison [N, 2, P]; NaN fails both. A 0/1 matrix maps the violation indicators
+    (and the per-profile novelty indicator) to per-channel hit counts in one MatMul:
+    a per-profile input affects all channels, e_c only channel c.
+    Novelty: the squared Mahalanobis distance ||z||^2 (z is whitened) and the squared
+    reconstruction error of each block, each divided by its training maximum.
+    Decoding: with hits (inv, out, nov) in {0, 1} and inv implying out (the training range
+    lies inside the physical range),
+    flag = min(2 out + 4 nov - inv, 6 - 5 inv): 1 for invalid input alone, else 2 out + 4 nov.
+    """
+    T, q, _, E, theta = INPUT_NAMES
+    ax1 = b.ints([1])
+    raw = b.op("Concat", T, q, Ts1, b.op("Unsqueeze", theta, ax1), E, axis=1)  # [N, P]
+    raw3 = b.op("Unsqueeze", raw, ax1)  # [N, 1, P]
+    lower = b.op("Concat", "physical_lower", "training_lower", axis=0)  # [2, P]
+    upper = b.op("Concat", "physical_upper", "training_upper", axis=0)
+    ok = b.op("And", b.op("GreaterOrEqual", raw3, lower), b.op("LessOrEqual", raw3, upper))
+    bad = b.op("Reshape", b.op("Cast", b.op("Not", ok), to=b.elem),
+               b.ints([0, -1]))  # [N, 2P]
+
+    sq = b.op("Mul", Y, Y)
+    scores = b.op("MatMul", sq, "novelty_scale")  # [N, 1 + B] score / training maximum
+    novel = b.op("Cast", b.op("Greater", b.op("ReduceMax", scores, ax1, keepdims=1), "one"),
+                 to=b.elem)  # [N, 1]
+    hits = b.op("Min", b.op("MatMul", b.op("Concat", bad, novel, axis=1), "bounds_channel_map"),
+                "one")  # [N, 3C]
+    two = b.op("Gemm", hits, "flag_decode", "flag_decode_offset")  # [N, 2C]
+    two = b.op("Reshape", two, b.ints([0, 2, layout.n_channels]))
+    flag = b.op("ReduceMin", two, ax1, keepdims=0)
+    b.op("Cast", flag, to=TensorProto.INT32, out="quality_flag")
+
+
+def primary_shapes(layout: GraphLayout) -> dict[str, tuple[int, ...]]:
+    """Names and shapes of the primary initializers of a bundle graph."""
+    L, C, K, F, P = (layout.n_levels, layout.n_channels, layout.n_components,
+                     layout.n_features, layout.n_bounded)
+    R = layout.n_reconstruction_blocks * L
+    h = layout.hidden
+    shapes = {
+        "projection_weight": (F, K + 1 + R),
+        "projection_offset": (K + 1 + R,),
+        "novelty_scale": (K + 1 + R, 1 + layout.n_reconstruction_blocks),
+        "physical_lower": (1, P),
+        "physical_upper": (1, P),
+        "training_lower": (1, P),
+        "training_upper": (1, P),
+        "bounds_channel_map": (2 * P + 1, 3 * C),
+        "flag_decode": (3 * C, 2 * C),
+        "flag_decode_offset": (2 * C,),
+        "linear_weight": (F, C),
+        "linear_emissivity_weight": (F, C),
+        "linear_zenith_weight": (F, C),
+        "linear_emissivity": (C,),
+        "linear_zenith": (C,),
+        "feature_center": (F,),
+        "output_bias": (C,),
+        "layer1_weight": (C, K + 1, h[0]),
+        "layer1_emissivity": (C, 1, h[0]),
+        "output_weight": (C, h[-1], 1),
+    }
+    if layout.humidity.startswith("log"):
+        shapes["humidity_floor"] = ()
+    for k in range(2, len(h) + 1):
+        shapes[layer_weight_name(k)] = (C, h[k - 2], h[k - 1])
+        shapes[layer_bias_name(k)] = (C, 1, h[k - 1])
+    return shapes
+
+
+def _inputs(layout: GraphLayout, elem) -> list:
+    L, C = layout.n_levels, layout.n_channels
+    shapes = {
+        "air_temperature": ["N", L],
+        "specific_humidity": ["N", L],
+        "surface_temperature": ["N"],
+        "surface_emissivity": ["N", C],
+        "sensor_zenith_angle": ["N"],
+    }
+    return [helper.make_tensor_value_info(n, elem, shapes[n]) for n in INPUT_NAMES]
+
+
+def _outputs(layout: GraphLayout, elem) -> list:
+    L, C = layout.n_levels, layout.n_channels
+    shapes = {
+        "brightness_temperature": (elem, ["N", C]),
+        "jacobian_air_temperature": (elem, ["N", C, L]),
+        "jacobian_specific_humidity": (elem, ["N", C, L]),
+        "jacobian_surface_temperature": (elem, ["N", C]),
+        "jacobian_surface_emissivity": (elem, ["N", C]),
+        "quality_flag": (TensorProto.INT32, ["N", C]),
+    }
+    return [helper.make_tensor_value_info(n, *shapes[n]) for n in OUTPUT_NAMES]
+
+
+def bounds_channel_map(n_levels: int, n_channels: int) -> np.ndarray:
+    """0/1 matrix [2P + 1, 3C] from violation indicators to per-channel hit counts [1].
+
+    Rows: physical-range violations (P), training-range violations (P), novelty (1).
+    Columns: invalid (C), outside (C), novel (C).
+    """
+    C = n_channels
+    P = 2 * n_levels + 2 + C
+    per_var = np.zeros((P, C))
+    per_var[: P - C, :] = 1.0
+    per_var[P - C:, :] = np.eye(C)
+    out = np.zeros((2 * P + 1, 3 * C))
+    out[:P, :C] = per_var
+    out[P: 2 * P, C: 2 * C] = per_var
+    out[2 * P, 2 * C:] = 1.0
+    return out
+
+
+def flag_decode(n_channels: int) -> tuple[np.ndarray, np.ndarray]:
+    """Matrix [3C, 2C] and offset [2C] of the two flag candidates (see :func:`_flags`)."""
+    C = n_channels
+    eye, zero = np.eye(C), np.zeros((C, C))
+    inv, out, nov = INVALID_INPUT, OUTSIDE_TRAINING_BOUNDS, NOVEL_STATE
+    # candidate 1: out*2 + nov*4 - inv*(2 - 1); candidate 2: (2 + 4) - inv*(2 + 4 - 1)
+    first = np.concatenate([(inv - out) * eye, out * eye, nov * eye], axis=0)
+    second = np.concatenate([(inv - out - nov) * eye, zero, zero], axis=0)
+    offset = np.concatenate([np.zeros(C), np.full(C, float(out + nov))])
+    return np.concatenate([first, second], axis=1), offset

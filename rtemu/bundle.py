@@ -1,0 +1,395 @@
+"""Reading and checking rtemu ONNX bundles (one self-describing file per emulator).
+
+A bundle is an ONNX model whose ``metadata_props`` carry everything needed to use and audit
+it (keys prefixed ``rtemu.``, see :data:`REQUIRED_KEYS`). :func:`read_bundle` refuses, with
+a :class:`BundleError` (a ValueError) that says why, any file that is truncated or
+corrupted, not made by rtemu, written by a newer rtemu format, inconsistent, or whose
+weights, graph or metadata do not match the SHA-256 digests stored at export.
+No code-executing format is involved: the file is protobuf, the metadata JSON and TOML.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import json
+from pathlib import Path
+
+import numpy as np
+import onnx
+from onnx import numpy_helper
+
+from rtemu import _graph
+from rtemu.instrument import Instrument
+
+__all__ = ["FORMAT_VERSION", "Bundle", "BundleError", "read_bundle", "describe", "make_session",
+           "weights_sha256"]
+
+#: Bundle format written by this rtemu; files with a larger number are refused.
+FORMAT_VERSION = 1
+PREFIX = "rtemu."
+
+REQUIRED_KEYS = (
+    "rtemu.format_version",
+    "rtemu.version",
+    "rtemu.created",
+    "rtemu.instrument_toml",
+    "rtemu.channels",
+    "rtemu.pressure_hpa",
+    "rtemu.inputs",
+    "rtemu.outputs",
+    "rtemu.graph",
+    "rtemu.features",
+    "rtemu.envelope",
+    "rtemu.flag_thresholds",
+    "rtemu.flag_meanings",
+    "rtemu.channel_stats",
+    "rtemu.recipe_name",
+    "rtemu.recipe_toml",
+    "rtemu.recipes",
+    "rtemu.training_data_sha256",
+    "rtemu.weights_sha256",
+    "rtemu.content_sha256",
+    "rtemu.metadata_sha256",
+)
+_JSON_KEYS = ("rtemu.channels", "rtemu.pressure_hpa", "rtemu.inputs", "rtemu.outputs", "rtemu.graph",
+              "rtemu.features", "rtemu.envelope", "rtemu.flag_thresholds", "rtemu.flag_meanings",
+              "rtemu.channel_stats", "rtemu.recipes")
+
+
+class BundleError(ValueError):
+    """A file is not a usable rtemu bundle (the message says why)."""
+
+
+@dataclasses.dataclass(frozen=True)
+class Bundle:
+    """Parsed, checked metadata of an rtemu bundle.
+
+    Attributes
+    ----------
+    path : str
+    format_version : int
+    rtemu_version : str
+        rtemu version that wrote the file.
+    created : str
+        Creation time, ISO 8601 UTC.
+    instrument : Instrument
+        The bundle's channels (in output order).
+    channel_ids : tuple of str
+    pressure_hpa : numpy.ndarray
+        The fixed level grid in the order the inputs use [hPa].
+    envelope : dict
+        Per-variable training bounds used by the flags: ``{name: {"lower", "upper", "units"}}``.
+    flag_thresholds : dict
+        Margins and novelty limits.
+    flag_meanings : dict
+        Bit value (str) -> meaning.
+    channel_stats : dict
+        Channel id -> validation statistics and training provenance.
+    recipe_name, recipe_toml : str
+        The recipe that created the bundle (its shared transform).
+    recipes : dict
+        SHA-256 -> TOML text of every recipe used (also by updates).
+    training_data_sha256 : str
+        SHA-256 of the training file of the first training.
+    weights_sha256 : str
+    inputs, outputs : list of dict
+        ``{"name", "shape", "units", "dtype"}`` of the ONNX inputs and outputs.
+    graph : dict
+        Static layout of the graph (levels, channels, components, padded hidden widths).
+    features : dict
+        The shared input transform's settings.
+    metadata : dict
+        All ``rtemu.*`` metadata strings, verbatim.
+    """
+
+    path: str
+    format_version: int
+    rtemu_version: str
+    created: str
+    instrument: Instrument
+    channel_ids: tuple
+    pressure_hpa: np.ndarray
+    envelope: dict
+    flag_thresholds: dict
+    flag_meanings: dict
+    channel_stats: dict
+    recipe_name: str
+    recipe_toml: str
+    recipes: dict
+    training_data_sha256: str
+    weights_sha256: str
+    inputs: list
+    outputs: list
+    graph: dict
+    features: dict
+    metadata: dict
+
+    def arrays(self) -> dict:
+        """The bundle's initializers as numpy arrays (read again from the file, checked)."""
+        model = _load_checked(Path(self.path))[0]
+        return {init.name: numpy_helper.to_array(init) for init in model.graph.initializer}
+
+
+# ---- digests ------------------------------------------------------------------------------
+def weights_sha256(model: onnx.ModelProto) -> str:
+    """SHA-256 over all initializers in name order: name, dtype, shape, raw little-endian bytes."""
+    digest = hashlib.sha256()
+    for init in sorted(model.graph.initializer, key=lambda t: t.name):
+        array = numpy_helper.to_array(init)
+        digest.update(init.name.encode("utf-8") + b"\0")
+        digest.update(str(array.dtype.newbyteorder("<")).encode() + b"\0")
+        digest.update(json.dumps(list(array.shape)).encode() + b"\0")
+        digest.update(np.ascontiguousarray(array, dtype=array.dtype.newbyteorder("<")).tobytes())
+    return digest.hexdigest()
+
+
+def content_sha256(model: onnx.ModelProto) -> str:
+    """SHA-256 of the serialised model without its metadata (graph, weights, opsets)."""
+    bare = onnx.ModelProto()
+    bare.CopyFrom(model)
+    del bare.metadata_props[:]
+    return hashlib.sha256(bare.SerializeToString(deterministic=True)).hexdigest()
+
+
+def metadata_sha256(props: dict) -> str:
+    """SHA-256 of all ``rtemu.*`` metadata except the digests themselves, in key order."""
+    skip = {"rtemu.metadata_sha256"}
+    text = json.dumps({k: v for k, v in sorted(props.items()) if k.startswith(PREFIX) and k not in skip},
+                      sort_keys=True, ensure_ascii=True)
+    return hashlib.sha256(text.encode("ascii")).hexdigest()
+
+
+# ---- reading ------------------------------------------------------------------------------
+def _load_checked(path: Path):
+    if not path.is_file():
+        raise BundleError(f"{path}: no such file")
+    data = path.read_bytes()
+    if not data:
+        raise BundleError(f"{path}: empty file, not an ONNX model")
+    model = onnx.ModelProto()
+    try:
+        model.ParseFromString(data)
+    except Exception as exc:  # protobuf DecodeError and friends
+        raise BundleError(f"{path}: not a readable ONNX file (truncated or corrupted): {exc}") from None
+    if not model.HasField("graph") or not model.graph.node:
+        raise BundleError(f"{path}: not a readable ONNX model (no graph; truncated, corrupted or not ONNX)")
+    props = {p.key: p.value for p in model.metadata_props}
+    if "rtemu.format_version" not in props:
+        raise BundleError(
+            f"{path}: a valid ONNX file but not an rtemu bundle (foreign model: no "
+            f"'rtemu.format_version' metadata; producer {model.producer_name!r})"
+        )
+    try:
+        onnx.checker.check_model(model)
+    except Exception as exc:
+        raise BundleError(f"{path}: fails the ONNX checker (corrupted?): {exc}") from None
+    return model, props
+
+
+def read_bundle(path) -> Bundle:
+    """Open, check and parse an rtemu bundle.
+
+    Checks, in order: readable ONNX; rtemu metadata present (else "foreign"); the ONNX
+    checker; format version (newer than :data:`FORMAT_VERSION` is refused); all required
+    keys, valid JSON/TOML; consistency (channel count of instrument, metadata, graph;
+    level count of the grid and the input shapes; input and output names); the SHA-256 of
+    the metadata, of the graph and of the weights.
+
+    Raises
+    ------
+    BundleError
+        With a message naming the file and the failed check.
+    """
+    path = Path(path)
+    model, props = _load_checked(path)
+    version_text = props["rtemu.format_version"]
+    try:
+        version = int(version_text)
+    except ValueError:
+        raise BundleError(f"{path}: rtemu.format_version {version_text!r} is not an integer (corrupted?)") from None
+    if version > FORMAT_VERSION:
+        raise BundleError(
+            f"{path}: written in rtemu bundle format {version}, newer than this rtemu reads "
+            f"(format {FORMAT_VERSION}); upgrade rtemu to use it"
+        )
+    if version < 1:
+        raise BundleError(f"{path}: rtemu.format_version {version} is not a valid format (corrupted?)")
+    missing = [k for k in REQUIRED_KEYS if k not in props]
+    if missing:
+        raise BundleError(f"{path}: incomplete rtemu metadata, missing {missing}")
+    if metadata_sha256(props) != props["rtemu.metadata_sha256"]:
+        raise BundleError(f"{path}: metadata do not match their SHA-256 (rtemu.metadata_sha256): "
+                          "the file was corrupted or edited")
+    parsed = {}
+    for key in _JSON_KEYS:
+        try:
+            parsed[key] = json.loads(props[key])
+        except json.JSONDecodeError as exc:
+            raise BundleError(f"{path}: metadata {key} is not valid JSON: {exc}") from None
+    try:
+        instrument = Instrument.from_toml(props["rtemu.instrument_toml"], source=f"{path}:rtemu.instrument_toml")
+    except ValueError as exc:
+        raise BundleError(f"{path}: metadata rtemu.instrument_toml is not a valid instrument: {exc}") from None
+
+    channels = tuple(parsed["rtemu.channels"])
+    graph = parsed["rtemu.graph"]
+    grid = np.asarray(parsed["rtemu.pressure_hpa"], dtype=float)
+    inputs = {i.name: i for i in model.graph.input}
+    outputs = [o.name for o in model.graph.output]
+
+    def dims(name):
+        return [d.dim_value if d.HasField("dim_value") else d.dim_param
+                for d in inputs[name].type.tensor_type.shape.dim]
+
+    problems = []
+    if channels != tuple(instrument.channel_ids):
+        problems.append(f"rtemu.channels {list(channels)} differ from the instrument's {list(instrument.channel_ids)}")
+    if graph.get("n_channels") != len(channels):
+        problems.append(f"rtemu.graph has {graph.get('n_channels')} channels, rtemu.channels {len(channels)}")
+    if set(parsed["rtemu.channel_stats"]) != set(channels):
+        problems.append("rtemu.channel_stats does not cover exactly the bundle's channels")
+    if tuple(inputs) != _graph.INPUT_NAMES:
+        problems.append(f"graph inputs {list(inputs)} are not {list(_graph.INPUT_NAMES)}")
+    elif (dims("air_temperature")[1:] != [grid.size] or dims("specific_humidity")[1:] != [grid.size]
+          or dims("surface_emissivity")[1:] != [len(channels)]):
+        problems.append(f"input shapes {dims('air_temperature')}, {dims('surface_emissivity')} do not match "
+                        f"{grid.size} levels and {len(channels)} channels")
+    if tuple(outputs) != _graph.OUTPUT_NAMES:
+        problems.append(f"graph outputs {outputs} are not {list(_graph.OUTPUT_NAMES)}")
+    if [o["name"] for o in parsed["rtemu.outputs"]] != outputs or [i["name"] for i in parsed["rtemu.inputs"]] != list(inputs):
+        problems.append("rtemu.inputs / rtemu.outputs do not name the graph's inputs and outputs")
+    if grid.ndim != 1 or grid.size != graph.get("n_levels") or not (np.all(np.diff(grid) < 0) or np.all(np.diff(grid) > 0)):
+        problems.append(f"rtemu.pressure_hpa ({grid.size} values) is not a monotonic grid of "
+                        f"{graph.get('n_levels')} levels")
+    if problems:
+        raise BundleError(f"{path}: inconsistent rtemu bundle: " + "; ".join(problems))
+    if content_sha256(model) != props["rtemu.content_sha256"]:
+        raise BundleError(f"{path}: graph does not match its SHA-256 (rtemu.content_sha256): the file was "
+                          "corrupted or edited")
+    if weights_sha256(model) != props["rtemu.weights_sha256"]:
+        raise BundleError(f"{path}: weights do not match their SHA-256 (rtemu.weights_sha256): the file was "
+                          "corrupted or tampered with")
+    grid.setflags(write=False)
+    return Bundle(
+        path=str(path), format_version=version, rtemu_version=props["rtemu.version"],
+        created=props["rtemu.created"], instrument=instrument, channel_ids=channels, pressure_hpa=grid,
+        envelope=parsed["rtemu.envelope"], flag_thresholds=parsed["rtemu.flag_thresholds"],
+        flag_meanings=parsed["rtemu.flag_meanings"], channel_stats=parsed["rtemu.channel_stats"],
+        recipe_name=props["rtemu.recipe_name"], recipe_toml=props["rtemu.recipe_toml"],
+        recipes=parsed["rtemu.recipes"], training_data_sha256=props["rtemu.training_data_sha256"],
+        weights_sha256=props["rtemu.weights_sha256"], inputs=parsed["rtemu.inputs"],
+        outputs=parsed["rtemu.outputs"], graph=graph, features=parsed["rtemu.features"],
+        metadata={k: v for k, v in props.items() if k.startswith(PREFIX)},
+    )
+
+
+# ---- sessions -----------------------------------------------------------------------------
+def pruned_model(model: onnx.ModelProto, outputs) -> onnx.ModelProto:
+    """The same model computing only ``outputs`` (nodes and weights the others need are dropped).
+
+    onnxruntime evaluates every node of a graph whatever outputs a run asks for (measured
+    with onnxruntime 1.32), so a brightness-temperature-only session runs about half the
+    work when it is built from this pruned copy. All inputs stay declared.
+    """
+    wanted = list(outputs)
+    known = [o.name for o in model.graph.output]
+    unknown = [o for o in wanted if o not in known]
+    if unknown:
+        raise ValueError(f"outputs {unknown} are not outputs of the bundle ({', '.join(known)})")
+    needed = set(wanted)
+    keep = []
+    for node in reversed(model.graph.node):
+        if any(o in needed for o in node.output):
+            keep.append(node)
+            needed.update(i for i in node.input if i)
+    keep.reverse()
+    pruned = onnx.ModelProto()
+    pruned.CopyFrom(model)
+    graph = pruned.graph
+    del graph.node[:]
+    graph.node.extend(keep)
+    inits = [t for t in model.graph.initializer if t.name in needed]
+    del graph.initializer[:]
+    graph.initializer.extend(inits)
+    outs = [o for o in model.graph.output if o.name in set(wanted)]
+    del graph.output[:]
+    graph.output.extend(sorted(outs, key=lambda o: wanted.index(o.name)))
+    return pruned
+
+
+def make_session(path, *, outputs=None, threads: int | None = None, check: bool = True):
+    """An onnxruntime CPU session on a bundle, optionally computing only ``outputs``.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The bundle.
+    outputs : sequence of str, optional
+        Output names the session computes (default: all). Asking for fewer makes the
+        session skip the nodes only the others need (e.g. the Jacobians).
+    threads : int, optional
+        ``intra_op_num_threads`` [1]; 1 is fastest for single profiles.
+    check : bool
+        Run :func:`read_bundle`'s checks first.
+    """
+    import onnxruntime as ort
+
+    path = Path(path)
+    if check:
+        read_bundle(path)
+    options = ort.SessionOptions()
+    if threads:
+        options.intra_op_num_threads = int(threads)
+    options.inter_op_num_threads = 1
+    options.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+    if outputs is None:
+        source = str(path)
+    else:
+        source = pruned_model(onnx.load(str(path)), outputs).SerializeToString()
+    return ort.InferenceSession(source, sess_options=options, providers=["CPUExecutionProvider"])
+
+
+# ---- description --------------------------------------------------------------------------
+def describe(path) -> str:
+    """Human-readable summary of a bundle's metadata (for ``rtemu info``)."""
+    b = read_bundle(path)
+    grid = b.pressure_hpa
+    lines = [
+        f"rtemu bundle {b.path}",
+        f"  format version     {b.format_version} (rtemu {b.rtemu_version})",
+        f"  created            {b.created}",
+        f"  instrument         {b.instrument.name}: {b.instrument.description}",
+        f"  channels           {len(b.channel_ids)}: {', '.join(b.channel_ids)}",
+        f"  pressure grid      {grid.size} levels, {grid[0]:g} .. {grid[-1]:g} hPa "
+        f"({'surface' if grid[0] > grid[-1] else 'top'} first)",
+        f"  recipe             {b.recipe_name} (sha256 {hashlib.sha256(b.recipe_toml.encode()).hexdigest()[:16]}...)",
+        f"  training data      sha256 {b.training_data_sha256}",
+        f"  weights            sha256 {b.weights_sha256}",
+        f"  compression        {b.graph['n_components']} components ({b.features})",
+        f"  hidden layers      {b.graph['hidden']} (padded)",
+        "  inputs:",
+    ]
+    for item in b.inputs:
+        lines.append(f"    {item['name']:30s} {str(item['shape']):16s} [{item['units']}] {item['dtype']}")
+    lines.append("  outputs:")
+    for item in b.outputs:
+        lines.append(f"    {item['name']:30s} {str(item['shape']):16s} [{item['units']}] {item['dtype']}")
+    lines.append("  quality flag bits: " + ", ".join(f"{k} {v}" for k, v in b.flag_meanings.items()))
+    th = b.flag_thresholds
+    lines.append(f"  envelope: bounds margin {th['bounds_margin']:g} of the training range, novelty limits "
+                 + ", ".join(f"{k} {v:.4g}" for k, v in th["novelty_limits"].items()))
+    env = b.envelope
+    for name, item in env.items():
+        lo, hi = np.asarray(item["lower"], float), np.asarray(item["upper"], float)
+        lines.append(f"    {name:28s} {lo.min():.4g} .. {hi.max():.4g} [{item['units']}]"
+                     + (f" (per {item['per']})" if item.get("per") else ""))
+    lines.append("  validation (K):   channel        rmse     bias    p99.9      max  hidden      iterations")
+    for cid in b.channel_ids:
+        s = b.channel_stats[cid]
+        lines.append(
+            f"    {cid:>20s} {s['validation_rmse_k']:8.4f} {s['validation_bias_k']:8.4f} "
+            f"{s['validation_p999_abs_k']:8.4f} {s['validation_max_abs_k']:8.4f}  "
+            f"{str(s['hidden_layers']):12s} {s['iterations']}"
+        )
+    return "\n".join(lines)

@@ -1,0 +1,314 @@
+"""Input features of the emulators: physically motivated transforms and the shared compression.
+
+Every channel's emulator sees the same shared features of a profile plus its own surface
+emissivity:
+
+* raw features x = [T (L levels) [K], h(q) (L levels), (q (L levels)), Ts [K], s(theta)],
+  with h(q) = ln(max(q, q_floor)) or q, and optionally q itself besides ln q
+  (``"log+linear"``): the radiance responds to ln q where the water vapour is opaque
+  (humidity channels) and to q where it is optically thin (the optical depth, hence
+  1 - transmittance, is proportional to the water path); measured on the demo sounder,
+  adding q to ln q cut the linear-model residual of the microwave window channel from
+  10.1 K to 1.5 K RMS. s(theta) = sec(theta) (the slant path through a plane-parallel
+  layer is sec(theta) times the vertical one) or theta in degrees;
+* compressed features z: x standardised per element, each profile block (T, h(q))
+  projected on its leading principal components, and the result (with the
+  standardised Ts and s) whitened jointly (Cholesky), so that z has zero mean and
+  identity covariance over the training set. ``||z||^2`` is then the squared
+  Mahalanobis distance of the state in the compressed space.
+
+The whole map x -> z is affine, z = x A + a0, and is folded into one matrix in the bundle;
+so is the reconstruction residual of each block off its PCA subspace, used by the
+novelty flag.
+
+References
+----------
+Jolliffe, I. T. (2002). Principal Component Analysis, 2nd ed., Springer. (PCA, sec. 3.)
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+
+import numpy as np
+from sklearn.decomposition import PCA
+from sklearn.preprocessing import StandardScaler
+
+__all__ = ["FeatureConfig", "FeatureTransform", "raw_features", "humidity_transform", "zenith_transform"]
+
+HUMIDITY_TRANSFORMS = ("log+linear", "log", "linear")
+ZENITH_TRANSFORMS = ("secant", "degrees")
+
+
+@dataclasses.dataclass(frozen=True)
+class FeatureConfig:
+    """Choices of the shared input transform (fixed by the first training of a bundle).
+
+    Attributes
+    ----------
+    humidity : {"log+linear", "log", "linear"}
+        * ``"log+linear"``: both ln(max(q, humidity_floor)) and q, as two blocks.
+        * ``"log"``: h(q) = ln(max(q, humidity_floor)).
+        * ``"linear"``: h(q) = q.
+    humidity_floor : float
+        Smallest specific humidity the log transform sees [kg kg-1].
+    zenith : {"secant", "degrees"}
+        * ``"secant"``: s = 1 / cos(theta).
+        * ``"degrees"``: s = theta [degree].
+    temperature_components, humidity_components, linear_humidity_components : int
+        Principal components kept per profile block (T, h(q), and q for "log+linear")
+        [1]; 0 keeps the block uncompressed (then it has no reconstruction residual).
+    """
+
+    humidity: str = "log+linear"
+    humidity_floor: float = 1e-9
+    zenith: str = "secant"
+    temperature_components: int = 24
+    humidity_components: int = 24
+    linear_humidity_components: int = 8
+
+    def __post_init__(self):
+        if self.humidity not in HUMIDITY_TRANSFORMS:
+            raise ValueError(f"humidity transform must be one of {HUMIDITY_TRANSFORMS}, got {self.humidity!r}")
+        if self.zenith not in ZENITH_TRANSFORMS:
+            raise ValueError(f"zenith transform must be one of {ZENITH_TRANSFORMS}, got {self.zenith!r}")
+        if not (self.humidity_floor > 0 and np.isfinite(self.humidity_floor)):
+            raise ValueError(f"humidity_floor must be a positive number [kg kg-1], got {self.humidity_floor!r}")
+        for name in ("temperature_components", "humidity_components", "linear_humidity_components"):
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, int) or value < 0:
+                raise ValueError(f"{name} must be an integer >= 0, got {value!r}")
+
+    def to_json(self) -> str:
+        return json.dumps(dataclasses.asdict(self), sort_keys=True)
+
+    @classmethod
+    def from_json(cls, text: str) -> "FeatureConfig":
+        return cls(**json.loads(text))
+
+    def blocks(self) -> tuple[tuple[str, int], ...]:
+        """Profile blocks of x, in order, with their component counts."""
+        out = [("temperature", self.temperature_components), ("humidity", self.humidity_components)]
+        if self.humidity == "log+linear":
+            out.append(("humidity_linear", self.linear_humidity_components))
+        return tuple(out)
+
+    def n_features(self, n_levels: int) -> int:
+        """F = (number of profile blocks) L + 2 [1]."""
+        return len(self.blocks()) * n_levels + 2
+
+
+def humidity_transform(specific_humidity, config: FeatureConfig) -> np.ndarray:
+    """h(q): ln(max(q, q_floor)) or q.
+
+    Parameters
+    ----------
+    specific_humidity : array_like
+        q [kg kg-1].
+    config : FeatureConfig
+
+    Returns
+    -------
+    numpy.ndarray
+        h(q) [ln(kg kg-1)] or [kg kg-1].
+    """
+    q = np.asarray(specific_humidity, dtype=float)
+    if config.humidity.startswith("log"):
+        return np.log(np.maximum(q, config.humidity_floor))
+    return q
+
+
+def zenith_transform(sensor_zenith_angle, config: FeatureConfig) -> np.ndarray:
+    """s(theta): sec(theta) (slant-path factor of a plane-parallel atmosphere) or theta.
+
+    Parameters
+    ----------
+    sensor_zenith_angle : array_like
+        theta [degree].
+    config : FeatureConfig
+
+    Returns
+    -------
+    numpy.ndarray
+        sec(theta) [1] or theta [degree].
+    """
+    theta = np.asarray(sensor_zenith_angle, dtype=float)
+    if config.zenith == "secant":
+        return 1.0 / np.cos(np.radians(theta))
+    return theta
+
+
+def raw_features(air_temperature, specific_humidity, surface_temperature, sensor_zenith_angle,
+                 config: FeatureConfig) -> np.ndarray:
+    """Shared raw features x = [T, h(q), Ts, s(theta)].
+
+    Parameters
+    ----------
+    air_temperature : array_like
+        T [K], shape (N, L), levels in the bundle's order.
+    specific_humidity : array_like
+        q [kg kg-1], shape (N, L).
+    surface_temperature : array_like
+        Ts [K], shape (N,).
+    sensor_zenith_angle : array_like
+        theta [degree], shape (N,).
+    config : FeatureConfig
+
+    Returns
+    -------
+    numpy.ndarray
+        x, shape (N, F) with F = 2 L + 2, or 3 L + 2 for "log+linear" [mixed units: K,
+        ln(kg kg-1), kg kg-1, K, 1].
+    """
+    T = np.asarray(air_temperature, dtype=float)
+    parts = [T, humidity_transform(specific_humidity, config)]
+    if config.humidity == "log+linear":
+        parts.append(np.asarray(specific_humidity, dtype=float))
+    parts += [np.asarray(surface_temperature, dtype=float)[:, None],
+              zenith_transform(sensor_zenith_angle, config)[:, None]]
+    return np.concatenate(parts, axis=1)
+
+
+class FeatureTransform:
+    """Standardisation, block PCA and joint whitening of the shared raw features.
+
+    Parameters
+    ----------
+    config : FeatureConfig
+    n_levels : int
+        L [1].
+
+    Attributes (after :meth:`fit`)
+    ------------------------------
+    scaler_ : sklearn.preprocessing.StandardScaler
+        Per-element standardisation of x.
+    pca_ : dict of str to sklearn.decomposition.PCA or None
+        Per block ("temperature", "humidity"); None for an uncompressed block.
+    whitening_ : numpy.ndarray
+        W [K, K] with cov(c W) = I for the concatenated block coordinates c.
+    center_ : numpy.ndarray
+        x_ref [F]: the training mean of x rounded to float32 (exactly representable in
+        the bundle); the folded maps act on x - x_ref.
+    projection_ : numpy.ndarray
+        A [F, K]: z = (x - x_ref) A + offset_.
+    offset_ : numpy.ndarray
+        a0 [K].
+    reconstruction_ : numpy.ndarray
+        R [F, B*L] for the B compressed blocks: r = (x - x_ref) R + reconstruction_offset_
+        is the standardised block minus its PCA reconstruction.
+    reconstruction_offset_ : numpy.ndarray
+        [B*L].
+    """
+
+    def __init__(self, *, config: FeatureConfig, n_levels: int):
+        self.config = config
+        self.n_levels = n_levels
+
+    # ---- fitting ------------------------------------------------------------------------
+    def fit(self, x: np.ndarray) -> "FeatureTransform":
+        """Fit on raw features ``x`` [N, F] (see :func:`raw_features`)."""
+        L = self.n_levels
+        x = np.asarray(x, dtype=float)
+        F = self.config.n_features(L)
+        if x.ndim != 2 or x.shape[1] != F:
+            raise ValueError(f"raw features must have shape (N, {F}), got {x.shape}")
+        self.scaler_ = StandardScaler().fit(x)
+        # a constant element (e.g. a clipped humidity) has no spread: keep it unscaled
+        self.scaler_.scale_ = np.where(self.scaler_.scale_ > 1e-12, self.scaler_.scale_, 1.0)
+        s = self.scaler_.transform(x)
+        self.pca_ = {}
+        pieces = []
+        for name, sl, k in self._blocks():
+            if k:
+                pca = PCA(n_components=min(k, L), svd_solver="full").fit(s[:, sl])
+                self.pca_[name] = pca
+                pieces.append(pca.transform(s[:, sl]))
+            else:
+                self.pca_[name] = None
+                pieces.append(s[:, sl])
+        pieces.append(s[:, F - 2:])
+        c = np.concatenate(pieces, axis=1)
+        cov = np.cov(c, rowvar=False)
+        # c W with W = inverse of the upper Cholesky factor has identity covariance
+        chol = np.linalg.cholesky(cov + 1e-12 * np.eye(cov.shape[0]) * np.trace(cov) / cov.shape[0])
+        self.whitening_ = np.linalg.inv(chol).T
+        self.block_mean_ = c.mean(axis=0)
+        self.center_ = self.scaler_.mean_.astype(np.float32).astype(float)
+        self._fold()
+        return self
+
+    def _blocks(self):
+        L = self.n_levels
+        return tuple((name, slice(i * L, (i + 1) * L), k) for i, (name, k) in enumerate(self.config.blocks()))
+
+    def _fold(self) -> None:
+        """Fold standardisation, PCA and whitening into z = x A + a0 (exact algebra)."""
+        L = self.n_levels
+        F = self.config.n_features(L)
+        inv_scale = 1.0 / self.scaler_.scale_
+        mean = self.scaler_.mean_
+        columns, recon_cols = [], []
+        for name, sl, _ in self._blocks():
+            pca = self.pca_[name]
+            rows = np.zeros((F, pca.n_components_ if pca is not None else L))
+            if pca is not None:
+                rows[sl] = pca.components_.T
+                # residual off the subspace: s - (s - m) V V^T - m
+                resid = np.zeros((F, L))
+                resid[sl] = np.eye(L) - pca.components_.T @ pca.components_
+                recon_cols.append((resid, pca.mean_ @ pca.components_.T @ pca.components_ - pca.mean_))
+            else:
+                rows[sl] = np.eye(L)
+            columns.append((rows, pca.mean_ @ pca.components_.T if pca is not None else np.zeros(L)))
+        scal = np.zeros((F, 2))
+        scal[F - 2, 0] = scal[F - 1, 1] = 1.0
+        columns.append((scal, np.zeros(2)))
+        # c = s B - b ; s = (x - mean) / scale ; z = (c - block_mean) W
+        B = np.concatenate([m for m, _ in columns], axis=1)
+        b = np.concatenate([v for _, v in columns])
+        self.projection_ = (inv_scale[:, None] * B) @ self.whitening_
+        self.offset_ = (-(mean * inv_scale) @ B - b - self.block_mean_) @ self.whitening_
+        self.offset_ = self.offset_ + self.center_ @ self.projection_
+        if recon_cols:
+            R = np.concatenate([m for m, _ in recon_cols], axis=1)
+            r0 = np.concatenate([v for _, v in recon_cols])
+            self.reconstruction_ = inv_scale[:, None] * R
+            self.reconstruction_offset_ = -(mean * inv_scale) @ R + r0 + self.center_ @ self.reconstruction_
+        else:
+            self.reconstruction_ = np.zeros((F, 0))
+            self.reconstruction_offset_ = np.zeros(0)
+
+    # ---- use ----------------------------------------------------------------------------
+    @property
+    def n_components(self) -> int:
+        """K [1]."""
+        return self.projection_.shape[1]
+
+    @property
+    def n_reconstruction_blocks(self) -> int:
+        return self.reconstruction_.shape[1] // self.n_levels
+
+    def transform(self, x: np.ndarray) -> np.ndarray:
+        """z [N, K] from raw features x [N, F], through the sklearn objects (not the fold)."""
+        s = self.scaler_.transform(np.asarray(x, dtype=float))
+        L = self.n_levels
+        pieces = []
+        for name, sl, _ in self._blocks():
+            pca = self.pca_[name]
+            pieces.append(pca.transform(s[:, sl]) if pca is not None else s[:, sl])
+        pieces.append(s[:, s.shape[1] - 2:])
+        return (np.concatenate(pieces, axis=1) - self.block_mean_) @ self.whitening_
+
+    def project(self, x: np.ndarray) -> np.ndarray:
+        """z [N, K] through the folded affine map (what the bundle computes)."""
+        return (np.asarray(x, dtype=float) - self.center_) @ self.projection_ + self.offset_
+
+    def novelty_scores(self, x: np.ndarray) -> np.ndarray:
+        """[N, 1 + B]: ||z||^2 and the squared reconstruction error of each block [1]."""
+        x = np.asarray(x, dtype=float)
+        z = self.project(x)
+        r = (x - self.center_) @ self.reconstruction_ + self.reconstruction_offset_
+        L = self.n_levels
+        blocks = [np.sum(r[:, i * L:(i + 1) * L] ** 2, axis=1) for i in range(self.n_reconstruction_blocks)]
+        return np.stack([np.sum(z**2, axis=1), *blocks], axis=1)

@@ -1,0 +1,835 @@
+"""Training: recipes, training data, and the per-channel scikit-learn emulators.
+
+Stage "training" (physics -> sampling -> training -> export -> runtime). This module fits
+the models in memory; :mod:`rtemu.export` turns them into the ONNX bundle
+(:func:`rtemu.export.train_to_onnx` is the one-call entry point).
+
+Model of channel c (see :mod:`rtemu.features` for x and z)::
+
+    BT_c = lin_c(x, e_c) + mean_c + scale_c * mlp_c(z, (e_c - m_e) / s_e)
+    lin_c(x, e) = beta0 + s.beta1 + eps beta2 + eps (s.beta3)      (ridge regression)
+
+with s the standardised raw features and eps the standardised emissivity; the network
+(scikit-learn ``MLPRegressor``, tanh units) fits the standardised residual of the linear
+part. Fitting the residual of a linear model leaves the network only the nonlinear part
+of the radiative transfer, whose size is far smaller than the brightness-temperature
+range; the e_c * x terms carry the surface-reflection product e (Ts - T_down) to first
+order.
+
+Recipes are TOML files with a fixed schema (see ``SCHEMA``); the shipped ones live in
+``rtemu/recipes``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import os
+import sys
+import time
+import warnings
+import zlib
+from importlib import resources
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import xarray as xr
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+from rtemu import _checks
+from rtemu._io import open_dataset
+from rtemu.features import (
+    HUMIDITY_TRANSFORMS,
+    ZENITH_TRANSFORMS,
+    FeatureConfig,
+    FeatureTransform,
+    raw_features,
+)
+from rtemu.instrument import Instrument
+
+__all__ = [
+    "Recipe",
+    "load_recipe",
+    "list_recipes",
+    "TrainingData",
+    "load_training_data",
+    "ChannelFit",
+    "TrainedEmulator",
+    "fit_emulator",
+]
+
+
+# ---- recipes ------------------------------------------------------------------------------
+def _int(lo=None):
+    def check(v):
+        if isinstance(v, bool) or not isinstance(v, int) or (lo is not None and v < lo):
+            return f"an integer >= {lo}" if lo is not None else "an integer"
+        return None
+    return check
+
+
+def _float(lo=None, hi=None, strict_lo=False):
+    def check(v):  # noqa: D401 - a checker returns a problem description or None
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
+            return "a number"
+        if lo is not None and (v <= lo if strict_lo else v < lo):
+            return f"a number {'>' if strict_lo else '>='} {lo}"
+        if hi is not None and v > hi:
+            return f"a number <= {hi}"
+        return None
+    check.is_float = True
+    return check
+
+
+def _bool(v):
+    return None if isinstance(v, bool) else "true or false"
+
+
+def _str(v):
+    return None if isinstance(v, str) else "a string"
+
+
+def _choice(options):
+    def check(v):
+        return None if v in options else f"one of {list(options)}"
+    return check
+
+
+def _layers(v):
+    if (not isinstance(v, list) or not v or len(v) > 4
+            or any(isinstance(h, bool) or not isinstance(h, int) or h < 1 or h > 1024 for h in v)):
+        return "a list of 1 to 4 integers in [1, 1024]"
+    return None
+
+
+_NETWORK = {
+    "hidden_layers": _layers,
+    "activation": _choice(("tanh",)),
+    "solver": _choice(("lbfgs", "adam")),
+    "alpha": _float(0.0),
+    "max_iter": _int(1),
+    "tol": _float(0.0),
+    "learning_rate_init": _float(0.0, strict_lo=True),
+    "batch_size": _int(1),
+    "early_stopping": _bool,
+    "check_every": _int(1),
+    "patience": _int(1),
+    "ridge_alpha": _float(0.0),
+}
+
+SCHEMA: dict[str, dict[str, Any]] = {
+    "": {"name": _str, "description": _str},
+    "training": {
+        "seed": _int(0),
+        "validation_fraction": _float(0.0, 0.9, strict_lo=True),
+        "max_profiles": _int(0),
+    },
+    "features": {
+        "humidity": _choice(HUMIDITY_TRANSFORMS),
+        "humidity_floor": _float(0.0, strict_lo=True),
+        "zenith": _choice(ZENITH_TRANSFORMS),
+        "temperature_components": _int(0),
+        "humidity_components": _int(0),
+        "linear_humidity_components": _int(0),
+    },
+    "linear": {"residual": _bool, "ridge_alpha": _float(0.0)},
+    "network": {k: v for k, v in _NETWORK.items() if k != "ridge_alpha"},
+    "envelope": {"bounds_margin": _float(0.0, 1.0), "novelty_margin": _float(1.0)},
+}
+#: Keys a ``[channels."<id>"]`` table may override (network settings and the ridge penalty).
+CHANNEL_KEYS = {k: v for k, v in _NETWORK.items() if k != "activation"}
+
+DEFAULTS = {
+    "training": {"seed": 0, "validation_fraction": 0.15, "max_profiles": 0},
+    "features": dataclasses.asdict(FeatureConfig()),
+    "linear": {"residual": True, "ridge_alpha": 1e-3},
+    "network": {
+        "hidden_layers": [32, 32], "activation": "tanh", "solver": "lbfgs", "alpha": 1e-6,
+        "max_iter": 2000, "tol": 0.0, "learning_rate_init": 1e-3, "batch_size": 256,
+        "early_stopping": True, "check_every": 250, "patience": 3,
+    },
+    "envelope": {"bounds_margin": 0.02, "novelty_margin": 1.0},
+}
+
+
+@dataclasses.dataclass(frozen=True)
+class Recipe:
+    """A validated training recipe.
+
+    Attributes
+    ----------
+    name : str
+    description : str
+    source : str
+        Where it was read from (path or ``<package>/name.toml``).
+    text : str
+        The TOML text, stored verbatim in the bundle.
+    settings : dict
+        Section -> key -> value, defaults filled in.
+    channels : dict
+        Channel id -> overridden network keys.
+    """
+
+    name: str
+    description: str
+    source: str
+    text: str
+    settings: dict
+    channels: dict
+
+    @property
+    def sha256(self) -> str:
+        return hashlib.sha256(self.text.encode("utf-8")).hexdigest()
+
+    @property
+    def seed(self) -> int:
+        return self.settings["training"]["seed"]
+
+    def feature_config(self) -> FeatureConfig:
+        return FeatureConfig(**self.settings["features"])
+
+    def network_for(self, channel_id: str) -> dict:
+        """Network settings for one channel (recipe ``[network]`` + its overrides)."""
+        net = dict(self.settings["network"])
+        net["ridge_alpha"] = self.settings["linear"]["ridge_alpha"]
+        net.update(self.channels.get(channel_id, {}))
+        return net
+
+    @classmethod
+    def from_toml(cls, text: str, source: str = "<string>") -> "Recipe":
+        """Parse and validate recipe TOML ``text`` (``source`` names it in errors)."""
+        try:
+            data = tomllib.loads(text)
+        except tomllib.TOMLDecodeError as exc:
+            raise ValueError(f"recipe {source}: not valid TOML: {exc}") from None
+        settings = {section: dict(values) for section, values in DEFAULTS.items()}
+        channels: dict[str, dict] = {}
+        top = {}
+        for key, value in data.items():
+            if key == "channels":
+                if not isinstance(value, dict):
+                    raise ValueError(f"recipe {source}: 'channels' must be a table of channel tables")
+                for cid, overrides in value.items():
+                    if not isinstance(overrides, dict):
+                        raise ValueError(f"recipe {source}: 'channels.{cid}' must be a table")
+                    channels[cid] = _checked(source, f"channels.{cid}", overrides, CHANNEL_KEYS)
+            elif key in SCHEMA and key:
+                if not isinstance(value, dict):
+                    raise ValueError(f"recipe {source}: '{key}' must be a table")
+                settings[key].update(_checked(source, key, value, SCHEMA[key]))
+            elif key in SCHEMA[""]:
+                top.update(_checked(source, "", {key: value}, SCHEMA[""]))
+            else:
+                raise ValueError(f"recipe {source}: unknown key '{key}'")
+        if "name" not in top:
+            raise ValueError(f"recipe {source}: missing key 'name'")
+        depth = len(settings["network"]["hidden_layers"])
+        for cid, overrides in channels.items():
+            if "hidden_layers" in overrides and len(overrides["hidden_layers"]) != depth:
+                raise ValueError(
+                    f"recipe {source}: key 'channels.{cid}.hidden_layers' has "
+                    f"{len(overrides['hidden_layers'])} layers, [network] has {depth} (rule: all "
+                    "channels of a bundle share the number of hidden layers)"
+                )
+        try:
+            FeatureConfig(**settings["features"])
+        except ValueError as exc:
+            raise ValueError(f"recipe {source}: [features]: {exc}") from None
+        return cls(name=top["name"], description=top.get("description", ""), source=source,
+                   text=text, settings=settings, channels=channels)
+
+
+def _checked(source: str, section: str, values: dict, schema: dict) -> dict:
+    out = {}
+    for key, value in values.items():
+        where = f"{section}.{key}" if section else key
+        if key not in schema:
+            raise ValueError(f"recipe {source}: unknown key '{where}'")
+        problem = schema[key](value)
+        if problem:
+            raise ValueError(f"recipe {source}: key '{where}' must be {problem}, got {value!r}")
+        out[key] = float(value) if getattr(schema[key], "is_float", False) else value
+    return out
+
+
+def _package_dir():
+    return resources.files("rtemu") / "recipes"
+
+
+def list_recipes() -> list[str]:
+    """Names of the recipes shipped with rtemu (``rtemu/recipes/*.toml``)."""
+    return sorted(p.name[:-5] for p in _package_dir().iterdir() if p.name.endswith(".toml"))
+
+
+def load_recipe(name_or_path) -> Recipe:
+    """Load a shipped recipe by name (see :func:`list_recipes`) or a recipe file by path."""
+    if isinstance(name_or_path, Recipe):
+        return name_or_path
+    text_name = str(name_or_path)
+    path = Path(text_name)
+    if path.suffix == ".toml" or path.exists() or "/" in text_name or "\\" in text_name:
+        if not path.is_file():
+            raise ValueError(f"recipe file {text_name} does not exist")
+        return Recipe.from_toml(path.read_text(encoding="utf-8"), source=str(path))
+    resource = _package_dir() / f"{text_name}.toml"
+    if not resource.is_file():
+        raise ValueError(f"unknown recipe {text_name!r}; shipped recipes: {', '.join(list_recipes())} "
+                         "(or give a path to a .toml file)")
+    return Recipe.from_toml(resource.read_text(encoding="utf-8"), source=f"rtemu/recipes/{text_name}.toml")
+
+
+# ---- training data ----------------------------------------------------------------------
+#: Physical validity range of each input (the bundle's invalid_input rule), mirroring the
+#: rules of the physical model (rtemu._checks): T, Ts in [100, 400] K, 0 <= q < 0.1,
+#: 0 <= e <= 1, 0 <= theta <= 85 degree.
+PHYSICAL_BOUNDS = {
+    "air_temperature": _checks.TEMPERATURE_RANGE_K,
+    "specific_humidity": (0.0, float(np.nextafter(np.float32(_checks.HUMIDITY_MAX), np.float32(0)))),
+    "surface_temperature": _checks.TEMPERATURE_RANGE_K,
+    "sensor_zenith_angle": (0.0, _checks.ZENITH_MAX_DEG),
+    "surface_emissivity": (0.0, 1.0),
+}
+_STATE = ("air_temperature", "specific_humidity", "surface_temperature", "surface_emissivity",
+          "sensor_zenith_angle")
+
+
+@dataclasses.dataclass
+class TrainingData:
+    """Training profiles as float64 arrays, levels surface-first (pressure decreasing).
+
+    Attributes
+    ----------
+    instrument : Instrument
+        The instrument of the file (all its channels).
+    pressure_hpa : numpy.ndarray
+        The fixed level grid [hPa], shape (L,).
+    air_temperature, specific_humidity : numpy.ndarray
+        [K], [kg kg-1], shape (N, L).
+    surface_temperature, sensor_zenith_angle : numpy.ndarray
+        [K], [degree], shape (N,).
+    surface_emissivity, brightness_temperature : numpy.ndarray
+        [1], [K], shape (N, C) over the instrument's channels.
+    usable : numpy.ndarray
+        bool (N, C): finite brightness temperature and zero quality flag.
+    sha256 : str
+        SHA-256 of the training file (or of the arrays, for an in-memory dataset).
+    source : str
+    """
+
+    instrument: Instrument
+    pressure_hpa: np.ndarray
+    air_temperature: np.ndarray
+    specific_humidity: np.ndarray
+    surface_temperature: np.ndarray
+    surface_emissivity: np.ndarray
+    sensor_zenith_angle: np.ndarray
+    brightness_temperature: np.ndarray
+    usable: np.ndarray
+    sha256: str
+    source: str
+
+    @property
+    def n_profiles(self) -> int:
+        return self.air_temperature.shape[0]
+
+
+def _file_sha256(path: Path) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def _arrays_sha256(ds: xr.Dataset) -> str:
+    digest = hashlib.sha256()
+    for name in sorted(ds.variables):
+        values = np.asarray(ds[name].values)
+        digest.update(name.encode() + b"\0" + str(values.dtype).encode() + str(values.shape).encode())
+        digest.update(np.ascontiguousarray(values).tobytes() if values.dtype.kind != "O"
+                      else "\0".join(map(str, values.ravel())).encode())
+    return digest.hexdigest()
+
+
+def load_training_data(data) -> TrainingData:
+    """Read a training set (netCDF path or xarray.Dataset in the operator schema).
+
+    The file must hold the inputs, ``brightness_temperature`` (profile, channel), the
+    instrument TOML in the global attribute ``rtemu_instrument_toml`` (written by
+    :func:`rtemu.sampling.sample_to_netcdf`) and one pressure grid for all profiles.
+    """
+    if isinstance(data, xr.Dataset):
+        ds, source, sha = data, "<in-memory dataset>", None
+    else:
+        path = Path(data)
+        if not path.is_file():
+            raise ValueError(f"training data {path} does not exist")
+        ds, source, sha = open_dataset(path), str(path), _file_sha256(path)
+    try:
+        return _read_training(ds, source, sha)
+    finally:
+        if not isinstance(data, xr.Dataset):
+            ds.close()
+
+
+def _read_training(ds: xr.Dataset, source: str, sha: str | None) -> TrainingData:
+    toml = ds.attrs.get("rtemu_instrument_toml")
+    if not toml:
+        raise ValueError(f"training data {source}: no 'rtemu_instrument_toml' attribute (rule: make "
+                         "training sets with rtemu.sampling.sample_to_netcdf or add the instrument)")
+    inst = Instrument.from_toml(str(toml), source=f"{source}:rtemu_instrument_toml")
+    missing = [n for n in ("air_pressure", *_STATE, "brightness_temperature") if n not in ds]
+    if missing:
+        raise ValueError(f"training data {source}: missing variables {missing}")
+    ids = [str(c) for c in ds["channel"].values] if "channel" in ds.coords else None
+    if ids != list(inst.channel_ids):
+        raise ValueError(f"training data {source}: channel coordinate {ids} does not match the "
+                         f"instrument's channels {list(inst.channel_ids)}")
+    p = np.asarray(ds["air_pressure"].values, dtype=float)
+    if p.ndim == 2:
+        if not np.all(p == p[:1]):
+            first = int(np.flatnonzero(np.any(p != p[:1], axis=1))[0])
+            raise ValueError(f"training data {source}: air_pressure differs between profiles (rule: "
+                             f"one fixed grid); first offending profile index {first}")
+        p = p[0]
+    if p.ndim != 1 or p.size < 2 or not (np.all(np.diff(p) < 0) or np.all(np.diff(p) > 0)):
+        raise ValueError(f"training data {source}: air_pressure must be a strictly monotonic level grid")
+    flip = p[0] < p[-1]  # top-first on file: store surface-first
+    order = slice(None, None, -1) if flip else slice(None)
+
+    def get(name, dims):
+        da = ds[name]
+        if set(da.dims) != set(dims):
+            raise ValueError(f"training data {source}: {name} has dims {da.dims}, expected {dims}")
+        return np.asarray(da.transpose(*dims).values, dtype=float)
+
+    T = get("air_temperature", ("profile", "level"))[:, order]
+    q = get("specific_humidity", ("profile", "level"))[:, order]
+    ts = get("surface_temperature", ("profile",))
+    zen = get("sensor_zenith_angle", ("profile",))
+    em = ds["surface_emissivity"]
+    em = (np.repeat(get("surface_emissivity", ("profile",))[:, None], len(ids), axis=1)
+          if em.ndim == 1 else get("surface_emissivity", ("profile", "channel")))
+    bt = get("brightness_temperature", ("profile", "channel"))
+    usable = np.isfinite(bt)
+    if "quality_flag" in ds:
+        usable &= get("quality_flag", ("profile", "channel")) == 0
+    state_ok = (np.isfinite(T).all(1) & np.isfinite(q).all(1) & np.isfinite(ts) & np.isfinite(zen)
+                & np.isfinite(em).all(1))
+    usable &= state_ok[:, None]
+    return TrainingData(
+        instrument=inst, pressure_hpa=p[order].copy(), air_temperature=T, specific_humidity=q,
+        surface_temperature=ts, surface_emissivity=em, sensor_zenith_angle=zen,
+        brightness_temperature=bt, usable=usable,
+        sha256=sha or _arrays_sha256(ds[[n for n in ("air_pressure", *_STATE, "brightness_temperature")]]),
+        source=source,
+    )
+
+
+# ---- per-channel fit ----------------------------------------------------------------------
+@dataclasses.dataclass
+class ChannelFit:
+    """One channel's fitted emulator (scikit-learn objects) and its validation figures.
+
+    Attributes
+    ----------
+    channel_id : str
+    ridge : sklearn.linear_model.Ridge or None
+        Linear part on the design [s, eps, eps * s] (None when the recipe disables it).
+    x_mean, x_scale : numpy.ndarray
+        Standardisation of the raw features in the linear design [mixed units].
+    e_mean, e_scale : float
+        Standardisation of the channel's emissivity [1].
+    target_mean, target_scale : float
+        Standardisation of the network's target (the linear residual) [K].
+    mlp : sklearn.neural_network.MLPRegressor
+    stats : dict
+        Validation figures (deterministic: no timings) stored in the bundle.
+    seconds : float
+        Wall time of the fit [s] (reported, not stored).
+    """
+
+    channel_id: str
+    ridge: Any
+    x_mean: np.ndarray
+    x_scale: np.ndarray
+    e_mean: float
+    e_scale: float
+    target_mean: float
+    target_scale: float
+    mlp: Any
+    stats: dict
+    seconds: float = 0.0
+
+    @property
+    def hidden(self) -> tuple[int, ...]:
+        return tuple(int(c.shape[1]) for c in self.mlp.coefs_[:-1])
+
+    def design(self, x: np.ndarray, e: np.ndarray) -> np.ndarray:
+        """Linear design [s, eps, eps * s, sig * s], sig = s[:, -1] the standardised s(theta).
+
+        The products make the linear coefficients affine in the emissivity (surface
+        reflection: dR/de = t0 (B(Ts) - R_down)) and in the slant-path factor (the
+        weighting functions move with sec(theta)).
+        """
+        s = (x - self.x_mean) / self.x_scale
+        eps = ((e - self.e_mean) / self.e_scale)[:, None]
+        return np.concatenate([s, eps, eps * s, s[:, -1:] * s], axis=1)
+
+    def network_input(self, z: np.ndarray, e: np.ndarray) -> np.ndarray:
+        return np.concatenate([z, ((e - self.e_mean) / self.e_scale)[:, None]], axis=1)
+
+    def linear(self, x: np.ndarray, e: np.ndarray) -> np.ndarray:
+        if self.ridge is None:
+            return np.zeros(x.shape[0])
+        return self.ridge.predict(self.design(x, e))
+
+    def predict(self, x: np.ndarray, z: np.ndarray, e: np.ndarray) -> np.ndarray:
+        """BT [K] from raw features x [N, F], compressed z [N, K], emissivity e [N] [1]."""
+        net = self.mlp.predict(self.network_input(z, e))
+        return self.linear(x, e) + self.target_mean + self.target_scale * net
+
+    def folded(self, center: np.ndarray) -> dict[str, np.ndarray]:
+        """The channel's parameters in the bundle's form (float64), on x - ``center``.
+
+        Keys: linear_weight, linear_emissivity_weight, linear_zenith_weight [F],
+        linear_emissivity, linear_zenith, output_bias [], layer1_weight [K+1, H1] (last row: bias),
+        layer1_emissivity [1, H1], layer{k}_weight, layer{k}_bias [1, Hk], output_weight
+        [Hd, 1]. Algebra: with s = (x - mu)/sigma, eps = (e - m)/w, sig = s_F and ridge
+        coefficients (b0, b1, b2, b3, b4) on [s, eps, eps s, sig s]; v3 = b3/sigma,
+        c3 = mu.v3, v4 = b4/sigma, c4 = mu.v4:
+        l = b1/sigma - (m/w) v3 - (mu_F/sigma_F) v4, and l_F -= c4/sigma_F;
+        m_e = v3/w;  n = v4/sigma_F;  l_e = (b2 - c3)/w;
+        b = b0 - mu.(b1/sigma) - m b2/w + (m/w) c3 + (mu_F/sigma_F) c4;
+        on x - x_ref the constants gain x_ref.l, x_ref.m_e and (new) l_s = x_ref.n.
+        """
+        F = self.x_mean.size
+        if self.ridge is not None:
+            coef = np.asarray(self.ridge.coef_, dtype=float).ravel()
+            b0 = float(np.ravel(self.ridge.intercept_)[0])
+            b1, b2, b3, b4 = coef[:F], coef[F], coef[F + 1:2 * F + 1], coef[2 * F + 1:]
+        else:
+            b0, b1, b2, b3, b4 = 0.0, np.zeros(F), 0.0, np.zeros(F), np.zeros(F)
+        mu, sigma, m, w = self.x_mean, self.x_scale, self.e_mean, self.e_scale
+        mF, sF = mu[-1], sigma[-1]
+        v3, v4 = b3 / sigma, b4 / sigma
+        c3, c4 = float(mu @ v3), float(mu @ v4)
+        lin = b1 / sigma - (m / w) * v3 - (mF / sF) * v4
+        lin[-1] -= c4 / sF
+        out = {
+            "linear_weight": lin,
+            "linear_emissivity_weight": v3 / w,
+            "linear_zenith_weight": v4 / sF,
+            "linear_emissivity": np.array((b2 - c3) / w + center @ (v3 / w)),
+            "linear_zenith": np.array(center @ (v4 / sF)),
+            "output_bias": np.array(b0 - float(mu @ (b1 / sigma)) - m * b2 / w + (m / w) * c3 + (mF / sF) * c4
+                                    + center @ lin),
+        }
+        coefs, intercepts = self.mlp.coefs_, self.mlp.intercepts_
+        w1 = coefs[0]  # [K+1, H1]: z rows then the eps row
+        w1e = w1[-1] / w
+        out["layer1_weight"] = np.concatenate([w1[:-1], (intercepts[0] - m * w1e)[None, :]], axis=0)
+        out["layer1_emissivity"] = w1e[None, :]
+        for k in range(1, len(coefs) - 1):
+            out[f"layer{k + 1}_weight"] = coefs[k]
+            out[f"layer{k + 1}_bias"] = intercepts[k][None, :]
+        out["output_weight"] = self.target_scale * coefs[-1]
+        out["output_bias"] = out["output_bias"] + self.target_mean + self.target_scale * float(intercepts[-1][0])
+        return out
+
+
+def channel_seed(seed: int, channel_id: str) -> int:
+    """Per-channel seed: independent of which other channels are trained [1]."""
+    return int(np.random.SeedSequence([seed, zlib.crc32(channel_id.encode())]).generate_state(1)[0])
+
+
+def _error_stats(err: np.ndarray, prefix: str) -> dict:
+    a = np.abs(err)
+    return {
+        f"{prefix}_bias_k": float(np.mean(err)),
+        f"{prefix}_rmse_k": float(np.sqrt(np.mean(err**2))),
+        f"{prefix}_p999_abs_k": float(np.quantile(a, 0.999)),
+        f"{prefix}_max_abs_k": float(np.max(a)),
+    }
+
+
+def _fit_channel(job: dict) -> ChannelFit:
+    """Fit one channel (runs in a worker process; single-threaded BLAS for determinism)."""
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1):
+        return _fit_channel_inner(**job)
+
+
+def _fit_channel_inner(*, channel_id, x, z, e, y, train, val, net, seed, residual):
+    from sklearn.exceptions import ConvergenceWarning
+    from sklearn.linear_model import Ridge
+    from sklearn.neural_network import MLPRegressor
+
+    start = time.perf_counter()
+    xt, et, yt = x[train], e[train], y[train]
+    x_mean, x_scale = xt.mean(axis=0), xt.std(axis=0)
+    x_scale = np.where(x_scale > 1e-12, x_scale, 1.0)
+    e_mean, e_scale = float(et.mean()), float(et.std())
+    if not e_scale > 1e-9:  # constant emissivity: no information on its effect
+        e_scale = 1.0
+    fit = ChannelFit(channel_id=channel_id, ridge=None, x_mean=x_mean, x_scale=x_scale,
+                     e_mean=e_mean, e_scale=e_scale,
+                     target_mean=0.0, target_scale=1.0, mlp=None, stats={})
+    if residual:
+        fit.ridge = Ridge(alpha=net["ridge_alpha"] * len(train), solver="cholesky")
+        fit.ridge.fit(fit.design(xt, et), yt)
+    r = yt - fit.linear(xt, et)
+    fit.target_mean = float(r.mean())
+    fit.target_scale = float(r.std()) if r.std() > 1e-12 else 1.0
+    target = (r - fit.target_mean) / fit.target_scale
+    ut = fit.network_input(z[train], et)
+    uv = fit.network_input(z[val], e[val])
+    mlp = MLPRegressor(
+        hidden_layer_sizes=tuple(net["hidden_layers"]), activation="tanh", solver=net["solver"],
+        alpha=net["alpha"], tol=net["tol"], random_state=seed, warm_start=True,
+        learning_rate_init=net["learning_rate_init"], batch_size=min(net["batch_size"], len(train)),
+        max_iter=net["max_iter"], n_iter_no_change=10**9 if net["solver"] != "lbfgs" else 10,
+        shuffle=True,
+    )
+    fit.mlp = mlp
+    yv = y[val]
+    lin_v = fit.linear(x[val], e[val])
+
+    def val_rmse():
+        pred = lin_v + fit.target_mean + fit.target_scale * mlp.predict(uv)
+        return float(np.sqrt(np.mean((pred - yv) ** 2)))
+
+    chunk = net["check_every"] if net["early_stopping"] else net["max_iter"]
+    done, best, best_state, stale = 0, np.inf, None, 0
+    with warnings.catch_warnings():
+        # running out of iterations is the plan here, not a problem
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        while done < net["max_iter"]:
+            mlp.max_iter = min(chunk, net["max_iter"] - done)
+            mlp.fit(ut, target)
+            done += mlp.n_iter_
+            score = val_rmse()
+            if score < best:
+                best, stale = score, 0
+                best_state = ([c.copy() for c in mlp.coefs_], [b.copy() for b in mlp.intercepts_], done)
+            else:
+                stale += 1
+            if stale >= net["patience"] or mlp.n_iter_ < mlp.max_iter:
+                break
+    mlp.coefs_, mlp.intercepts_ = best_state[0], best_state[1]
+    fit.stats = {
+        "n_train": int(len(train)),
+        "n_validation": int(len(val)),
+        "iterations": int(done),
+        "best_iteration": int(best_state[2]),
+        "hidden_layers": list(fit.hidden),
+        "seed": int(seed),
+        **_error_stats(fit.predict(x[val], z[val], e[val]) - yv, "validation"),
+        **({"linear_only_validation_rmse_k": float(np.sqrt(np.mean((lin_v - yv) ** 2)))} if residual else {}),
+        "train_rmse_k": float(np.sqrt(np.mean((fit.predict(xt, z[train], et) - yt) ** 2))),
+    }
+    fit.seconds = time.perf_counter() - start
+    return fit
+
+
+# ---- the whole emulator -------------------------------------------------------------------
+@dataclasses.dataclass
+class Envelope:
+    """Per-variable bounds [N-independent] and novelty limits of the training set.
+
+    ``lower``/``upper`` map variable names to arrays: air_temperature, specific_humidity
+    [L]; surface_temperature, sensor_zenith_angle []; surface_emissivity [C] over the
+    trained channels. ``novelty_limits`` [1 + B]: largest training ||z||^2 and block
+    reconstruction errors, times the recipe's novelty_margin.
+    """
+
+    lower: dict
+    upper: dict
+    novelty_limits: np.ndarray
+    bounds_margin: float
+    novelty_margin: float
+
+
+@dataclasses.dataclass
+class TrainedEmulator:
+    """Everything :mod:`rtemu.export` needs to write a bundle (in memory)."""
+
+    instrument: Instrument
+    channel_ids: list
+    pressure_hpa: np.ndarray
+    config: FeatureConfig
+    transform: Any  # FeatureTransform, or the frozen transform of an existing bundle
+    envelope: Envelope
+    channels: dict
+    recipe: Any
+    data_sha256: str
+    data_source: str
+
+    def predict(self, air_temperature, specific_humidity, surface_temperature, surface_emissivity,
+                sensor_zenith_angle) -> np.ndarray:
+        """BT [K], shape (N, C), through the scikit-learn objects (levels surface-first)."""
+        x = raw_features(air_temperature, specific_humidity, surface_temperature, sensor_zenith_angle,
+                         self.config)
+        z = self.transform.transform(x)
+        e = np.asarray(surface_emissivity, dtype=float)
+        return np.stack([self.channels[c].predict(x, z, e[:, i]) for i, c in enumerate(self.channel_ids)],
+                        axis=1)
+
+
+def _envelope(data: TrainingData, columns: list[int], transform, x: np.ndarray,
+              recipe: Recipe) -> Envelope:
+    """Bounds over all used profiles (training and validation), widened by the margin."""
+    margin = recipe.settings["envelope"]["bounds_margin"]
+    values = {
+        "air_temperature": data.air_temperature,
+        "specific_humidity": data.specific_humidity,
+        "surface_temperature": data.surface_temperature,
+        "sensor_zenith_angle": data.sensor_zenith_angle,
+        "surface_emissivity": data.surface_emissivity[:, columns],
+    }
+    lower, upper = {}, {}
+    for name, v in values.items():
+        lo, hi = v.min(axis=0), v.max(axis=0)
+        plo, phi = PHYSICAL_BOUNDS[name]
+        if name == "specific_humidity":
+            # humidity spans decades: widen in ln q (a linear margin would reach q = 0)
+            lo, hi = np.log(np.maximum(lo, 1e-30)), np.log(np.maximum(hi, 1e-30))
+            width = hi - lo
+            lower[name] = np.clip(np.exp(lo - margin * width), plo, phi)
+            upper[name] = np.clip(np.exp(hi + margin * width), plo, phi)
+            continue
+        width = hi - lo
+        lower[name] = np.clip(lo - margin * width, plo, phi)
+        upper[name] = np.clip(hi + margin * width, plo, phi)
+    scores = transform.novelty_scores(x)
+    limits = scores.max(axis=0) * recipe.settings["envelope"]["novelty_margin"]
+    return Envelope(lower=lower, upper=upper, novelty_limits=limits, bounds_margin=margin,
+                    novelty_margin=recipe.settings["envelope"]["novelty_margin"])
+
+
+def fit_emulator(data, recipe, *, channels=None, transform=None, workers=None, progress=True,
+                 log=None) -> TrainedEmulator:
+    """Fit one emulator per channel (in parallel processes) on a training set.
+
+    Parameters
+    ----------
+    data : TrainingData, str, os.PathLike or xarray.Dataset
+        The training set (see :func:`load_training_data`).
+    recipe : Recipe, str or os.PathLike
+        Recipe or its name/path (see :func:`load_recipe`).
+    channels : sequence of str, optional
+        Channel ids to train (default: all of the file's instrument), in the file's order.
+    transform : object, optional
+        A fitted shared transform to reuse (an existing bundle's, for updates); it must
+        provide ``project``, ``transform``, ``novelty_scores``, ``config`` and ``n_levels``.
+        Default: fit a :class:`~rtemu.features.FeatureTransform` on the training part.
+    workers : int, optional
+        Worker processes (joblib, loky backend) [1]; default min(cores, channels); 1 fits
+        in this process. The result does not depend on it.
+    progress : bool
+        tqdm bar over channels with each channel's validation RMSE.
+    log : callable, optional
+        Receives one line per finished channel (besides the bar).
+
+    Returns
+    -------
+    TrainedEmulator
+    """
+    recipe = load_recipe(recipe)
+    if not isinstance(data, TrainingData):
+        data = load_training_data(data)
+    inst = data.instrument
+    ids = list(inst.channel_ids) if channels is None else [str(c) for c in channels]
+    unknown = [c for c in ids if c not in inst.channel_ids]
+    if unknown:
+        raise ValueError(f"channels {unknown} are not channels of the training data's instrument "
+                         f"{inst.name!r} ({', '.join(inst.channel_ids)})")
+    if len(set(ids)) != len(ids):
+        raise ValueError(f"channels: duplicate ids in {ids}")
+    ids = [c for c in inst.channel_ids if c in ids]
+    columns = [list(inst.channel_ids).index(c) for c in ids]
+    rows = np.flatnonzero(data.usable[:, columns].all(axis=1))
+    limit = recipe.settings["training"]["max_profiles"]
+    if limit:
+        rows = rows[:limit]
+    fraction = recipe.settings["training"]["validation_fraction"]
+    n_val = int(round(fraction * rows.size))
+    if rows.size - n_val < 10 or n_val < 1:
+        raise ValueError(f"training data {data.source}: {rows.size} usable profiles are too few for a "
+                         f"validation fraction of {fraction}")
+    perm = np.random.default_rng(np.random.SeedSequence([recipe.seed, 0x7a11])).permutation(rows.size)
+    val = np.sort(perm[:n_val])
+    train = np.sort(perm[n_val:])
+
+    config = recipe.feature_config()
+    L = data.pressure_hpa.size
+    x = raw_features(data.air_temperature[rows], data.specific_humidity[rows],
+                     data.surface_temperature[rows], data.sensor_zenith_angle[rows], config)
+    if transform is None:
+        transform = FeatureTransform(config=config, n_levels=L).fit(x[train])
+    elif transform.n_levels != L:
+        raise ValueError(f"the shared transform has {transform.n_levels} levels, the data {L}")
+    z = transform.project(x)
+    envelope = _envelope(_subset(data, rows), columns, transform, x, recipe)
+
+    jobs = []
+    for cid, col in zip(ids, columns):
+        jobs.append({
+            "channel_id": cid, "x": x, "z": z, "e": data.surface_emissivity[rows, col],
+            "y": data.brightness_temperature[rows, col], "train": train, "val": val,
+            "net": recipe.network_for(cid), "seed": channel_seed(recipe.seed, cid),
+            "residual": recipe.settings["linear"]["residual"],
+        })
+    fits = dict(_run_jobs(jobs, workers, progress, log))
+    return TrainedEmulator(
+        instrument=inst, channel_ids=ids, pressure_hpa=data.pressure_hpa, config=config,
+        transform=transform, envelope=envelope, channels={c: fits[c] for c in ids}, recipe=recipe,
+        data_sha256=data.sha256, data_source=data.source,
+    )
+
+
+def _subset(data: TrainingData, rows: np.ndarray) -> TrainingData:
+    return dataclasses.replace(
+        data,
+        air_temperature=data.air_temperature[rows], specific_humidity=data.specific_humidity[rows],
+        surface_temperature=data.surface_temperature[rows],
+        surface_emissivity=data.surface_emissivity[rows],
+        sensor_zenith_angle=data.sensor_zenith_angle[rows],
+        brightness_temperature=data.brightness_temperature[rows], usable=data.usable[rows],
+    )
+
+
+def _run_jobs(jobs: list[dict], workers, progress: bool, log):
+    from tqdm.auto import tqdm
+
+    if workers is None:
+        workers = min(os.cpu_count() or 1, len(jobs))
+    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
+        raise ValueError(f"workers must be an integer >= 1, got {workers!r}")
+    bar = tqdm(total=len(jobs), desc="rtemu train", unit="channel", disable=not progress)
+    try:
+        if workers == 1 or len(jobs) == 1:
+            results = (_fit_channel(job) for job in jobs)
+        else:
+            from joblib import Parallel, delayed
+
+            # max_nbytes=None: arrays travel through the pipe, never as memmapped dump files
+            results = Parallel(n_jobs=workers, backend="loky", return_as="generator_unordered",
+                               max_nbytes=None)(delayed(_fit_channel)(job) for job in jobs)
+        for fit in results:
+            line = (f"{fit.channel_id}: validation RMSE {fit.stats['validation_rmse_k']:.4f} K, "
+                    f"max {fit.stats['validation_max_abs_k']:.3f} K, {fit.stats['iterations']} iterations, "
+                    f"{fit.seconds:.1f} s")
+            bar.set_postfix_str(f"{fit.channel_id} val RMSE {fit.stats['validation_rmse_k']:.4f} K")
+            bar.update(1)
+            if log is not None:
+                log(line)
+            yield fit.channel_id, fit
+    finally:
+        bar.close()

@@ -1,0 +1,273 @@
+"""The exported ONNX graph: forward against scikit-learn (also via skl2onnx), exact
+Jacobians against finite differences, quality flags, pruned sessions."""
+
+from __future__ import annotations
+
+import numpy as np
+import onnx
+import onnxruntime as ort
+import pytest
+import xarray as xr
+
+from rtemu import _graph, flags
+from rtemu.bundle import make_session, pruned_model, read_bundle
+from rtemu.export import build_bundle_model
+from rtemu.sampling import sample_to_netcdf
+from rtemu.training import Recipe, fit_emulator, load_training_data
+
+CHANNELS = ["mw-win", "mw-t3", "mw-h2", "ir-win"]
+TINY = """
+name = "tiny-test"
+description = "seconds-scale recipe for tests"
+[training]
+seed = 4
+validation_fraction = 0.2
+[features]
+temperature_components = 6
+humidity_components = 5
+[network]
+hidden_layers = [10, 7]
+max_iter = 60
+check_every = 30
+[channels."mw-t3"]
+hidden_layers = [6, 4]
+"""
+
+
+@pytest.fixture(scope="module")
+def trained(tmp_path_factory):
+    """A tiny emulator (4 channels, one with narrower layers) and its bundle."""
+    root = tmp_path_factory.mktemp("export")
+    data_path = sample_to_netcdf("demo-sounder", root / "train.nc", count=1200, seed=21, progress=False)
+    data = load_training_data(data_path)
+    emu = fit_emulator(data, Recipe.from_toml(TINY, "tiny"), channels=CHANNELS, workers=1, progress=False)
+    blob, layout = build_bundle_model(emu)
+    path = root / "tiny.onnx"
+    path.write_bytes(blob)
+    return {"data": data, "emu": emu, "path": path, "layout": layout, "root": root}
+
+
+def _feeds(data, rows, columns, dtype=np.float32):
+    return {
+        "air_temperature": data.air_temperature[rows].astype(dtype),
+        "specific_humidity": data.specific_humidity[rows].astype(dtype),
+        "surface_temperature": data.surface_temperature[rows].astype(dtype),
+        "surface_emissivity": data.surface_emissivity[rows][:, columns].astype(dtype),
+        "sensor_zenith_angle": data.sensor_zenith_angle[rows].astype(dtype),
+    }
+
+
+def _columns(trained):
+    ids = list(trained["data"].instrument.channel_ids)
+    return [ids.index(c) for c in trained["emu"].channel_ids]
+
+
+def _run(session, feeds, names=None):
+    names = names or [o.name for o in session.get_outputs()]
+    return dict(zip(names, session.run(names, feeds)))
+
+
+def _float64_session(path):
+    """The bundle's function rebuilt in float64 from its own (float32) weights."""
+    b = read_bundle(path)
+    arrays = {k: v.astype(np.float64) for k, v in b.arrays().items() if k in _graph.primary_shapes(_layout(b))}
+    model = _graph.build_model(_layout(b), arrays, dtype=np.float64)
+    return ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"])
+
+
+def _layout(b):
+    g = b.graph
+    return _graph.GraphLayout(n_levels=g["n_levels"], n_channels=g["n_channels"], n_components=g["n_components"],
+                              hidden=tuple(g["hidden"]), humidity=g["humidity"], zenith=g["zenith"],
+                              n_reconstruction_blocks=g["n_reconstruction_blocks"])
+
+
+def test_flag_bits_match_rtemu_flags():
+    assert (_graph.INVALID_INPUT, _graph.OUTSIDE_TRAINING_BOUNDS, _graph.NOVEL_STATE) == (
+        flags.INVALID_INPUT, flags.OUTSIDE_TRAINING_BOUNDS, flags.NOVEL_STATE)
+
+
+def test_graph_is_valid_onnx_and_lean(trained):
+    model = onnx.load(str(trained["path"]))
+    onnx.checker.check_model(model, full_check=True)
+    assert model.opset_import[0].version == _graph.OPSET
+    # after onnxruntime's constant folding the graph stays small (speed of single calls)
+    assert len(model.graph.node) < 140
+
+
+def test_onnx_matches_in_memory_sklearn_model(trained):
+    data, emu = trained["data"], trained["emu"]
+    rows = np.arange(0, 1200, 7)
+    feeds = _feeds(data, rows, _columns(trained))
+    out = _run(make_session(trained["path"]), feeds, ["brightness_temperature"])
+    # the reference sees the same float32-rounded inputs, in float64
+    ref = emu.predict(*(feeds[n].astype(float) for n in _graph.INPUT_NAMES[:3]),
+                      feeds["surface_emissivity"].astype(float), feeds["sensor_zenith_angle"].astype(float))
+    # float32 evaluation: ~120-term products of centred features; 1e-3 K bounds the
+    # accumulated round-off (float32 epsilon 6e-8 relative) with a wide margin
+    np.testing.assert_allclose(out["brightness_temperature"], ref, atol=1e-3, rtol=0)
+
+
+def test_forward_cross_checked_with_skl2onnx(trained):
+    """Each channel's regressors converted by skl2onnx (an independent converter) give the
+    same brightness temperatures as the hand-built graph."""
+    from skl2onnx import convert_sklearn
+    from skl2onnx.common.data_types import DoubleTensorType
+
+    from rtemu.features import raw_features
+
+    data, emu = trained["data"], trained["emu"]
+    rows = np.arange(3, 1200, 11)
+    feeds = _feeds(data, rows, _columns(trained))
+    bundle_bt = _run(make_session(trained["path"]), feeds, ["brightness_temperature"])["brightness_temperature"]
+    x = raw_features(*(feeds[n].astype(float) for n in ("air_temperature", "specific_humidity",
+                                                         "surface_temperature", "sensor_zenith_angle")),
+                     emu.config)
+    z = emu.transform.transform(x)  # through the sklearn scaler/PCA objects
+    for i, cid in enumerate(emu.channel_ids):
+        fit = emu.channels[cid]
+        e = feeds["surface_emissivity"][:, i].astype(float)
+        u, design = fit.network_input(z, e), fit.design(x, e)
+        outs = []
+        for est, inp in ((fit.mlp, u), (fit.ridge, design)):
+            onx = convert_sklearn(est, initial_types=[("input", DoubleTensorType([None, inp.shape[1]]))],
+                                  target_opset=17)
+            sess = ort.InferenceSession(onx.SerializeToString(), providers=["CPUExecutionProvider"])
+            outs.append(sess.run(None, {"input": inp})[0].ravel())
+        bt = outs[1] + fit.target_mean + fit.target_scale * outs[0]
+        np.testing.assert_allclose(bundle_bt[:, i], bt, atol=1e-3, rtol=0, err_msg=cid)
+
+
+def test_jacobians_match_central_differences_float64(trained):
+    """Rebuilt in float64, the graph's Jacobians equal central differences of its own BT."""
+    session = _float64_session(trained["path"])
+    data = trained["data"]
+    rows = np.array([5, 400, 999])
+    feeds = _feeds(data, rows, _columns(trained), dtype=np.float64)
+    out = _run(session, feeds)
+    C, L = feeds["surface_emissivity"].shape[1], feeds["air_temperature"].shape[1]
+    checks = [("air_temperature", "jacobian_air_temperature", [0, 10, 25, L - 1]),
+              ("specific_humidity", "jacobian_specific_humidity", [0, 5, 15, 30])]
+    for var, jac, levels in checks:
+        for lev in levels:
+            x0 = feeds[var][:, lev]
+            h = 1e-5 * np.abs(x0)  # relative step: q spans decades; T ~ 250 K -> 2.5e-3 K
+            plus, minus = dict(feeds), dict(feeds)
+            plus[var], minus[var] = feeds[var].copy(), feeds[var].copy()
+            plus[var][:, lev] += h
+            minus[var][:, lev] -= h
+            fd = (_run(session, plus, ["brightness_temperature"])["brightness_temperature"]
+                  - _run(session, minus, ["brightness_temperature"])["brightness_temperature"]) / (2 * h[:, None])
+            analytic = out[jac][:, :, lev]
+            scale = np.abs(out[jac]).max(axis=2) + 1e-30
+            # float64 central differences: truncation O(h^2) and round-off ~1e-16/1e-5
+            assert np.all(np.abs(fd - analytic) <= 1e-6 * scale + 1e-9), (var, lev, fd, analytic)
+    for var, jac in (("surface_temperature", "jacobian_surface_temperature"),):
+        h = 1e-3
+        plus, minus = dict(feeds), dict(feeds)
+        plus[var], minus[var] = feeds[var] + h, feeds[var] - h
+        fd = (session.run(["brightness_temperature"], plus)[0] - session.run(["brightness_temperature"], minus)[0]) / (2 * h)
+        np.testing.assert_allclose(out[jac], fd, rtol=1e-6, atol=1e-9)
+    for c in range(C):
+        h = 1e-5
+        plus, minus = dict(feeds), dict(feeds)
+        plus["surface_emissivity"] = feeds["surface_emissivity"].copy()
+        minus["surface_emissivity"] = feeds["surface_emissivity"].copy()
+        plus["surface_emissivity"][:, c] += h
+        minus["surface_emissivity"][:, c] -= h
+        fd = (session.run(["brightness_temperature"], plus)[0] - session.run(["brightness_temperature"], minus)[0]) / (2 * h)
+        np.testing.assert_allclose(out["jacobian_surface_emissivity"][:, c], fd[:, c], rtol=1e-6, atol=1e-7)
+        others = np.delete(fd, c, axis=1)
+        assert np.all(np.abs(others) < 1e-9)  # e_c feeds only channel c
+
+
+def test_float32_jacobians_agree_with_float64_graph_and_fd(trained):
+    data = trained["data"]
+    rows = np.arange(10, 1200, 97)
+    cols = _columns(trained)
+    f32 = _run(make_session(trained["path"]), _feeds(data, rows, cols))
+    f64 = _run(_float64_session(trained["path"]), _feeds(data, rows, cols, dtype=np.float64))
+    for name in ("jacobian_air_temperature", "jacobian_specific_humidity", "jacobian_surface_temperature",
+                 "jacobian_surface_emissivity"):
+        scale = np.abs(f64[name]).max()
+        # float32 products of O(10)-sized terms: 1e-4 of the largest entry
+        np.testing.assert_allclose(f32[name], f64[name], atol=1e-4 * scale, rtol=0, err_msg=name)
+    # and directly on the float32 file: a 0.05 K step in the whole column
+    feeds = _feeds(data, rows, cols)
+    step = np.float32(0.05)
+    plus, minus = dict(feeds), dict(feeds)
+    plus["air_temperature"] = feeds["air_temperature"] + step
+    minus["air_temperature"] = feeds["air_temperature"] - step
+    s = make_session(trained["path"])
+    fd = (s.run(["brightness_temperature"], plus)[0].astype(float)
+          - s.run(["brightness_temperature"], minus)[0].astype(float)) / (2 * 0.05)
+    column = f32["jacobian_air_temperature"].sum(axis=2) + f32["jacobian_surface_temperature"] * 0
+    # BT in float32 resolves ~3e-5 K, so the difference quotient is good to ~1e-3 K/K
+    np.testing.assert_allclose(column, fd, atol=2e-3 + 0.01 * np.abs(fd).max())
+
+
+def test_pruned_session_bt_only_same_values_fewer_nodes(trained):
+    data = trained["data"]
+    feeds = _feeds(data, np.arange(50), _columns(trained))
+    full = _run(make_session(trained["path"]), feeds)
+    bt_only = make_session(trained["path"], outputs=["brightness_temperature"])
+    assert [o.name for o in bt_only.get_outputs()] == ["brightness_temperature"]
+    np.testing.assert_array_equal(bt_only.run(None, feeds)[0], full["brightness_temperature"])
+    model = onnx.load(str(trained["path"]))
+    small = pruned_model(model, ["brightness_temperature"])
+    assert len(small.graph.node) < 0.6 * len(model.graph.node)
+    with pytest.raises(ValueError, match="not outputs"):
+        pruned_model(model, ["radiance"])
+
+
+# ---- flags --------------------------------------------------------------------------------
+def test_flags_zero_on_training_profiles(trained):
+    data = trained["data"]
+    out = _run(make_session(trained["path"]), _feeds(data, np.arange(1200), _columns(trained)), ["quality_flag"])
+    assert out["quality_flag"].dtype == np.int32
+    assert np.all(out["quality_flag"] == 0)  # every training state lies inside its own envelope
+
+
+def test_flags_on_crafted_inputs(trained):
+    data = trained["data"]
+    session = make_session(trained["path"])
+    base = _feeds(data, np.arange(8), _columns(trained))
+
+    def flag_of(**changes):
+        feeds = {k: v.copy() for k, v in base.items()}
+        for name, fn in changes.items():
+            feeds[name] = fn(feeds[name]).astype(np.float32)
+        return _run(session, feeds, ["quality_flag"])["quality_flag"]
+
+    assert np.all(flag_of() == 0)
+    nan_t = flag_of(air_temperature=lambda t: np.where(np.arange(t.shape[1]) == 3, np.nan, t))
+    assert np.all(nan_t == flags.INVALID_INPUT)  # exactly bit 1, nothing else
+    inf_ts = flag_of(surface_temperature=lambda t: np.full_like(t, np.inf))
+    assert np.all(inf_ts == flags.INVALID_INPUT)
+    negative_q = flag_of(specific_humidity=lambda q: np.where(np.arange(q.shape[1]) == 0, -1e-3, q))
+    assert np.all(negative_q == flags.INVALID_INPUT)
+    zenith = flag_of(sensor_zenith_angle=lambda z: np.full_like(z, 87.0))  # physical rule: <= 85 degree
+    assert np.all(zenith == flags.INVALID_INPUT)
+    warm = flag_of(air_temperature=lambda t: t + 60.0)
+    assert np.all(warm & flags.OUTSIDE_TRAINING_BOUNDS) and not np.any(warm & flags.INVALID_INPUT)
+    # an emissivity outside its channel's range flags that channel only
+    low_e = flag_of(surface_emissivity=lambda e: np.where(np.arange(e.shape[1]) == 1, 0.05, e))
+    assert np.all(low_e[:, 1] & flags.OUTSIDE_TRAINING_BOUNDS)
+    assert np.all(np.delete(low_e, 1, axis=1) == 0)
+
+
+def test_novelty_flag_off_subspace_within_bounds(trained):
+    """A level-to-level zigzag that stays inside every per-level range but leaves the PCA
+    subspace sets novel_state (and not outside_training_bounds)."""
+    data = trained["data"]
+    session = make_session(trained["path"])
+    b = read_bundle(trained["path"])
+    lo = np.asarray(b.envelope["air_temperature"]["lower"])
+    hi = np.asarray(b.envelope["air_temperature"]["upper"])
+    mid = 0.5 * (lo + hi)
+    feeds = _feeds(data, np.arange(6), _columns(trained))
+    zig = np.where(np.arange(lo.size) % 2 == 0, 1.0, -1.0) * 0.15 * (hi - lo)
+    feeds["air_temperature"] = np.tile(mid + zig, (6, 1)).astype(np.float32)
+    flag = _run(session, feeds, ["quality_flag"])["quality_flag"]
+    assert np.all(flag & flags.NOVEL_STATE)
+    assert not np.any(flag & flags.OUTSIDE_TRAINING_BOUNDS)
