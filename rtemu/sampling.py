@@ -33,6 +33,7 @@ from typing import Sequence
 
 import numpy as np
 import xarray as xr
+from scipy import special
 from scipy.stats import qmc
 
 from rtemu import atmosphere as atm
@@ -235,7 +236,9 @@ def _scale(u: np.ndarray, name: str, log: bool = False) -> np.ndarray:
 
 
 def _sigmoid(x: np.ndarray) -> np.ndarray:
-    return 0.5 * (1.0 + np.tanh(0.5 * x))  # overflow-free logistic
+    # scipy's expit keeps relative precision far into the tails, where RH ~ exp(x); the
+    # tanh form loses it to cancellation and makes the column a step function of c there.
+    return special.expit(x)
 
 
 def _temperature(p, u, rng_noise):
