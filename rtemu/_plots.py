@@ -73,8 +73,13 @@ def error_histograms(collected, summary: dict, channels) -> bytes:
         s = summary["channels"][cid]
         noise = s["noise_k"]
         if d.size:
-            span = max(np.max(np.abs(d)), noise) * 1.05
-            ax.hist(d, bins=np.linspace(-span, span, 41), color="tab:blue", alpha=0.8)
+            # A robust range: a few wild errors would otherwise squash the core into one bin.
+            span = max(float(np.quantile(np.abs(d), 0.995)) * 1.1, 2.0 * noise)
+            outside = int(np.sum(np.abs(d) > span))
+            ax.hist(np.clip(d, -span, span), bins=np.linspace(-span, span, 41), color="tab:blue", alpha=0.8)
+            if outside:
+                ax.text(0.02, 0.97, f"{outside} beyond ±{span:.3g} K\n(in the end bins)", transform=ax.transAxes,
+                        va="top", ha="left", fontsize=7, color="0.25")
         ax.axvline(0.0, color="k", lw=0.8)
         for sign in (-1.0, 1.0):
             ax.axvline(sign * noise, color="tab:red", ls=":", lw=1.2)

@@ -880,28 +880,35 @@ def run_audit(
             raise
     else:
         dataset, data_description, opened = _draw_test_data(count or DEFAULT_COUNT, seed, operator)
+    from tqdm.auto import tqdm
+
+    from rtemu import _plots
+
     try:
         collected = _evaluate(operator, reference, dataset, progress)
-        checks = _derivative_checks(operator, dataset, _derivative_rows(collected))
-        examples = _jacobian_examples(operator, reference, dataset, _typical_profiles(collected))
+        # The steps after the profile loop take a while too (figures above all): show them.
+        with tqdm(total=4, desc="audit: checks, figures, files", unit="step", disable=not progress) as steps:
+            checks = _derivative_checks(operator, dataset, _derivative_rows(collected))
+            steps.update()
+            examples = _jacobian_examples(operator, reference, dataset, _typical_profiles(collected))
+            steps.update()
+            summary = _summary(collected, operator, model, data_description, threshold, checks)
+            audit_ds = _audit_dataset(collected, operator, summary)
+            figures = _plots.render_all(collected, summary, examples, tuple(operator.channels))
+            summary["figures"] = sorted(figures)
+            report = _report(summary, examples)
+            steps.update()
+
+            # Everything is computed; write, report.md last so that its presence means "complete".
+            to_netcdf_atomic(audit_ds, output_dir / "audit.nc")
+            write_text_atomic(output_dir / "summary.json", json.dumps(summary, indent=2, allow_nan=False) + "\n")
+            for name, png in figures.items():
+                write_bytes_atomic(output_dir / name, png)
+            write_text_atomic(output_dir / "report.md", report)
+            steps.update()
     finally:
         if opened is not None:
             opened.close()
-
-    summary = _summary(collected, operator, model, data_description, threshold, checks)
-    audit_ds = _audit_dataset(collected, operator, summary)
-    from rtemu import _plots
-
-    figures = _plots.render_all(collected, summary, examples, tuple(operator.channels))
-    summary["figures"] = sorted(figures)
-    report = _report(summary, examples)
-
-    # Everything is computed; write, report.md last so that its presence means "complete".
-    to_netcdf_atomic(audit_ds, output_dir / "audit.nc")
-    write_text_atomic(output_dir / "summary.json", json.dumps(summary, indent=2, allow_nan=False) + "\n")
-    for name, png in figures.items():
-        write_bytes_atomic(output_dir / name, png)
-    write_text_atomic(output_dir / "report.md", report)
     return summary
 
 
