@@ -264,12 +264,12 @@ def read_bundle(path) -> Bundle:
                         f"{graph.get('n_levels')} levels")
     if problems:
         raise BundleError(f"{path}: inconsistent rtemu bundle: " + "; ".join(problems))
-    if content_sha256(model) != props["rtemu.content_sha256"]:
-        raise BundleError(f"{path}: graph does not match its SHA-256 (rtemu.content_sha256): the file was "
-                          "corrupted or edited")
     if weights_sha256(model) != props["rtemu.weights_sha256"]:
         raise BundleError(f"{path}: weights do not match their SHA-256 (rtemu.weights_sha256): the file was "
                           "corrupted or tampered with")
+    if content_sha256(model) != props["rtemu.content_sha256"]:
+        raise BundleError(f"{path}: graph does not match its SHA-256 (rtemu.content_sha256): the file was "
+                          "corrupted or edited")
     grid.setflags(write=False)
     return Bundle(
         path=str(path), format_version=version, rtemu_version=props["rtemu.version"],
