@@ -565,3 +565,21 @@ def test_audit_refuses_the_bundles_training_file(tiny_bundle):
     with pytest.raises(ValueError, match="training file"):
         audit.run_audit(tiny_bundle / "tiny.onnx", out, data=tiny_bundle / "train.nc", progress=False)
     assert not out.exists()
+
+
+def test_taylor_test_keeps_marked_values_and_drops_switched_ones(instrument):
+    ds = _profiles(3, seed=5)
+    everything = {(p, c) for p in range(3) for c in range(3)}
+    marked = _CraftedOperator(instrument, offset=OFFSET, flagged=everything)  # flag only, same model
+    tl = audit.taylor_test(marked, ds)
+    assert tl["excluded_entries"] == [0, 0, 0, 0] and tl["passed"]
+
+    class Switching(_CraftedOperator):  # recomputed "by another model" when perturbed
+        def _simulate_eager(self, dataset, jacobian):
+            out = super()._simulate_eager(dataset, jacobian)
+            if not np.allclose(dataset["air_temperature"].values, ds["air_temperature"].values):
+                out["quality_flag"].values[0, :] |= flags.PHYSICS_FALLBACK
+            return out
+
+    tl = audit.taylor_test(Switching(instrument, offset=OFFSET), ds)
+    assert tl["excluded_entries"] == [3, 3, 3, 3]
