@@ -544,7 +544,7 @@ class _Collected:
         return self.quality_flag != 0
 
 
-def _geometry(block: xr.Dataset, prep) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _geometry(prep) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Column water [kg m-2], zenith angle [degree], emissivity [1]; NaN for invalid profiles."""
     tcwv = total_column_water_vapour(prep.pressure_hpa, prep.specific_humidity)
     zen = prep.sensor_zenith_angle.copy()
@@ -576,10 +576,11 @@ def _evaluate(emulator, reference, dataset: xr.Dataset, progress: bool) -> _Coll
             emu = _outputs(emulator.simulate(block, jacobian=True), _COMPARED)
             phys = _outputs(reference.simulate(block, jacobian=True), _COMPARED)
             prep = prepare_inputs(block, channels, errors="mask")
-            tcwv, zen, em = _geometry(block, prep)
+            tcwv, zen, em = _geometry(prep)
             q = prep.to_caller_order(prep.specific_humidity)[:, None, :]  # the Jacobians' level order
+            stop = start + block.sizes["profile"]
             piece = {
-                "profile": block["profile"].values if "profile" in block.coords else np.arange(start, start + block.sizes["profile"]),
+                "profile": block["profile"].values if "profile" in block.coords else np.arange(start, stop),
                 "bt_error": emu["brightness_temperature"] - phys["brightness_temperature"],
                 "bt_physical": phys["brightness_temperature"],
                 "jacobian_t_error": jacobian_relative_error(emu["jacobian_air_temperature"],
@@ -627,8 +628,12 @@ def _derivative_rows(collected: _Collected) -> np.ndarray:
     return rows[np.linspace(0, rows.size - 1, DERIVATIVE_TEST_PROFILES).round().astype(int)]
 
 
-def _jacobian_examples(emulator, reference, dataset, rows: dict) -> dict:
-    """Emulated and physical T and q Jacobians of the typical profiles, with their pressures."""
+def _jacobian_examples(emulator, reference, dataset, rows: dict, tcwv: np.ndarray) -> dict:
+    """Emulated and physical T and q Jacobians of the typical profiles, with their pressures.
+
+    ``rows`` maps labels to rows of ``dataset``; ``tcwv`` [kg m-2] is the column water of
+    every row.
+    """
     if not rows:
         return {}
     labels = list(rows)
@@ -639,11 +644,10 @@ def _jacobian_examples(emulator, reference, dataset, rows: dict) -> dict:
     prep = prepare_inputs(block, tuple(emulator.channels), errors="mask")
     pressure = prep.to_caller_order(prep.pressure_hpa)  # the Jacobians' level order
     q = prep.to_caller_order(prep.specific_humidity)[:, None, :]
-    tcwv = total_column_water_vapour(prep.pressure_hpa, prep.specific_humidity)
     return {
         label: {
             "row": rows[label],
-            "tcwv": float(tcwv[i]),
+            "tcwv": float(tcwv[rows[label]]),
             "pressure_hpa": pressure[i],
             "emulated_t": emu["jacobian_air_temperature"][i],
             "physical_t": phys["jacobian_air_temperature"][i],
@@ -900,7 +904,8 @@ def run_audit(
         with tqdm(total=4, desc="audit: checks, figures, files", unit="step", disable=not progress) as steps:
             checks = _derivative_checks(operator, dataset, _derivative_rows(collected))
             steps.update()
-            examples = _jacobian_examples(operator, reference, dataset, _typical_profiles(collected))
+            examples = _jacobian_examples(operator, reference, dataset, _typical_profiles(collected),
+                                          collected.tcwv)
             steps.update()
             summary = _summary(collected, operator, model, data_description, threshold, checks)
             audit_ds = _audit_dataset(collected, operator, summary)
