@@ -47,15 +47,23 @@ def rmse_over_noise(summary: dict) -> bytes:
                for c in ids]
     fig = Figure(figsize=(max(6.0, 0.5 * len(ids) + 2.0), 4.2), layout="constrained")
     ax = fig.subplots()
-    ax.bar(np.arange(len(ids)), np.nan_to_num(ratio), color=colours)
-    ax.axhline(summary["threshold"], color="k", ls="--", lw=1.2,
-               label=f"threshold {summary['threshold']:g} (pass at or below)")
-    ax.set_xticks(np.arange(len(ids)), ids, rotation=45, ha="right")
+    x = np.arange(len(ids))
+    heights = np.nan_to_num(ratio)
+    bars = ax.bar(x, heights, color=colours)
+    ax.bar_label(bars, labels=[_txt(r, ".2f") for r in ratio], fontsize=7, padding=1)
+    threshold = summary["threshold"]
+    ax.axhline(threshold, color="k", ls="--", lw=1.2)
+    finite = ratio[np.isfinite(ratio) & (ratio > 0)]
+    if finite.size and finite.max() > 20.0 * threshold:
+        from matplotlib.ticker import FuncFormatter
+
+        ax.set_yscale("log")  # one wild channel would flatten the rest against the threshold
+        ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
+    ax.set_xticks(x, ids, rotation=45, ha="right")
     ax.set_ylabel("emulator RMSE / instrument noise [1]")
     ax.set_xlabel("channel")
-    ax.set_title(f"{summary['instrument']}: emulator error relative to noise "
-                 f"(green pass, red fail; {summary['profiles']} test profiles)")
-    ax.legend(loc="upper left")
+    ax.set_title(f"{summary['instrument']}: emulator RMSE relative to noise, {summary['profiles']} test "
+                 f"profiles\n(dashed: threshold {threshold:g}; green pass at or below it, red fail, grey no data)")
     ax.grid(axis="y", alpha=0.3)
     return _png(fig)
 
