@@ -93,8 +93,8 @@ class GraphLayout:
 
     @property
     def n_bounded(self) -> int:
-        """Number of bounded input scalars per profile: T, q, Ts, theta, e [P]."""
-        return 2 * self.n_levels + 2 + self.n_channels
+        """Bounded scalars per profile: T, q, Ts, theta, h (L), Ts - T_0, e (C) [P]."""
+        return 3 * self.n_levels + 3 + self.n_channels
 
 
 class _Builder:
@@ -289,9 +289,14 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
 def _flags(b: _Builder, layout: GraphLayout, Y: str, Ts1: str) -> None:
     """Quality flag bitmask [N, C] int32 (bits from rtemu.flags).
 
-    Bounds: every input scalar (T and q per level, Ts, theta, e per channel) is compared
-    with the physical validity range and with the training range in one broadcast
-    comparison [N, 2, P]; NaN fails both. A 0/1 matrix maps the violation indicators
+    Bounds: every input scalar (T and q per level, Ts, theta, e per channel) and two
+    derived checks of the joint state are compared with the physical validity range and
+    with the training range in one broadcast comparison [N, 2, P]; NaN fails both. The
+    derived checks: a humidity index per level,
+    h = ln q - 17.67 (T - 273.15) / (T - 29.65) + ln p = ln(RH) + const (the saturation
+    vapour pressure of Bolton 1980, eq. 10, so h catches supersaturation and air far
+    drier than any training state at its temperature), and the skin-air contrast
+    Ts - T_0 (lowest level). A 0/1 matrix maps the violation indicators
     (and the per-profile novelty indicator) to per-channel hit counts in one MatMul:
     a per-profile input affects all channels, e_c only channel c.
     Novelty: the squared Mahalanobis distance ||z||^2 (z is whitened) and the squared
@@ -302,7 +307,12 @@ def _flags(b: _Builder, layout: GraphLayout, Y: str, Ts1: str) -> None:
     """
     T, q, _, E, theta = INPUT_NAMES
     ax1 = b.ints([1])
-    raw = b.op("Concat", T, q, Ts1, b.op("Unsqueeze", theta, ax1), E, axis=1)  # [N, P]
+    ln_q = b.op("Log", b.op("Max", q, "humidity_floor"))
+    inv = b.op("Div", b.const("bolton_b", 17.67 * 243.5), b.op("Sub", T, b.const("bolton_c", 29.65)))
+    # 17.67 (T - 273.15) / (T - 29.65) = 17.67 - 17.67 * 243.5 / (T - 29.65)
+    h = b.op("Add", b.op("Add", ln_q, inv), "log_pressure_minus_bolton_a")
+    contrast = b.op("Sub", Ts1, b.op("Slice", T, b.ints([0]), b.ints([1]), ax1))
+    raw = b.op("Concat", T, q, Ts1, b.op("Unsqueeze", theta, ax1), h, contrast, E, axis=1)  # [N, P]
     raw3 = b.op("Unsqueeze", raw, ax1)  # [N, 1, P]
     lower = b.op("Concat", "physical_lower", "training_lower", axis=0)  # [2, P]
     upper = b.op("Concat", "physical_upper", "training_upper", axis=0)
@@ -345,13 +355,13 @@ def primary_shapes(layout: GraphLayout) -> dict[str, tuple[int, ...]]:
         "linear_emissivity": (C,),
         "linear_zenith": (C,),
         "feature_center": (F,),
+        "humidity_floor": (),
+        "log_pressure_minus_bolton_a": (L,),
         "output_bias": (C,),
         "layer1_weight": (C, K + 1, h[0]),
         "layer1_emissivity": (C, 1, h[0]),
         "output_weight": (C, h[-1], 1),
     }
-    if layout.humidity.startswith("log"):
-        shapes["humidity_floor"] = ()
     for k in range(2, len(h) + 1):
         shapes[layer_weight_name(k)] = (C, h[k - 2], h[k - 1])
         shapes[layer_bias_name(k)] = (C, 1, h[k - 1])
@@ -390,7 +400,7 @@ def bounds_channel_map(n_levels: int, n_channels: int) -> np.ndarray:
     Columns: invalid (C), outside (C), novel (C).
     """
     C = n_channels
-    P = 2 * n_levels + 2 + C
+    P = 3 * n_levels + 3 + C
     per_var = np.zeros((P, C))
     per_var[: P - C, :] = 1.0
     per_var[P - C:, :] = np.eye(C)

@@ -42,13 +42,16 @@ from rtemu.training import (
 
 __all__ = ["train_to_onnx", "export_bundle", "FrozenTransform"]
 
-_PROFILE_VARIABLES = ("air_temperature", "specific_humidity", "surface_temperature", "sensor_zenith_angle")
+_PROFILE_VARIABLES = ("air_temperature", "specific_humidity", "surface_temperature", "sensor_zenith_angle",
+                      "humidity_index", "skin_minus_air_temperature")
 _UNITS = {
     "air_temperature": "K",
     "specific_humidity": "kg kg-1",
     "surface_temperature": "K",
     "surface_emissivity": "1",
     "sensor_zenith_angle": "degree",
+    "humidity_index": "1",
+    "skin_minus_air_temperature": "K",
     "brightness_temperature": "K",
     "jacobian_air_temperature": "K K-1",
     "jacobian_specific_humidity": "K (kg kg-1)-1",
@@ -72,7 +75,8 @@ _SHAPES = {
 #: Per-channel arrays: name -> channel axis in the stacked array.
 _LINEAR_COLUMNS = ("linear_weight", "linear_emissivity_weight", "linear_zenith_weight")
 _SCALARS = ("linear_emissivity", "linear_zenith", "output_bias")
-_SHARED = ("feature_center", "projection_weight", "projection_offset", "novelty_scale", "humidity_floor")
+_SHARED = ("feature_center", "projection_weight", "projection_offset", "novelty_scale", "humidity_floor",
+           "log_pressure_minus_bolton_a")
 
 
 class FrozenTransform:
@@ -157,12 +161,12 @@ def _unstack(arrays: dict, index: int, widths: list[int]) -> dict:
 
 def _physical_bounds(n_levels: int, n_channels: int) -> tuple[np.ndarray, np.ndarray]:
     lo, hi = [], []
-    for name, count in (("air_temperature", n_levels), ("specific_humidity", n_levels),
-                        ("surface_temperature", 1), ("sensor_zenith_angle", 1),
-                        ("surface_emissivity", n_channels)):
+    sizes = {"air_temperature": n_levels, "specific_humidity": n_levels, "humidity_index": n_levels,
+             "surface_emissivity": n_channels}
+    for name in (*_PROFILE_VARIABLES, "surface_emissivity"):
         a, b = PHYSICAL_BOUNDS[name]
-        lo += [a] * count
-        hi += [b] * count
+        lo += [a] * sizes.get(name, 1)
+        hi += [b] * sizes.get(name, 1)
     return np.array([lo], dtype=np.float32), np.array([hi], dtype=np.float32)
 
 
@@ -191,6 +195,7 @@ def _shared_from_emulator(emu: TrainedEmulator) -> tuple[dict, dict]:
         "projection_offset": offset.astype(np.float32),
         "novelty_scale": scale.astype(np.float32),
         "humidity_floor": np.float32(emu.config.humidity_floor),
+        "log_pressure_minus_bolton_a": (np.log(emu.pressure_hpa) - 17.67).astype(np.float32),
     }
     bounds = {name: (np.atleast_1d(emu.envelope.lower[name]).astype(np.float32),
                      np.atleast_1d(emu.envelope.upper[name]).astype(np.float32))
@@ -200,8 +205,6 @@ def _shared_from_emulator(emu: TrainedEmulator) -> tuple[dict, dict]:
 
 def _assemble(shared: dict, bounds: dict, parts: list[dict], layout: _graph.GraphLayout) -> dict:
     arrays = dict(shared)
-    if not layout.humidity.startswith("log"):
-        arrays.pop("humidity_floor", None)
     arrays.update(_stack(parts, layout.hidden))
     lower = np.concatenate([bounds[n][0] for n in _PROFILE_VARIABLES]
                            + [np.array([p["training_lower_emissivity"] for p in parts], dtype=np.float32)])
@@ -336,12 +339,12 @@ def build_bundle_model(emu: TrainedEmulator, *, base=None, dtype=np.float32):
         wanted = set(old_ids) | set(emu.channel_ids)
         ids = [c for c in emu.instrument.channel_ids if c in wanted]
         shared = {k: arrays[k] for k in _SHARED if k in arrays}
-        L = base.graph["n_levels"]
-        P0 = 2 * L + 2
         lo, hi = arrays["training_lower"][0], arrays["training_upper"][0]
-        offsets = {"air_temperature": (0, L), "specific_humidity": (L, 2 * L),
-                   "surface_temperature": (2 * L, 2 * L + 1), "sensor_zenith_angle": (2 * L + 1, P0)}
-        bounds = {n: (lo[a:b].copy(), hi[a:b].copy()) for n, (a, b) in offsets.items()}
+        bounds, start = {}, 0
+        for name in _PROFILE_VARIABLES:
+            size = len(np.atleast_1d(base.envelope[name]["lower"]))
+            bounds[name] = (lo[start:start + size].copy(), hi[start:start + size].copy())
+            start += size
         parts = []
         for cid in ids:
             if cid in new_parts:

@@ -293,7 +293,45 @@ PHYSICAL_BOUNDS = {
     "surface_temperature": _checks.TEMPERATURE_RANGE_K,
     "sensor_zenith_angle": (0.0, _checks.ZENITH_MAX_DEG),
     "surface_emissivity": (0.0, 1.0),
+    # derived checks of the joint state (see humidity_index); no physical limit of their own
+    "humidity_index": (-3.0e38, 3.0e38),
+    "skin_minus_air_temperature": (-3.0e38, 3.0e38),
 }
+
+
+def humidity_index(air_temperature, specific_humidity, pressure_hpa, floor: float = 1e-9) -> np.ndarray:
+    """h = ln q - 17.67 (T - 273.15) / (T - 29.65) + ln p - 17.67 = ln(RH) + const [1].
+
+    Uses the saturation vapour pressure of Bolton (1980), eq. 10,
+    e_s = 6.112 exp(17.67 T_c / (T_c + 243.5)) [hPa] with T_c = T - 273.15 [degree C],
+    and 17.67 T_c / (T_c + 243.5) = 17.67 - 17.67 * 243.5 / (T - 29.65); so
+    h - ln(epsilon 6.112) = ln(q p / (epsilon e_s)) ~ ln RH. The bundle bounds h per level: supersaturated or
+    unusually dry air for its temperature falls outside.
+
+    Parameters
+    ----------
+    air_temperature : array_like
+        T [K], (N, L).
+    specific_humidity : array_like
+        q [kg kg-1], (N, L).
+    pressure_hpa : array_like
+        p [hPa], (L,).
+    floor : float
+        q floor of the logarithm [kg kg-1].
+
+    Returns
+    -------
+    numpy.ndarray
+        h [1], (N, L).
+
+    References
+    ----------
+    Bolton, D. (1980). The computation of equivalent potential temperature. Mon. Wea. Rev.
+    108, 1046-1053, doi:10.1175/1520-0493(1980)108<1046:TCOEPT>2.0.CO;2.
+    """
+    T = np.asarray(air_temperature, dtype=float)
+    q = np.maximum(np.asarray(specific_humidity, dtype=float), floor)
+    return np.log(q) + 17.67 * 243.5 / (T - 29.65) + (np.log(np.asarray(pressure_hpa, dtype=float)) - 17.67)
 _STATE = ("air_temperature", "specific_humidity", "surface_temperature", "surface_emissivity",
           "sensor_zenith_angle")
 
@@ -691,6 +729,9 @@ def _envelope(data: TrainingData, columns: list[int], transform, x: np.ndarray,
         "specific_humidity": data.specific_humidity,
         "surface_temperature": data.surface_temperature,
         "sensor_zenith_angle": data.sensor_zenith_angle,
+        "humidity_index": humidity_index(data.air_temperature, data.specific_humidity, data.pressure_hpa,
+                                         recipe.settings["features"]["humidity_floor"]),
+        "skin_minus_air_temperature": data.surface_temperature - data.air_temperature[:, 0],
         "surface_emissivity": data.surface_emissivity[:, columns],
     }
     lower, upper = {}, {}

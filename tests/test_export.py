@@ -257,17 +257,43 @@ def test_flags_on_crafted_inputs(trained):
 
 
 def test_novelty_flag_off_subspace_within_bounds(trained):
-    """A level-to-level zigzag that stays inside every per-level range but leaves the PCA
-    subspace sets novel_state (and not outside_training_bounds)."""
+    """A level-to-level zigzag of +-4 K on training profiles, kept only where it stays
+    inside every per-level range, leaves the PCA subspace: novel_state, not bounds."""
+    from rtemu.training import humidity_index
+
+    data = trained["data"]
+    b = read_bundle(trained["path"])
+    env = {k: (np.asarray(v["lower"], float), np.asarray(v["upper"], float)) for k, v in b.envelope.items()}
+    zig = np.where(np.arange(data.pressure_hpa.size) % 2 == 0, 4.0, -4.0)
+    T = data.air_temperature + zig
+    h = humidity_index(T, data.specific_humidity, data.pressure_hpa)
+    contrast = data.surface_temperature - T[:, 0]
+    inside = ((T >= env["air_temperature"][0]) & (T <= env["air_temperature"][1])).all(axis=1)
+    inside &= ((h >= env["humidity_index"][0]) & (h <= env["humidity_index"][1])).all(axis=1)
+    inside &= (contrast >= env["skin_minus_air_temperature"][0]) & (contrast <= env["skin_minus_air_temperature"][1])
+    rows = np.flatnonzero(inside)[:20]
+    assert rows.size >= 5
+    feeds = _feeds(data, rows, _columns(trained))
+    feeds["air_temperature"] = T[rows].astype(np.float32)
+    flag = _run(make_session(trained["path"]), feeds, ["quality_flag"])["quality_flag"]
+    assert np.all(flag == flags.NOVEL_STATE)
+
+
+def test_flags_catch_supersaturation_and_skin_contrast(trained):
+    """Derived checks: q above saturation at some levels only (within the per-level q
+    range) and a skin temperature far from the air above it."""
+    from rtemu.atmosphere import saturation_specific_humidity
+
     data = trained["data"]
     session = make_session(trained["path"])
-    b = read_bundle(trained["path"])
-    lo = np.asarray(b.envelope["air_temperature"]["lower"])
-    hi = np.asarray(b.envelope["air_temperature"]["upper"])
-    mid = 0.5 * (lo + hi)
-    feeds = _feeds(data, np.arange(6), _columns(trained))
-    zig = np.where(np.arange(lo.size) % 2 == 0, 1.0, -1.0) * 0.15 * (hi - lo)
-    feeds["air_temperature"] = np.tile(mid + zig, (6, 1)).astype(np.float32)
-    flag = _run(session, feeds, ["quality_flag"])["quality_flag"]
-    assert np.all(flag & flags.NOVEL_STATE)
-    assert not np.any(flag & flags.OUTSIDE_TRAINING_BOUNDS)
+    rows = np.arange(40)
+    feeds = _feeds(data, rows, _columns(trained))
+    qsat = saturation_specific_humidity(data.air_temperature[rows], data.pressure_hpa[None, :])
+    wet = dict(feeds)
+    q = data.specific_humidity[rows].copy()
+    q[:, 10:14] = 1.5 * qsat[:, 10:14]  # 150 % relative humidity on four levels
+    wet["specific_humidity"] = q.astype(np.float32)
+    assert np.all(_run(session, wet, ["quality_flag"])["quality_flag"] & flags.OUTSIDE_TRAINING_BOUNDS)
+    hot = dict(feeds)
+    hot["surface_temperature"] = (data.air_temperature[rows, 0] + 25.0).astype(np.float32)
+    assert np.all(_run(session, hot, ["quality_flag"])["quality_flag"] & flags.OUTSIDE_TRAINING_BOUNDS)

@@ -1,0 +1,249 @@
+"""Accuracy (and speed) of an rtemu emulator against the physical model on an independent test set.
+
+Prints, per channel: bias, RMSE, 99.9th percentile and maximum of |BT error| [K]; Jacobian
+relative error ||J_emu - J_phys|| / ||J_phys|| per (profile, channel) for the temperature
+and humidity Jacobians (median and 95th percentile); flag rates on in-envelope test
+profiles and on profiles moved outside the envelope; training time; and (``--speed``)
+onnxruntime timings.
+
+Targets (from the issue): ``full`` RMSE <= 0.05 K every channel, 99.9th pct <= 0.3 K,
+median Jacobian error <= 5 %; ``demo`` RMSE <= 0.2 K every channel. Flags: <= 1 % of
+in-envelope test profiles flagged, >= 99 % of moved-outside profiles flagged.
+
+Usage::
+
+    python benchmarks/accuracy.py --recipe demo [--train 20000] [--test 4000] [--workdir DIR]
+    python benchmarks/accuracy.py --bundle model.onnx --test-data test.nc
+    python benchmarks/accuracy.py --recipe full --speed
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import resource
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+from rtemu import flags  # noqa: E402
+from rtemu.atmosphere import saturation_specific_humidity  # noqa: E402
+from rtemu.bundle import make_session, read_bundle  # noqa: E402
+from rtemu.export import train_to_onnx  # noqa: E402
+from rtemu.sampling import sample_to_netcdf  # noqa: E402
+
+
+def _children_cpu() -> float:
+    r = resource.getrusage(resource.RUSAGE_CHILDREN)
+    s = resource.getrusage(resource.RUSAGE_SELF)
+    return r.ru_utime + r.ru_stime + s.ru_utime + s.ru_stime
+
+
+def feeds_from(ds: xr.Dataset, channel_ids, rows=slice(None)) -> dict:
+    """Bundle inputs (float32, surface-first) from a sampler file."""
+    p = ds["air_pressure"].values
+    order = slice(None, None, -1) if p[0] < p[-1] else slice(None)
+    return {
+        "air_temperature": ds["air_temperature"].values[rows][:, order].astype(np.float32),
+        "specific_humidity": ds["specific_humidity"].values[rows][:, order].astype(np.float32),
+        "surface_temperature": ds["surface_temperature"].values[rows].astype(np.float32),
+        "surface_emissivity": ds["surface_emissivity"].sel(channel=list(channel_ids)).values[rows].astype(np.float32),
+        "sensor_zenith_angle": ds["sensor_zenith_angle"].values[rows].astype(np.float32),
+    }
+
+
+def run(session, feeds, batch=4096, names=None):
+    names = names or [o.name for o in session.get_outputs()]
+    n = len(feeds["surface_temperature"])
+    parts = {k: [] for k in names}
+    for start in range(0, n, batch):
+        out = session.run(names, {k: v[start:start + batch] for k, v in feeds.items()})
+        for k, v in zip(names, out):
+            parts[k].append(v)
+    return {k: np.concatenate(v) for k, v in parts.items()}
+
+
+def accuracy(bundle_path: Path, test: xr.Dataset) -> dict:
+    b = read_bundle(bundle_path)
+    ids = list(b.channel_ids)
+    feeds = feeds_from(test, ids)
+    out = run(make_session(bundle_path, threads=os.cpu_count()), feeds)
+    ref_bt = test["brightness_temperature"].sel(channel=ids).values
+    ok = (test["quality_flag"].sel(channel=ids).values == 0).all(axis=1)
+    err = out["brightness_temperature"].astype(float) - ref_bt
+    print(f"\nbrightness temperature error on {ok.sum()} test profiles [K]")
+    print(f"{'channel':>10s} {'bias':>8s} {'rmse':>8s} {'p99.9':>8s} {'max':>8s}   {'dT med':>7s} {'dT p95':>7s}"
+          f" {'dq med':>7s} {'dq p95':>7s}")
+    rows = {}
+    has_jac = "jacobian_air_temperature" in test
+    p = test["air_pressure"].values
+    order = slice(None, None, -1) if p[0] < p[-1] else slice(None)
+    for i, cid in enumerate(ids):
+        e = err[ok, i]
+        a = np.abs(e)
+        row = {"bias": e.mean(), "rmse": np.sqrt(np.mean(e**2)), "p999": np.quantile(a, 0.999), "max": a.max()}
+        if has_jac:
+            for short, name in (("T", "jacobian_air_temperature"), ("q", "jacobian_specific_humidity")):
+                phys = test[name].sel(channel=cid).values[ok][:, order]
+                emu = out[name][ok, i].astype(float)
+                norm = np.linalg.norm(phys, axis=1)
+                use = norm > 0
+                rel = np.linalg.norm(emu - phys, axis=1)[use] / norm[use]
+                row[f"j{short}_med"], row[f"j{short}_p95"] = np.median(rel), np.quantile(rel, 0.95)
+        rows[cid] = row
+        jac = (f"   {100 * row['jT_med']:6.2f}% {100 * row['jT_p95']:6.2f}% {100 * row['jq_med']:6.2f}% "
+               f"{100 * row['jq_p95']:6.2f}%") if has_jac else ""
+        print(f"{cid:>10s} {row['bias']:8.4f} {row['rmse']:8.4f} {row['p999']:8.4f} {row['max']:8.4f}{jac}")
+    worst = max(rows.values(), key=lambda r: r["rmse"])
+    print(f"worst-channel RMSE {worst['rmse']:.4f} K; largest p99.9 {max(r['p999'] for r in rows.values()):.4f} K")
+    if has_jac:
+        print(f"largest median Jacobian error: T {100 * max(r['jT_med'] for r in rows.values()):.2f} %, "
+              f"q {100 * max(r['jq_med'] for r in rows.values()):.2f} %")
+    return {"rows": rows, "ok": ok, "flags": out["quality_flag"], "feeds": feeds, "bundle": b}
+
+
+def flag_rates(bundle_path: Path, test: xr.Dataset, result: dict) -> None:
+    ok = result["ok"]
+    inside = (result["flags"][ok] != 0).any(axis=1)
+    print(f"\nflags: in-envelope test profiles flagged: {100 * inside.mean():.2f} % "
+          f"({inside.sum()} of {ok.sum()}; bits: "
+          + ", ".join(f"{name} {100 * ((result['flags'][ok] & bit) != 0).any(axis=1).mean():.2f} %"
+                      for bit, name in ((flags.OUTSIDE_TRAINING_BOUNDS, "bounds"), (flags.NOVEL_STATE, "novel")))
+          + ")")
+    session = make_session(bundle_path, outputs=["quality_flag"])
+    feeds = result["feeds"]
+    grid = np.asarray(result["bundle"].pressure_hpa)
+    moves = {}
+    warm = dict(feeds)
+    warm["air_temperature"] = feeds["air_temperature"] + 30.0
+    warm["surface_temperature"] = feeds["surface_temperature"] + 30.0
+    moves["30 K warmer throughout (air and surface)"] = warm
+    warm_air = dict(feeds)
+    warm_air["air_temperature"] = feeds["air_temperature"] + 30.0
+    moves["30 K warmer air, same surface"] = warm_air
+    wet = dict(feeds)
+    qsat = saturation_specific_humidity(feeds["air_temperature"].astype(float), grid[None, :])
+    wet["specific_humidity"] = (2.0 * qsat).astype(np.float32)
+    moves["humidity doubled above saturation (q = 2 q_sat)"] = wet
+    wet_low = dict(feeds)
+    q2 = feeds["specific_humidity"].astype(float).copy()
+    low = grid > 500.0
+    q2[:, low] = 2.0 * qsat[:, low]
+    wet_low["specific_humidity"] = q2.astype(np.float32)
+    moves["q = 2 q_sat below 500 hPa only"] = wet_low
+    for label, moved in moves.items():
+        f = run(session, {k: v[ok] for k, v in moved.items()}, names=["quality_flag"])["quality_flag"]
+        hit = (f != 0).any(axis=1)
+        print(f"  moved outside, {label}: flagged {100 * hit.mean():.2f} %")
+
+
+def speed(bundle_path: Path, test: xr.Dataset) -> None:
+    import onnxruntime as ort
+
+    from rtemu import physics
+
+    b = read_bundle(bundle_path)
+    ids = list(b.channel_ids)
+    big = feeds_from(test, ids)
+    n = len(big["surface_temperature"])
+    reps = int(np.ceil(10000 / n))
+    big = {k: np.concatenate([v] * reps)[:10000] for k, v in big.items()}
+    one = {k: v[:1] for k, v in big.items()}
+    print("\nspeed (onnxruntime CPU)")
+    s1 = make_session(bundle_path, threads=1)
+    for _ in range(50):
+        s1.run(None, one)
+    t = time.perf_counter()
+    for _ in range(2000):
+        s1.run(None, one)
+    print(f"  single profile, all outputs, 1 thread: {(time.perf_counter() - t) / 2000 * 1e6:.1f} us per call")
+    for threads in (1, os.cpu_count()):
+        full = make_session(bundle_path, threads=threads)
+        bt = make_session(bundle_path, outputs=["brightness_temperature"], threads=threads)
+        for label, sess in (("all outputs", full), ("BT only (pruned)", bt)):
+            sess.run(None, big)
+            t = time.perf_counter()
+            for _ in range(5):
+                sess.run(None, big)
+            dt = (time.perf_counter() - t) / 5
+            print(f"  batch 10000, {label}, {threads} thread(s): {dt * 1e3:.1f} ms")
+            if label.startswith("BT"):
+                g = b.graph
+                F = (3 if g["humidity"] == "log+linear" else 2) * g["n_levels"] + 2
+                K, C, h = g["n_components"], g["n_channels"], g["hidden"]
+                macs = F * (K + 1 + g["n_reconstruction_blocks"] * 0) + 4 * F * C + C * (K + 1 + C) * h[0]
+                macs += sum(C * a * c for a, c in zip(h[:-1], h[1:])) + C * h[-1]
+                a = np.random.default_rng(0).random((2048, 2048), dtype=np.float32)
+                a @ a
+                t = time.perf_counter()
+                for _ in range(3):
+                    a @ a
+                rate = 3 * 2 * 2048**3 / (time.perf_counter() - t)
+                print(f"    BT graph {2 * macs * 10000 / 1e9:.2f} GFLOP (matmul work) -> {2 * macs * 10000 / dt / 1e9:.1f} "
+                      f"GFLOP/s vs numpy float32 matmul {rate / 1e9:.1f} GFLOP/s ({100 * 2 * macs * 10000 / dt / rate:.0f} %)")
+    p = test["air_pressure"].values
+    order = slice(None, None, -1) if p[0] < p[-1] else slice(None)
+    t = time.perf_counter()
+    physics.transfer(b.instrument, p[order], big["air_temperature"].astype(float),
+                     big["specific_humidity"].astype(float), big["surface_temperature"].astype(float),
+                     big["surface_emissivity"].astype(float), big["sensor_zenith_angle"].astype(float),
+                     jacobian=True)
+    tp = time.perf_counter() - t
+    full = make_session(bundle_path, threads=os.cpu_count())
+    t = time.perf_counter()
+    full.run(None, big)
+    te = time.perf_counter() - t
+    print(f"  batch 10000 with Jacobians: physics {tp:.2f} s, emulator {te * 1e3:.1f} ms -> {tp / te:.0f}x faster")
+    del ort
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--recipe", default="demo")
+    ap.add_argument("--bundle", type=Path, help="evaluate this bundle instead of training one")
+    ap.add_argument("--train-data", type=Path)
+    ap.add_argument("--test-data", type=Path)
+    ap.add_argument("--train", type=int, default=20000, help="training profiles to draw (seed 11)")
+    ap.add_argument("--test", type=int, default=4000, help="test profiles to draw (seed 99, with Jacobians)")
+    ap.add_argument("--workers", type=int, default=None)
+    ap.add_argument("--workdir", type=Path, default=Path("benchmark-out"))
+    ap.add_argument("--speed", action="store_true")
+    args = ap.parse_args(argv)
+    args.workdir.mkdir(parents=True, exist_ok=True)
+    test_path = args.test_data or args.workdir / f"test-{args.test}.nc"
+    if not test_path.exists():
+        print(f"drawing {args.test} test profiles (seed 99, physics with Jacobians) -> {test_path}")
+        sample_to_netcdf("demo-sounder", test_path, count=args.test, seed=99, jacobian=True, progress=False)
+    bundle_path = args.bundle
+    if bundle_path is None:
+        train_path = args.train_data or args.workdir / f"train-{args.train}.nc"
+        if not train_path.exists():
+            print(f"drawing {args.train} training profiles (seed 11) -> {train_path}")
+            t = time.perf_counter()
+            sample_to_netcdf("demo-sounder", train_path, count=args.train, seed=11, progress=False,
+                             workers=args.workers)
+            print(f"  {time.perf_counter() - t:.0f} s")
+        bundle_path = args.workdir / f"{Path(str(args.recipe)).stem}.onnx"
+        print(f"training recipe {args.recipe} on {train_path} ...")
+        cpu0, t0 = _children_cpu(), time.perf_counter()
+        train_to_onnx(train_path, args.recipe, bundle_path, workers=args.workers, progress=False,
+                      log=lambda line: print("  " + line, flush=True))
+        wall, cpu = time.perf_counter() - t0, _children_cpu() - cpu0
+        print(f"training time: {wall:.0f} s wall, {cpu:.0f} s CPU (this process and its workers) on "
+              f"{os.cpu_count()} cores; load average now {os.getloadavg()[0]:.1f}")
+    with xr.open_dataset(test_path, engine="h5netcdf") as test:
+        test = test.load()
+    result = accuracy(bundle_path, test)
+    flag_rates(bundle_path, test, result)
+    if args.speed:
+        speed(bundle_path, test)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
