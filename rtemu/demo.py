@@ -60,7 +60,8 @@ def _invented_error_samples(truth: xr.Dataset, n: int, seed: int, cfg: dict) -> 
     """States = a reference column + draws of the invented background error model.
 
     Temperature and ln q errors have Gaussian vertical correlation in ln p with length
-    ``background_error_length_lnp``; the estimated covariance of these states is B.
+    ``background_error_length_lnp``; the ln q error fades from its full value below 300 hPa
+    to 5 % of it above 100 hPa. The estimated covariance of these states is B.
     """
     rng = np.random.default_rng(seed)
     p = truth["air_pressure"].values
@@ -69,7 +70,10 @@ def _invented_error_samples(truth: xr.Dataset, n: int, seed: int, cfg: dict) -> 
     root = np.linalg.cholesky(corr + 1e-9 * np.eye(p.size))
     ref = truth.isel(profile=0)
     dt = cfg["background_error_t_k"] * rng.standard_normal((n, p.size)) @ root.T
-    dlnq = cfg["background_error_lnq"] * rng.standard_normal((n, p.size)) @ root.T
+    # Humidity errors fade above the tropopause region, where backgrounds are dry and
+    # radiances barely sense humidity (common practice in 1D-Var set-ups).
+    lnq_sd = cfg["background_error_lnq"] * np.clip((p - 100.0) / 200.0, 0.05, 1.0)
+    dlnq = lnq_sd * (rng.standard_normal((n, p.size)) @ root.T)
     dts = cfg["background_error_ts_k"] * rng.standard_normal(n)
     states = xr.Dataset(
         {
@@ -116,7 +120,7 @@ def run_demo(output_dir="rtemu-demo", *, progress: bool = True, **overrides) -> 
     from rtemu.audit import run_audit
     from rtemu.runtime import EmulatedOperator, PhysicalOperator
     from rtemu.sampling import draw_states, sample_to_netcdf
-    from rtemu.training import train_to_onnx
+    from rtemu.export import train_to_onnx
 
     unknown = sorted(set(overrides) - set(DEFAULTS))
     if unknown:
