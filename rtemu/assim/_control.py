@@ -234,24 +234,27 @@ def read_columns(
 
 def columns_to_dataset(cols: Columns) -> xr.Dataset:
     """An operator input dataset (dims profile, level[, channel]) in canonical units."""
-    def attrs(name):
-        return {"units": CANONICAL_UNITS[name]}
+    # Built from xarray Variables (no per-variable DataArray conversion): 1D-Var calls
+    # this at every iteration.
+    def var(dims, values, name):
+        return xr.Variable(dims, values, {"units": CANONICAL_UNITS[name]})
 
+    pl = ("profile", "level")
     data = {
-        "air_pressure": (("profile", "level"), cols.pressure, attrs("air_pressure")),
-        "air_temperature": (("profile", "level"), cols.temperature, attrs("air_temperature")),
-        "specific_humidity": (("profile", "level"), cols.humidity, attrs("specific_humidity")),
-        "surface_temperature": (("profile",), cols.surface_temperature, attrs("surface_temperature")),
-        "sensor_zenith_angle": (("profile",), cols.zenith, attrs("sensor_zenith_angle")),
+        "air_pressure": var(pl, cols.pressure, "air_pressure"),
+        "air_temperature": var(pl, cols.temperature, "air_temperature"),
+        "specific_humidity": var(pl, cols.humidity, "specific_humidity"),
+        "surface_temperature": var(("profile",), cols.surface_temperature, "surface_temperature"),
+        "sensor_zenith_angle": var(("profile",), cols.zenith, "sensor_zenith_angle"),
     }
     coords = {}
     if cols.emissivity_channels is None:
-        data["surface_emissivity"] = (("profile",), cols.emissivity, attrs("surface_emissivity"))
+        data["surface_emissivity"] = var(("profile",), cols.emissivity, "surface_emissivity")
     else:
-        data["surface_emissivity"] = (("profile", "channel"), cols.emissivity, attrs("surface_emissivity"))
-        coords["channel"] = ("channel", np.array(cols.emissivity_channels, dtype=object))
+        data["surface_emissivity"] = var(("profile", "channel"), cols.emissivity, "surface_emissivity")
+        coords["channel"] = xr.Variable("channel", np.array(cols.emissivity_channels, dtype=object))
     if cols.level_coord is not None:
-        coords["level"] = cols.level_coord.values
+        coords["level"] = xr.Variable("level", cols.level_coord.values)
     return xr.Dataset(data, coords=coords)
 
 

@@ -24,13 +24,31 @@ def operator_channels(operator) -> tuple[str, ...]:
     return tuple(str(c) for c in operator.channels)
 
 
-def _take(out: xr.Dataset, name: str, channels, n: int, trailing: tuple[str, ...]) -> np.ndarray:
+def _channel_order(out: xr.Dataset, channels) -> np.ndarray | None:
+    """Positions of the operator channels in the output's channel coordinate (None: same order)."""
+    if "channel" not in out.coords:
+        return None
+    have = [str(c) for c in out["channel"].values]
+    if have == list(channels):
+        return None
+    absent = [c for c in channels if c not in have]
+    if absent:
+        raise ValueError(f"operator output: channel(s) {absent} missing (rule: the operator protocol)")
+    return np.array([have.index(c) for c in channels])
+
+
+def _take(out: xr.Dataset, name: str, channels, n: int, trailing: tuple[str, ...], order) -> np.ndarray:
+    # numpy on the output variables: this runs at every iteration, and xarray's
+    # transpose/sel cost more than the emulator itself for a few hundred columns.
     if name not in out:
         raise ValueError(f"operator output: variable {name!r} missing (rule: the operator protocol)")
-    da = out[name]
-    if "channel" in da.coords and [str(c) for c in da["channel"].values] != list(channels):
-        da = da.sel(channel=list(channels))
-    values = np.asarray(da.transpose("profile", "channel", *trailing).values)
+    var = out.variables[name]
+    want = ("profile", "channel", *trailing)
+    if sorted(var.dims) != sorted(want):
+        raise ValueError(f"operator output: {name} has dims {var.dims}, expected {want}")
+    values = np.transpose(np.asarray(var.values), [var.dims.index(d) for d in want])
+    if order is not None:
+        values = values[:, order]
     if values.shape[:2] != (n, len(channels)):
         raise ValueError(
             f"operator output: {name} has shape {values.shape}, expected ({n}, {len(channels)}, ...)"
@@ -43,14 +61,15 @@ def run_operator(operator, cols: Columns, channels, jacobian: bool) -> dict:
     the raw Jacobians (T, q per level; Ts; emissivity)."""
     out = operator.simulate(columns_to_dataset(cols), jacobian=jacobian)
     n = cols.n
+    order = _channel_order(out, channels)
     result = {
-        "bt": _take(out, "brightness_temperature", channels, n, ()).astype(float),
-        "flag": _take(out, "quality_flag", channels, n, ()).astype(np.int64),
+        "bt": np.asarray(_take(out, "brightness_temperature", channels, n, (), order), dtype=float),
+        "flag": np.asarray(_take(out, "quality_flag", channels, n, (), order), dtype=np.int64),
     }
     if jacobian:
         for name in _JACOBIANS:
             trailing = ("level",) if name in _JACOBIANS[:2] else ()
-            result[name] = _take(out, name, channels, n, trailing).astype(float)
+            result[name] = np.asarray(_take(out, name, channels, n, trailing, order), dtype=float)
     return result
 
 

@@ -133,64 +133,71 @@ def _t(a: np.ndarray) -> np.ndarray:
 
 
 def _mv(m: np.ndarray, v: np.ndarray) -> np.ndarray:
-    """Batched matrix-vector product; ``m`` [N, n, k] or shared [1, n, k], ``v`` [N, k]."""
+    """Batched matrix-vector product; ``m`` [N, n, k], ``v`` [N, k]."""
     return (m @ v[..., None])[..., 0]
 
 
 class _Covariance:
-    """B and B^-1, shared by all columns ([1, n, n]) or per column ([N, n, n])."""
+    """B and B^-1, shared by all columns ([1, n, n]) or per column ([N, n, n]).
+
+    Products take the indices ``idx`` of the columns they are for; with a shared B a
+    product over a batch of columns is one matrix-matrix product.
+    """
 
     @one_blas_thread
     def __init__(self, b: np.ndarray):
-        self.b = b[None] if b.ndim == 2 else b
+        b = b[None] if b.ndim == 2 else b
+        self.b = 0.5 * (b + _t(b))
         inv = np.linalg.inv(self.b)
         self.inv = 0.5 * (inv + _t(inv))
+        self.shared = self.b.shape[0] == 1
 
-    def pick(self, idx) -> "_Covariance":
-        if self.b.shape[0] == 1:
-            return self
-        out = object.__new__(_Covariance)
-        out.b, out.inv = self.b[idx], self.inv[idx]
-        return out
+    @one_blas_thread
+    def times(self, v, idx):
+        """B v for vectors ``v`` [k, n] of the columns ``idx``."""
+        return v @ self.b[0] if self.shared else _mv(self.b[idx], v)
 
+    @one_blas_thread
+    def inv_times(self, v, idx):
+        """B^-1 v for vectors ``v`` [k, n] of the columns ``idx``."""
+        return v @ self.inv[0] if self.shared else _mv(self.inv[idx], v)
 
-def _scaled_jacobian(h, weight):
-    """H~ = W^1/2 H: rows of rejected observations are zero [N, C, n]."""
-    return h * np.sqrt(weight)[..., None]
+    @one_blas_thread
+    def rows_times(self, m, idx):
+        """M B for matrices ``m`` [k, C, n] of the columns ``idx`` (= (B M^T)^T)."""
+        if self.shared:
+            return (m.reshape(-1, m.shape[-1]) @ self.b[0]).reshape(m.shape)
+        return m @ self.b[idx]
+
+    def rows(self, order, idx):
+        """Rows B[order[i], :] of the columns ``idx`` [k, r, n]."""
+        if self.shared:
+            return self.b[0][order]
+        return np.take_along_axis(self.b[idx], order[:, :, None], axis=1)
+
+    def diagonal(self, n_columns):
+        return np.broadcast_to(np.einsum("pii->pi", self.b), (n_columns, self.b.shape[-1]))
 
 
 @one_blas_thread
-def _apply_inverse_hessian(v, cov: _Covariance, h_tilde, scale):
-    """[scale B^-1 + H~^T H~]^-1 v by the Sherman-Morrison-Woodbury identity.
+def _linearise(cov: _Covariance, idx, h_tilde):
+    """H~ B [k, C, n] and H~ B H~^T [k, C, C] of the columns ``idx``.
 
-    With B_s = B / scale: B_s v - B_s H~^T (H~ B_s H~^T + I)^-1 H~ B_s v; only C x C
-    systems (C channels) are solved, never n x n ones (the identity behind Rodgers 2000
-    eqs. 2.44-2.45, from memory).
+    These change only when a column accepts a step; every solve of that state reuses them.
     """
-    bht = (cov.b @ _t(h_tilde)) / scale[:, None, None]  # B_s H~^T [N, n, C]
-    inner = h_tilde @ bht + np.eye(h_tilde.shape[1])
-    bv = _mv(cov.b, v) / scale[:, None]
-    return bv - _mv(bht, np.linalg.solve(inner, _mv(h_tilde, bv)[..., None])[..., 0])
+    hb = cov.rows_times(h_tilde, idx)
+    return hb, hb @ _t(h_tilde)
 
 
-@one_blas_thread
-def _background_variance_in_bt(h, cov: _Covariance):
-    """diag(H B H^T) [K2] per column and channel."""
-    return np.einsum("pcn,pcn->pc", h, _t(cov.b @ _t(h)))
-
-
-def _cost_terms(x, xb, cov: _Covariance, hx, y, weight):
-    dxb = x - xb
-    jb = 0.5 * np.einsum("pn,pn->p", dxb, _mv(cov.inv, dxb))
+def _gradient(binv_dx, h, hx, y, weight):
+    """g = B^-1 (x - xb) - H^T R^-1 (y - H(x)) [control units^-1], B^-1 (x - xb) given."""
     d = np.where(weight > 0, y - hx, 0.0)
-    jo = 0.5 * np.einsum("pc,pc->p", weight, d * d)
-    return jb, jo
+    return binv_dx - np.einsum("pcn,pc->pn", h, weight * d)
 
 
-def _gradient(x, xb, cov: _Covariance, h, hx, y, weight):
-    """g = B^-1 (x - xb) - H^T R^-1 (y - H(x)) [control units^-1]."""
+def _observation_cost(hx, y, weight):
     d = np.where(weight > 0, y - hx, 0.0)
-    return _mv(cov.inv, x - xb) - np.einsum("pcn,pc->pn", h, weight * d)
+    return 0.5 * np.einsum("pc,pc->p", weight, d * d)
 
 
 def _blocked(x, grad, cols, layout):
@@ -206,32 +213,63 @@ def _blocked(x, grad, cols, layout):
     return ((x >= hi - tol) & (grad < 0)) | ((x <= lo + tol) & (grad > 0))
 
 
+def _blocked_rows(cov: _Covariance, idx, blocked):
+    """The blocked rows of B per column, padded to the largest count k.
+
+    Returns the columns with blocked elements (positions in ``blocked``), the element
+    order (blocked first) [r, k], the mask of real (not padding) entries [r, k], B_b:
+    [r, k, n] and B_bb [r, k, k] (identity on the padding).
+    """
+    rows = np.flatnonzero(blocked.any(axis=1))
+    blk = blocked[rows]
+    k = int(blk.sum(axis=1).max()) if rows.size else 0
+    order = np.argsort(~blk, axis=1, kind="stable")[:, :k]
+    mask = np.take_along_axis(blk, order, axis=1)
+    b_rows = cov.rows(order, idx[rows]) * mask[:, :, None]
+    b_bb = np.take_along_axis(b_rows, order[:, None, :], axis=2) * mask[:, None, :]
+    b_bb = b_bb + np.eye(k) * ~mask[:, None, :]
+    return rows, order, mask, b_rows, b_bb
+
+
 @one_blas_thread
-def _newton_solve(grad, cov: _Covariance, h_tilde, scale, blocked):
+def _newton_solve(grad, cov: _Covariance, idx, hb, gmat, scale, blocked):
     """[scale B^-1 + H~^T H~]^-1 g over the free elements; blocked elements get 0.
 
-    Columns without blocked elements use the Woodbury form (C x C solves); the others
-    solve the n x n system with the blocked rows and columns replaced by the identity.
+    Sherman-Morrison-Woodbury identity (behind Rodgers 2000 eqs. 2.44-2.45, from memory):
+    [s B^-1 + H~^T H~]^-1 g = (B g - B H~^T w) / s with (H~ B H~^T + s I) w = H~ B g, so
+    only C x C systems are solved (C channels). ``hb`` = H~ B [k, C, n] and ``gmat`` =
+    H~ B H~^T [k, C, C] of the columns ``idx``.
+
+    Holding the blocked elements b fixed leaves the free ones f with the prior precision
+    (B^-1)_ff = (B_ff - B_fb B_bb^-1 B_bf)^-1 (block inversion, Schur complement): the
+    same step with B' = B - B_:b B_bb^-1 B_b: (zero on the blocked rows and columns) in
+    place of B. Only the k blocked rows of B enter, as corrections of size n k per
+    column; the n x n system is never formed.
     """
-    out = np.empty_like(grad)
-    free = ~blocked.any(axis=1)
-    if free.any():
-        f = np.flatnonzero(free)
-        out[f] = _apply_inverse_hessian(grad[f], cov.pick(f), h_tilde[f], scale[f])
-    if not free.all():
-        c = np.flatnonzero(~free)
-        fixed = blocked[c]
-        keep = ~fixed
-        hessian = scale[c][:, None, None] * cov.pick(c).inv + _t(h_tilde[c]) @ h_tilde[c]
-        hessian = hessian * (keep[:, :, None] & keep[:, None, :]) + np.eye(grad.shape[1]) * fixed[:, :, None]
-        rhs = np.where(fixed, 0.0, grad[c])
-        out[c] = np.linalg.solve(hessian, rhs[..., None])[..., 0]
-    return out
+    bg = cov.times(grad, idx)  # B g
+    hbg = _mv(hb, grad)  # H~ B g
+    inner = gmat + scale[:, None, None] * np.eye(gmat.shape[-1])
+    rows, order, mask, b_rows, b_bb = _blocked_rows(cov, idx, blocked)
+    if rows.size:
+        hb_b = np.take_along_axis(hb[rows], order[:, None, :], axis=2) * mask[:, None, :]  # H~ B_:b
+        bg_b = np.take_along_axis(bg[rows], order, axis=1) * mask  # B_b: g
+        z = np.linalg.solve(b_bb, np.concatenate([_t(hb_b), bg_b[:, :, None]], axis=2))
+        z_h, z_g = z[:, :, :-1], z[:, :, -1]  # B_bb^-1 B_b: H~^T, B_bb^-1 B_b: g
+        inner[rows] -= hb_b @ z_h  # H~ B' H~^T
+        hbg[rows] -= (_t(z_h) @ bg_b[:, :, None])[..., 0]  # H~ B' g
+    w = np.linalg.solve(inner, hbg[..., None])  # [k, C, 1]
+    step = bg - (_t(w) @ hb)[:, 0]
+    if rows.size:
+        # B' g - B' H~^T w = B g - B H~^T w - B_:b (z_g - z_h w)
+        step[rows] -= ((z_g - (z_h @ w[rows])[..., 0])[:, None, :] @ b_rows)[:, 0]
+    step /= scale[:, None]
+    step[blocked] = 0.0
+    return step
 
 
-def _gauss_newton_d2(grad, cov: _Covariance, h_tilde, blocked):
+def _gauss_newton_d2(grad, cov: _Covariance, idx, hb, gmat, blocked):
     """d^2 = g^T (B^-1 + H^T R^-1 H)^-1 g of the undamped step over the free elements [1]."""
-    step = _newton_solve(grad, cov, h_tilde, np.ones(len(grad)), blocked)
+    step = _newton_solve(grad, cov, idx, hb, gmat, np.ones(len(grad)), blocked)
     return np.einsum("pn,pn->p", grad, step)
 
 
@@ -316,6 +354,7 @@ def var1d(
     cov = _Covariance(check_b_matrix(b_matrix, layout, n_prof))
     y = read_observations(observations, channels, n_prof, background.coords.get("profile"))
     r = observation_error_variance(operator, observation_error, emulator_error)
+    everything = np.arange(n_prof)
 
     # First guess and quality control.
     raw = run_operator(operator, cols_b, channels, jacobian=True)
@@ -324,19 +363,26 @@ def var1d(
     h = control_jacobian(raw, cols_b, layout)
     finite_h = np.isfinite(h).all(axis=-1)
     h = np.where(finite_h[..., None], h, 0.0)
-    departure_std = np.sqrt(_background_variance_in_bt(h, cov) + r)
+    hb_all = cov.rows_times(h, everything)  # H B
+    departure_std = np.sqrt(np.einsum("pcn,pcn->pc", h, hb_all) + r)  # sqrt(H B H^T + R)_ii
     flag = np.where(finite_h, raw["flag"], raw["flag"] | 1)
     reason = _qc.screen(y, h_xb, flag, departure_std, qc_threshold)
     used = reason == _qc.USED
     weight = np.where(used, 1.0 / r, 0.0)
+    sqrt_w = np.sqrt(weight)[..., None]
     h = np.where(used[..., None], h, 0.0)
     n_used = used.sum(axis=1)
 
+    # Per-column state at the current iterate; the linearisation (H~ = R^-1/2 H, H~ B,
+    # H~ B H~^T), gradient and active set change only when a column accepts a step.
     x = xb.copy()
     cols = cols_b
     hx = np.where(used, h_xb, 0.0)
-    jb, jo = _cost_terms(x, xb, cov, hx, y, weight)
-    cost_now = jb + jo
+    h_tilde = h * sqrt_w
+    hb = hb_all * sqrt_w
+    gmat = hb @ _t(h_tilde)
+    binv_dx = np.zeros_like(x)  # B^-1 (x - xb)
+    cost_now = _observation_cost(hx, y, weight)
     cost = np.full((n_prof, max_iter + 1), np.nan)
     trial_cost = np.full((n_prof, max_iter + 1), np.nan)
     cost[:, 0] = trial_cost[:, 0] = cost_now
@@ -344,15 +390,20 @@ def var1d(
     status = np.full(n_prof, MAX_ITERATIONS, dtype=np.int8)
     n_iter = np.zeros(n_prof, dtype=np.int64)
     n_rejected = np.zeros(n_prof, dtype=np.int64)
+    grad = np.zeros_like(x)
+    blocked = np.zeros(x.shape, dtype=bool)
+
+    def new_iterate(idx):
+        """Gradient and active set at the accepted iterates of ``idx``; True if converged by step size."""
+        grad[idx] = _gradient(binv_dx[idx], h[idx], hx[idx], y[idx], weight[idx])
+        blocked[idx] = _blocked(x[idx], grad[idx], cols.subset(idx), layout)
+        return _gauss_newton_d2(grad[idx], cov, idx, hb[idx], gmat[idx], blocked[idx])
 
     status[n_used == 0] = NO_OBSERVATIONS
     active = n_used > 0
     idx = np.flatnonzero(active)
     if idx.size:
-        grad = _gradient(x[idx], xb[idx], cov.pick(idx), h[idx], hx[idx], y[idx], weight[idx])
-        blocked = _blocked(x[idx], grad, cols.subset(idx), layout)
-        d2 = _gauss_newton_d2(grad, cov.pick(idx), _scaled_jacobian(h[idx], weight[idx]), blocked)
-        done = d2 < step_tol * n_ctl
+        done = new_iterate(idx) < step_tol * n_ctl
         status[idx[done]] = CONVERGED
         active[idx[done]] = False
 
@@ -360,11 +411,7 @@ def var1d(
         idx = np.flatnonzero(active)
         if idx.size == 0:
             break
-        grad = _gradient(x[idx], xb[idx], cov.pick(idx), h[idx], hx[idx], y[idx], weight[idx])
-        blocked = _blocked(x[idx], grad, cols.subset(idx), layout)
-        dx = -_newton_solve(
-            grad, cov.pick(idx), _scaled_jacobian(h[idx], weight[idx]), 1.0 + gamma[idx], blocked
-        )
+        dx = -_newton_solve(grad[idx], cov, idx, hb[idx], gmat[idx], 1.0 + gamma[idx], blocked[idx])
         trial_cols, trial_x = from_control(x[idx] + dx, cols.subset(idx), layout)
         raw = run_operator(operator, trial_cols, channels, jacobian=True)
         raw["flag"] = raw["flag"] & ~tolerated_bits
@@ -377,7 +424,10 @@ def var1d(
         )
         trial_hx = np.where(u, raw["bt"], 0.0)
         trial_h = np.where(u[..., None], trial_h, 0.0)
-        tjb, tjo = _cost_terms(trial_x, xb[idx], cov.pick(idx), trial_hx, y[idx], weight[idx])
+        trial_dxb = trial_x - xb[idx]
+        trial_binv_dx = cov.inv_times(trial_dxb, idx)
+        tjb = 0.5 * np.einsum("pn,pn->p", trial_dxb, trial_binv_dx)
+        tjo = _observation_cost(trial_hx, y[idx], weight[idx])
         tj = np.where(valid, tjb + tjo, np.nan)
         trial_cost[idx, it] = tj
         n_iter[idx] = it
@@ -392,8 +442,10 @@ def var1d(
         acc = idx[accept]
         decrease = cost_now[acc] - tj[accept]
         x[acc] = trial_x[accept]
+        binv_dx[acc] = trial_binv_dx[accept]
         hx[acc] = trial_hx[accept]
         h[acc] = trial_h[accept]
+        h_tilde[acc] = trial_h[accept] * sqrt_w[acc]
         cost_now[acc] = tj[accept]
         cols = _replace_columns(cols, acc, trial_cols.subset(np.flatnonzero(accept)))
         gamma[acc] /= lm_factor if damped else 1.0
@@ -404,9 +456,8 @@ def var1d(
         cost[idx, it] = cost_now[idx]
 
         if acc.size:
-            grad = _gradient(x[acc], xb[acc], cov.pick(acc), h[acc], hx[acc], y[acc], weight[acc])
-            blocked = _blocked(x[acc], grad, cols.subset(acc), layout)
-            d2 = _gauss_newton_d2(grad, cov.pick(acc), _scaled_jacobian(h[acc], weight[acc]), blocked)
+            hb[acc], gmat[acc] = _linearise(cov, acc, h_tilde[acc])
+            d2 = new_iterate(acc)
             small_decrease = (decrease >= 0) & (decrease < cost_tol * np.maximum(n_used[acc], 1))
             done = (d2 < step_tol * n_ctl) | (small_decrease & (d2 < n_ctl))
             status[acc[done]] = CONVERGED
@@ -415,8 +466,9 @@ def var1d(
     analysis = write_columns(background, cols, ("profile",), control_emissivity)
     diagnostics = _diagnostics(
         background=background, channels=channels, layout=layout, cov=cov,
-        h=h, weight=weight, y=y, h_xb=h_xb, hx=hx, used=used, reason=reason,
-        departure_std=departure_std, r=r, x=x, xb=xb, cost=cost, trial_cost=trial_cost,
+        h_tilde=h_tilde, hb=hb, gmat=gmat, y=y, h_xb=h_xb, hx=hx, used=used, reason=reason,
+        departure_std=departure_std, r=r, cost_background=0.5 * np.einsum("pn,pn->p", x - xb, binv_dx),
+        cost_observation=_observation_cost(hx, y, weight), cost=cost, trial_cost=trial_cost,
         status=status, n_iter=n_iter, n_rejected=n_rejected, gamma=gamma,
         diagnostic_matrices=diagnostic_matrices, settings=dict(
             max_iter=max_iter, lm_damping=gamma0, lm_factor=lm_factor,
@@ -447,28 +499,39 @@ def _replace_columns(cols, index, new):
 
 
 @one_blas_thread
-def _diagnostics(*, background, channels, layout, cov, h, weight, y, h_xb, hx, used,
-                 reason, departure_std, r, x, xb, cost, trial_cost, status, n_iter, n_rejected,
-                 gamma, diagnostic_matrices, settings) -> xr.Dataset:
-    # m-form (Rodgers 2000 eq. 2.44 gain, from memory): G~ = B H~^T (H~ B H~^T + I)^-1,
-    # A = G~ H~, S = B - G~ H~ B = (I - A) B; no n x n inverse is needed.
-    h_tilde = _scaled_jacobian(h, weight)
-    b_full = np.broadcast_to(cov.b, (len(h),) + cov.b.shape[1:])
-    bht = cov.b @ _t(h_tilde)
-    inner = h_tilde @ bht + np.eye(h_tilde.shape[1])
-    gain = _t(np.linalg.solve(inner, _t(bht)))  # inner is symmetric
-    diag_a = np.einsum("pnc,pcn->pn", gain, h_tilde)
-    if diagnostic_matrices:
-        kernel = gain @ h_tilde
-        s_hat = cov.b - gain @ _t(bht)  # (I - A) B with H~ B = (B H~^T)^T
-        s_hat = 0.5 * (s_hat + _t(s_hat))
+def _analysis_matrices(cov: _Covariance, h_tilde, hb, gmat, matrices: bool):
+    """diag(A), diag(S) and, with ``matrices``, A and S at the analysis, in one batched pass.
+
+    m-form (Rodgers 2000 eq. 2.44 gain, from memory): G~ = B H~^T (H~ B H~^T + I)^-1,
+    A = G~ H~, S = B - G~ H~ B = (I - A) B; no n x n inverse is needed. ``hb`` = H~ B and
+    ``gmat`` = H~ B H~^T at the analysis, as kept by the iteration.
+    """
+    # With L L^T = H~ B H~^T + I: G~^T = L^-T L^-1 H~ B and G~ H~ B = M^T M, M = L^-1 H~ B
+    # (C x C factors only; S = B - M^T M is symmetric up to the BLAS summation order,
+    # exactly so with OpenBLAS).
+    l_inv = np.linalg.inv(np.linalg.cholesky(gmat + np.eye(gmat.shape[-1])))
+    m = l_inv @ hb
+    gain_t = _t(l_inv) @ m
+    diag_a = np.einsum("pcn,pcn->pn", gain_t, h_tilde)
+    kernel = s_hat = None
+    if matrices:
+        kernel = _t(gain_t) @ h_tilde
+        s_hat = _t(m) @ m
+        np.subtract(cov.b, s_hat, out=s_hat)
         s_diag = np.einsum("pii->pi", s_hat)
     else:
-        s_diag = np.einsum("pii->pi", b_full) - np.einsum("pnc,pcn->pn", gain, _t(bht))
+        s_diag = cov.diagonal(len(hb)) - np.einsum("pcn,pcn->pn", m, m)
+    return diag_a, s_diag, kernel, s_hat
+
+
+def _diagnostics(*, background, channels, layout, cov, h_tilde, hb, gmat, y, h_xb, hx, used,
+                 reason, departure_std, r, cost_background, cost_observation, cost, trial_cost,
+                 status, n_iter, n_rejected, gamma, diagnostic_matrices, settings) -> xr.Dataset:
+    diag_a, s_diag, kernel, s_hat = _analysis_matrices(cov, h_tilde, hb, gmat, diagnostic_matrices)
     groups = np.array(layout.groups)
     group_names = list(dict.fromkeys(layout.groups))
     dfs_by = np.stack([diag_a[:, groups == g].sum(axis=1) for g in group_names], axis=1)
-    jb, jo = _cost_terms(x, xb, cov, hx, y, weight)
+    jb, jo = cost_background, cost_observation
     dep_an = np.where(np.isnan(y), np.nan, y - np.where(used, hx, np.nan))
 
     coords = {
@@ -514,7 +577,7 @@ def _diagnostics(*, background, channels, layout, cov, h, weight, y, h_xb, hx, u
                 {"long_name": "degrees of freedom for signal, trace(A)", "units": "1"}),
         "dfs_by_variable": (("profile", "control_group"), dfs_by,
                             {"long_name": "partial trace of the averaging kernel per variable", "units": "1"}),
-        "background_error_std": (("profile", ROW), np.sqrt(np.einsum("pii->pi", b_full)),
+        "background_error_std": (("profile", ROW), np.sqrt(cov.diagonal(len(h_tilde))),
                                  {"long_name": "sqrt(diag(B))", "units": "K or 1 (see control_row)"}),
         "analysis_error_std": (("profile", ROW), np.sqrt(s_diag),
                                {"long_name": "sqrt(diag(S)), S analysis error covariance",
