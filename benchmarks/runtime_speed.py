@@ -132,7 +132,7 @@ def ensure_model(args):
         return Path(args.model)
     from rtemu import load_instrument
     from rtemu.sampling import sample_to_netcdf
-    from rtemu.training import train_to_onnx
+    from rtemu.export import train_to_onnx
 
     work = Path(tempfile.mkdtemp(prefix="rtemu-bench-"))
     print(f"no --model: sampling and training the demo recipe in {work}", flush=True)

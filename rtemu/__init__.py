@@ -20,7 +20,7 @@ _LAZY = {
     "sample_to_netcdf": "rtemu.sampling",
     "default_pressure_grid": "rtemu.atmosphere",
     # training and export
-    "train_to_onnx": "rtemu.training",
+    "train_to_onnx": "rtemu.export",
     "load_recipe": "rtemu.training",
     "list_recipes": "rtemu.training",
     "read_bundle": "rtemu.bundle",

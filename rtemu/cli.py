@@ -118,10 +118,10 @@ def _add_train(sub):
 
 
 def _run_train(args):
-    from rtemu import training
+    from rtemu import export
 
     channels = [c.strip() for c in args.channels.split(",") if c.strip()] if args.channels else None
-    training.train_to_onnx(
+    export.train_to_onnx(
         args.data,
         args.recipe,
         args.output,
