@@ -135,3 +135,49 @@ def small_profiles(demo_instrument, us1976_temperature):
         return ds
 
     return build
+
+
+# -- a small trained emulator bundle, shared by the operator, example and CLI tests --------
+TINY_RECIPE = """
+name = "tiny-test"
+description = "Small and fast, for tests: accuracy is not the point here."
+[training]
+seed = 0
+validation_fraction = 0.2
+max_profiles = 1500
+[features]
+humidity = "log"
+humidity_floor = 1e-9
+zenith = "secant"
+temperature_components = 8
+humidity_components = 8
+[linear]
+residual = true
+ridge_alpha = 1e-6
+[network]
+hidden_layers = [8]
+activation = "tanh"
+solver = "lbfgs"
+alpha = 1e-4
+max_iter = 60
+tol = 0.0
+early_stopping = false
+check_every = 60
+patience = 1
+[envelope]
+bounds_margin = 0.02
+novelty_margin = 1.0
+"""
+
+
+@pytest.fixture(scope="session")
+def tiny_bundle(tmp_path_factory, demo_instrument):
+    """Path of a small emulator bundle for every demo-sounder channel (trained once)."""
+    from rtemu.export import train_to_onnx
+    from rtemu.sampling import sample_to_netcdf
+
+    d = tmp_path_factory.mktemp("tiny-bundle")
+    (d / "tiny.toml").write_text(TINY_RECIPE)
+    sample_to_netcdf(demo_instrument, d / "train.nc", count=1500, seed=0, progress=False)
+    train_to_onnx(d / "train.nc", d / "tiny.toml", d / "tiny.onnx", workers=1, progress=False)
+    return d / "tiny.onnx"
