@@ -14,14 +14,14 @@ Function evaluated (per profile n, channel c; all linear maps folded at export):
     z      = x A + a0                                     standardise + PCA + whiten [K]
     a1     = tanh(z W1_c + e_c w1e_c + b1_c)              hidden layer 1 [H1]
     a_k    = tanh(a_{k-1} W_k,c + b_k,c)                  further hidden layers
-    y_c    = a_d w_out,c + x l_c + e_c (x m_c + l_e,c) + s (x n_c + l_s,c) + b_c
+    y_c    = a_d w_out,c + z1.l_c + e_c (z1.m_c) + s (z1.n_c),  z1 = [z, 1]
 
 Jacobian (chain rule, reverse order)::
 
     g_d    = w_out,c (1 - a_d^2)
     g_k-1  = (g_k W_k,c^T) (1 - a_{k-1}^2)
-    dy/dz  = g_1 W1_c^T ;  dy/de = g_1 . w1e_c + x m_c + l_e,c
-    dy/dx  = dy/dz A^T + l_c + e_c m_c + s n_c      (s(theta) is not differentiated)
+    dy/dz  = g_1 W1_c^T + l_c + e_c m_c + s n_c  (z rows);  dy/de = g_1 . w1e_c + z1.m_c
+    dy/dx  = dy/dz A^T      (s(theta) is not differentiated)
     dy/dT  = dy/dx[:L];  dy/dq = dy/dx[L:2L] h'(q) (+ dy/dx[2L:3L]);  dy/dTs = dy/dx[F-2]
 
 Per-channel tensors carry the channel as their leading axis ([C, ...]); hidden layers of
@@ -184,11 +184,11 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     # deviations, not of the raw values (e.g. 250 K)
     X = b.op("Sub", b.op("Concat", *profile, Ts1, s1, axis=1), "feature_center")
 
-    # ---- one Gemm gives Y = [z (K), 1, r (R)]: whitened PCA coordinates, a constant-1
-    # column carrying the first-layer bias, and (for the novelty flag) the residuals
-    # of the standardised profiles off their PCA subspaces
-    Y = b.op("Gemm", X, "projection_weight", "projection_offset")
-    z1 = cols(Y, 0, K + 1, 1)  # [N, K+1]
+    # ---- [z, 1] = X A + a0: whitened PCA coordinates and a constant-1 column carrying
+    # the first-layer bias. The stored projection also holds (columns K+1..) the
+    # residuals off the PCA subspaces, computed by a second Gemm on the flag path only,
+    # so that a session without quality_flag skips it.
+    z1 = b.op("Gemm", X, cols("projection_weight", 0, K + 1, 1), cols("projection_offset", 0, K + 1, 0))
 
     # ---- per-channel networks, channel-major [C, N, H]. Channel c sees u = [z, 1, e_c]:
     # the first-layer matrix [C, K+1+C, H1] has e rows that are zero except row K+1+c.
@@ -203,11 +203,10 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     y_net = b.op("MatMul", acts[-1], "output_weight")  # [C, N, 1]
     y_net = b.op("Transpose", b.op("Squeeze", y_net, ax2), perm=[1, 0])  # [N, C]
 
-    # ---- linear part on the raw features, with coefficients affine in e_c and in s:
-    # X l_c + e_c (X m_c + l_e,c) + s (X n_c + l_s,c) + b_c
-    lin = b.op("Gemm", X, "linear_weight", "output_bias")  # [N, C]
-    e_slope = b.op("Gemm", X, "linear_emissivity_weight", "linear_emissivity")
-    s_slope = b.op("Gemm", X, "linear_zenith_weight", "linear_zenith")
+    # ---- linear part on z1 = [z, 1], with coefficients affine in e_c and in s:
+    # z1.l_c + e_c (z1.m_c) + s (z1.n_c)   (the constant of each sits in the 1 row)
+    lin_w = b.op("Concat", "linear_weight", "linear_emissivity_weight", "linear_zenith_weight", axis=1)
+    lin, e_slope, s_slope = b.op_multi("Split", [b.op("MatMul", z1, lin_w), b.ints([C, C, C])], 3, axis=1)
     lin = b.op("Add", lin, b.op("Add", b.op("Mul", E, e_slope), b.op("Mul", s1, s_slope)))
     b.op("Add", y_net, lin, out="brightness_temperature")
 
@@ -218,55 +217,54 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
         back = b.op("MatMul", g, b.op("Transpose", layer_weight_name(k), perm=[0, 2, 1]))
         a = acts[k - 2]
         g = b.op("Mul", back, b.op("Sub", one, b.op("Mul", a, a)))
-    # back through the first layer onto (z, e_c): [C, N, K+1]; transposing this small
-    # tensor is the only channel-major -> profile-major copy on the Jacobian path
+    # back onto (z, e_c) [C, N, K+1], the linear part included: g is augmented with
+    # v = [1, e_c, s] and the weights with the z-rows of l_c, m_c, n_c (e slot zero)
+    E_cn1 = b.op("Unsqueeze", b.op("Transpose", E, perm=[1, 0]), ax2)  # [C, N, 1]
+    s_1n1 = b.op("Unsqueeze", s1, b.ints([0]))  # [1, N, 1]
+    v = b.op("Add", b.op("Mul", E_cn1, b.const("pick_e", [0.0, 1.0, 0.0])),
+             b.op("Add", b.op("Mul", s_1n1, b.const("pick_s", [0.0, 0.0, 1.0])),
+                  b.const("pick_1", [1.0, 0.0, 0.0])))  # [C, N, 3]
+    g_aug = b.op("Concat", g, v, axis=2)  # [C, N, H1+3]
     w1_ze = b.op("Concat", cols(w1, 0, K, 1), "layer1_emissivity", axis=1)  # [C, K+1, H1]
-    d_ze = b.op("MatMul", g, b.op("Transpose", w1_ze, perm=[0, 2, 1]))
-    d_ze = b.op("Transpose", d_ze, perm=[1, 0, 2])  # [N, C, K+1]
+    z_only = b.const("mask_z", np.r_[np.ones(K), 0.0])
+    lin_rows = [b.op("Unsqueeze", b.op("Transpose", b.op("Mul", w, b.op("Unsqueeze", z_only, ax1)), perm=[1, 0]),
+                     ax1) for w in ("linear_weight", "linear_emissivity_weight", "linear_zenith_weight")]
+    w_aug = b.op("Concat", b.op("Transpose", w1_ze, perm=[0, 2, 1]), *lin_rows, axis=1)  # [C, H1+3, K+1]
+    d_ze = b.op("Transpose", b.op("MatMul", g_aug, w_aug), perm=[1, 0, 2])  # [N, C, K+1]
     d_e = b.op("Squeeze", cols(d_ze, K, K + 1, 2), ax2)
     b.op("Add", d_e, e_slope, out="jacobian_surface_emissivity")
 
-    # dy/dx = dy/dz A^T + l_c + e_c m_c + s n_c as one product:
-    # [dy/dz, dy/de, onehot_c, e_c onehot_c, s onehot_c] [N, C, K+1+3C]
-    # times [A^T; 0; l^T; m^T; n^T] [K+1+3C, F-part]
-    E3 = b.op("Unsqueeze", E, ax2)  # [N, C, 1]
-    s3 = b.op("Unsqueeze", s1, ax2)  # [N, 1, 1]
-    eye, zeros = np.eye(C), np.zeros((C, C))
-    block = lambda i: np.concatenate([eye if j == i else zeros for j in range(3)], 1)  # noqa: E731
-    onehots = b.op("Add", b.op("Add", b.op("Mul", E3, b.const("eye_emissivity", block(1))),
-                               b.op("Mul", s3, b.const("eye_zenith", block(2)))),
-                   b.const("eye_constant", block(0)))  # [N, C, 3C]
-    d_aug = b.op("Concat", d_ze, onehots, axis=2)
+    # dy/dx = dy/dz A^T as one 2-D product [N*C, K+1] x [A^T; 0] [K+1, F-part]:
+    # onnxruntime runs a 3-D MatMul by a 2-D matrix as one small product per profile
+    d_aug = b.op("Reshape", d_ze, b.ints([-1, K + 1]))
 
     def back_matrix(r0, r1):
-        parts = [
-            b.op("Transpose", cols(cols("projection_weight", 0, K, 1), r0, r1, 0), perm=[1, 0]),
-            b.const(f"zero_row_{r0}", np.zeros((1, r1 - r0))),
-        ] + [b.op("Transpose", cols(w, r0, r1, 0), perm=[1, 0])
-             for w in ("linear_weight", "linear_emissivity_weight", "linear_zenith_weight")]
-        return b.op("Concat", *parts, axis=0)
+        return b.op("Concat", b.op("Transpose", cols(cols("projection_weight", 0, K, 1), r0, r1, 0), perm=[1, 0]),
+                    b.const(f"zero_row_{r0}", np.zeros((1, r1 - r0))), axis=0)
 
-    b.op("MatMul", d_aug, back_matrix(0, L), out="jacobian_air_temperature")
+    def back(r0, r1, out=None):
+        return b.op("Reshape", b.op("MatMul", d_aug, back_matrix(r0, r1)), b.ints([-1, C, r1 - r0]), out=out)
+
+    back(0, L, out="jacobian_air_temperature")
     jq = "jacobian_specific_humidity"
     three = layout.n_profile_blocks == 3
     if log_q:
-        d_xq = b.op("MatMul", d_aug, back_matrix(L, 2 * L))
+        d_xq = back(L, 2 * L)
         # d ln(max(q, floor)) / dq = 1/q above the floor, 0 below (the clip is flat there)
         above = b.op("Cast", b.op("Greater", q, "humidity_floor"), to=b.elem)
         dh = b.op("Unsqueeze", b.op("Div", above, q_clip), ax1)  # [N, 1, L]
         d_xq = b.op("Mul", d_xq, dh, out=None if three else jq)
         if three:
-            b.op("Add", d_xq, b.op("MatMul", d_aug, back_matrix(2 * L, 3 * L)), out=jq)
+            b.op("Add", d_xq, back(2 * L, 3 * L), out=jq)
     else:
-        b.op("MatMul", d_aug, back_matrix(L, 2 * L), out=jq)
+        back(L, 2 * L, out=jq)
     # a [.., 1] matrix, not a vector: onnxruntime runs MatMul by a 1-D operand as one
     # small product per profile (measured 10x slower)
     F = layout.n_features
-    d_ts = b.op("MatMul", d_aug, back_matrix(F - 2, F - 1))
-    b.op("Squeeze", d_ts, ax2, out="jacobian_surface_temperature")
+    b.op("Squeeze", back(F - 2, F - 1), ax2, out="jacobian_surface_temperature")
 
     # ---- quality flags
-    _flags(b, layout, Y, Ts1)
+    _flags(b, layout, X, z1, Ts1, cols, x_q if log_q else None)
 
     graph = helper.make_graph(
         b.nodes,
@@ -286,7 +284,7 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     return model
 
 
-def _flags(b: _Builder, layout: GraphLayout, Y: str, Ts1: str) -> None:
+def _flags(b: _Builder, layout: GraphLayout, X: str, z1: str, Ts1: str, cols, ln_q=None) -> None:
     """Quality flag bitmask [N, C] int32 (bits from rtemu.flags).
 
     Bounds: every input scalar (T and q per level, Ts, theta, e per channel) and two
@@ -307,7 +305,8 @@ def _flags(b: _Builder, layout: GraphLayout, Y: str, Ts1: str) -> None:
     """
     T, q, _, E, theta = INPUT_NAMES
     ax1 = b.ints([1])
-    ln_q = b.op("Log", b.op("Max", q, "humidity_floor"))
+    if ln_q is None:
+        ln_q = b.op("Log", b.op("Max", q, "humidity_floor"))
     inv = b.op("Div", b.const("bolton_b", 17.67 * 243.5), b.op("Sub", T, b.const("bolton_c", 29.65)))
     # 17.67 (T - 273.15) / (T - 29.65) = 17.67 - 17.67 * 243.5 / (T - 29.65)
     h = b.op("Add", b.op("Add", ln_q, inv), "log_pressure_minus_bolton_a")
@@ -320,8 +319,12 @@ def _flags(b: _Builder, layout: GraphLayout, Y: str, Ts1: str) -> None:
     bad = b.op("Reshape", b.op("Cast", b.op("Not", ok), to=b.elem),
                b.ints([0, -1]))  # [N, 2P]
 
-    sq = b.op("Mul", Y, Y)
-    scores = b.op("MatMul", sq, "novelty_scale")  # [N, 1 + B] score / training maximum
+    K = layout.n_components
+    scores = b.op("MatMul", b.op("Mul", z1, z1), cols("novelty_scale", 0, K + 1, 0))  # [N, 1 + B]
+    if layout.n_reconstruction_blocks:
+        r = b.op("Gemm", X, cols("projection_weight", K + 1, 10**9, 1), cols("projection_offset", K + 1, 10**9, 0))
+        scores = b.op("Add", scores, b.op("MatMul", b.op("Mul", r, r), cols("novelty_scale", K + 1, 10**9, 0)))
+    # scores: ||z||^2 and per-block squared residuals, each over its training maximum
     novel = b.op("Cast", b.op("Greater", b.op("ReduceMax", scores, ax1, keepdims=1), "one"),
                  to=b.elem)  # [N, 1]
     hits = b.op("Min", b.op("MatMul", b.op("Concat", bad, novel, axis=1), "bounds_channel_map"),
@@ -349,15 +352,12 @@ def primary_shapes(layout: GraphLayout) -> dict[str, tuple[int, ...]]:
         "bounds_channel_map": (2 * P + 1, 3 * C),
         "flag_decode": (3 * C, 2 * C),
         "flag_decode_offset": (2 * C,),
-        "linear_weight": (F, C),
-        "linear_emissivity_weight": (F, C),
-        "linear_zenith_weight": (F, C),
-        "linear_emissivity": (C,),
-        "linear_zenith": (C,),
+        "linear_weight": (K + 1, C),
+        "linear_emissivity_weight": (K + 1, C),
+        "linear_zenith_weight": (K + 1, C),
         "feature_center": (F,),
         "humidity_floor": (),
         "log_pressure_minus_bolton_a": (L,),
-        "output_bias": (C,),
         "layer1_weight": (C, K + 1, h[0]),
         "layer1_emissivity": (C, 1, h[0]),
         "output_weight": (C, h[-1], 1),
@@ -421,3 +421,15 @@ def flag_decode(n_channels: int) -> tuple[np.ndarray, np.ndarray]:
     second = np.concatenate([(inv - out - nov) * eye, zero, zero], axis=0)
     offset = np.concatenate([np.zeros(C), np.full(C, float(out + nov))])
     return np.concatenate([first, second], axis=1), offset
+
+
+def runtime_nodes(model: onnx.ModelProto) -> list:
+    """Nodes that depend on an input (the rest is folded to constants at session creation)."""
+    const = {t.name for t in model.graph.initializer}
+    live = []
+    for node in model.graph.node:
+        if all((i in const) or not i for i in node.input):
+            const.update(node.output)
+        else:
+            live.append(node)
+    return live

@@ -74,7 +74,6 @@ _SHAPES = {
 }
 #: Per-channel arrays: name -> channel axis in the stacked array.
 _LINEAR_COLUMNS = ("linear_weight", "linear_emissivity_weight", "linear_zenith_weight")
-_SCALARS = ("linear_emissivity", "linear_zenith", "output_bias")
 _SHARED = ("feature_center", "projection_weight", "projection_offset", "novelty_scale", "humidity_floor",
            "log_pressure_minus_bolton_a")
 
@@ -108,9 +107,9 @@ class FrozenTransform:
 
 
 # ---- per-channel <-> stacked arrays -------------------------------------------------------
-def _channel_parts(fit, center, lower_e: float, upper_e: float) -> dict:
+def _channel_parts(fit, lower_e: float, upper_e: float) -> dict:
     """float32 per-channel parameters (unpadded) of a fitted channel."""
-    parts = {k: np.asarray(v, dtype=np.float32) for k, v in fit.folded(center).items()}
+    parts = {k: np.asarray(v, dtype=np.float32) for k, v in fit.folded().items()}
     parts["training_lower_emissivity"] = np.float32(lower_e)
     parts["training_upper_emissivity"] = np.float32(upper_e)
     return parts
@@ -121,8 +120,6 @@ def _stack(parts: list[dict], hidden: tuple[int, ...]) -> dict:
     out = {}
     for name in _LINEAR_COLUMNS:
         out[name] = np.stack([p[name] for p in parts], axis=1)
-    for name in _SCALARS:
-        out[name] = np.stack([np.asarray(p[name]).reshape(()) for p in parts])
     depth = len(hidden)
 
     def pad(a, shape):
@@ -145,8 +142,6 @@ def _unstack(arrays: dict, index: int, widths: list[int]) -> dict:
     """One channel's unpadded float32 parts from a bundle's stacked arrays."""
     c = index
     parts = {name: arrays[name][:, c].copy() for name in _LINEAR_COLUMNS}
-    for name in _SCALARS:
-        parts[name] = arrays[name][c].copy()
     parts["layer1_weight"] = arrays["layer1_weight"][c][:, : widths[0]].copy()
     parts["layer1_emissivity"] = arrays["layer1_emissivity"][c][:, : widths[0]].copy()
     for k in range(2, len(widths) + 1):
@@ -314,8 +309,7 @@ def build_bundle_model(emu: TrainedEmulator, *, base=None, dtype=np.float32):
     """Serialised bundle bytes and the layout (see :func:`export_bundle`)."""
     new_parts = {}
     for i, cid in enumerate(emu.channel_ids):
-        new_parts[cid] = _channel_parts(emu.channels[cid], emu.transform.center_,
-                                        emu.envelope.lower["surface_emissivity"][i],
+        new_parts[cid] = _channel_parts(emu.channels[cid], emu.envelope.lower["surface_emissivity"][i],
                                         emu.envelope.upper["surface_emissivity"][i])
     new_stats = {}
     for cid in emu.channel_ids:

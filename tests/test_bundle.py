@@ -165,10 +165,10 @@ def test_missing_key_refused(good, tmp_path):
 def test_tampered_weights_refused(good, tmp_path):
     model = onnx.load(str(good))
     for i, init in enumerate(model.graph.initializer):
-        if init.name == "output_bias":
+        if init.name == "linear_weight":
             value = numpy_helper.to_array(init).copy()
-            value[0] += 0.5  # a plausible, silent 0.5 K shift
-            model.graph.initializer[i].CopyFrom(numpy_helper.from_array(value, "output_bias"))
+            value[-1, 0] += 0.5  # the constant of channel 0: a plausible, silent 0.5 K shift
+            model.graph.initializer[i].CopyFrom(numpy_helper.from_array(value, "linear_weight"))
     path = _write_model(model, tmp_path / "tampered.onnx")
     with pytest.raises(rb.BundleError, match="weights do not match their SHA-256"):
         rb.read_bundle(path)

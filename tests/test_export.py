@@ -91,8 +91,9 @@ def test_graph_is_valid_onnx_and_lean(trained):
     model = onnx.load(str(trained["path"]))
     onnx.checker.check_model(model, full_check=True)
     assert model.opset_import[0].version == _graph.OPSET
-    # after onnxruntime's constant folding the graph stays small (speed of single calls)
-    assert len(model.graph.node) < 140
+    # nodes on initializers only are folded at session creation; what runs per call stays
+    # small (each node costs ~1 us in a single-profile call)
+    assert len(_graph.runtime_nodes(model)) <= 95
 
 
 def test_onnx_matches_in_memory_sklearn_model(trained):
@@ -127,7 +128,7 @@ def test_forward_cross_checked_with_skl2onnx(trained):
     for i, cid in enumerate(emu.channel_ids):
         fit = emu.channels[cid]
         e = feeds["surface_emissivity"][:, i].astype(float)
-        u, design = fit.network_input(z, e), fit.design(x, e)
+        u, design = fit.network_input(z, e), fit.design(z, x[:, -1], e)
         outs = []
         for est, inp in ((fit.mlp, u), (fit.ridge, design)):
             onx = convert_sklearn(est, initial_types=[("input", DoubleTensorType([None, inp.shape[1]]))],

@@ -122,28 +122,26 @@ def test_unknown_channel_refused(data_path, recipe_path):
 
 
 def test_folded_parameters_reproduce_the_sklearn_prediction(data_path, recipe_path):
-    """The algebra that folds standardisation, the ridge design and the network input
-    scaling into raw-input weights (ChannelFit.folded) is exact, in float64."""
+    """The algebra that folds the ridge design's standardisation and the network input
+    scaling into the bundle's weights (ChannelFit.folded) is exact, in float64."""
     data = load_training_data(data_path)
     emu = fit_emulator(data, recipe_path, channels=["mw-win", "ir-t2"], workers=1, progress=False)
     cfg: FeatureConfig = emu.config
     x = raw_features(data.air_temperature, data.specific_humidity, data.surface_temperature,
                      data.sensor_zenith_angle, cfg)
     z = emu.transform.transform(x)
-    xc = x - emu.transform.center_
+    z1 = np.concatenate([z, np.ones((len(z), 1))], axis=1)
+    s = x[:, -1]
     ids = list(data.instrument.channel_ids)
     for cid in emu.channel_ids:
         fit = emu.channels[cid]
-        f = fit.folded(emu.transform.center_)
+        f = fit.folded()
         e = data.surface_emissivity[:, ids.index(cid)]
-        s = x[:, -1]
-        z1 = np.concatenate([z, np.ones((len(z), 1))], axis=1)
         a = np.tanh(z1 @ f["layer1_weight"] + e[:, None] * f["layer1_emissivity"])
         a = np.tanh(a @ f["layer2_weight"] + f["layer2_bias"])
-        y = (a @ f["output_weight"])[:, 0] + xc @ f["linear_weight"] + f["output_bias"]
-        y += e * (xc @ f["linear_emissivity_weight"] + f["linear_emissivity"])
-        y += s * (xc @ f["linear_zenith_weight"] + f["linear_zenith"])
-        np.testing.assert_allclose(y, fit.predict(x, z, e), rtol=0, atol=1e-8)
+        y = (a @ f["output_weight"])[:, 0] + z1 @ f["linear_weight"]
+        y += e * (z1 @ f["linear_emissivity_weight"]) + s * (z1 @ f["linear_zenith_weight"])
+        np.testing.assert_allclose(y, fit.predict(z, s, e), rtol=0, atol=1e-8)
 
 
 # ---- end to end, determinism, update --------------------------------------------------------
@@ -200,7 +198,7 @@ def _channel_slices(path):
     for i, cid in enumerate(b.channel_ids):
         widths = b.channel_stats[cid]["hidden_layers"]
         parts = [arrays["linear_weight"][:, i], arrays["linear_emissivity_weight"][:, i],
-                 arrays["linear_zenith_weight"][:, i], arrays["output_bias"][i], arrays["linear_emissivity"][i],
+                 arrays["linear_zenith_weight"][:, i],
                  arrays["layer1_weight"][i][:, : widths[0]], arrays["layer1_emissivity"][i][:, : widths[0]],
                  arrays["layer2_weight"][i][: widths[0], : widths[1]], arrays["layer2_bias"][i][:, : widths[1]],
                  arrays["output_weight"][i][: widths[1]]]
