@@ -146,6 +146,9 @@ class Columns:
     zenith: np.ndarray  # [N] [degree]
     emissivity_channels: tuple[str, ...] | None  # None: emissivity has no channel dim
     level_coord: xr.DataArray | None
+    #: Coordinates of the operator input (channel, level), built once: their indexes cost
+    #: more than the rest of the dataset at every 1D-Var iteration.
+    input_coords: xr.Coordinates | None = None
 
     @property
     def n(self) -> int:
@@ -220,6 +223,11 @@ def read_columns(
     else:
         emissivity = _column_values(ds, "surface_emissivity", column_dims, ())
         emissivity_channels = None
+    coords = {}
+    if emissivity_channels is not None:
+        coords["channel"] = np.array(emissivity_channels, dtype=object)
+    if "level" in ds.coords:
+        coords["level"] = ds.coords["level"].values
     return Columns(
         pressure=_column_values(ds, "air_pressure", column_dims, ("level",)),
         temperature=_column_values(ds, "air_temperature", column_dims, ("level",)),
@@ -229,6 +237,7 @@ def read_columns(
         zenith=_column_values(ds, "sensor_zenith_angle", column_dims, ()),
         emissivity_channels=emissivity_channels,
         level_coord=ds.coords["level"] if "level" in ds.coords else None,
+        input_coords=xr.Coordinates(coords),
     )
 
 
@@ -247,14 +256,17 @@ def columns_to_dataset(cols: Columns) -> xr.Dataset:
         "surface_temperature": var(("profile",), cols.surface_temperature, "surface_temperature"),
         "sensor_zenith_angle": var(("profile",), cols.zenith, "sensor_zenith_angle"),
     }
-    coords = {}
     if cols.emissivity_channels is None:
         data["surface_emissivity"] = var(("profile",), cols.emissivity, "surface_emissivity")
     else:
         data["surface_emissivity"] = var(("profile", "channel"), cols.emissivity, "surface_emissivity")
-        coords["channel"] = xr.Variable("channel", np.array(cols.emissivity_channels, dtype=object))
-    if cols.level_coord is not None:
-        coords["level"] = xr.Variable("level", cols.level_coord.values)
+    coords = cols.input_coords
+    if coords is None:
+        coords = {}
+        if cols.emissivity_channels is not None:
+            coords["channel"] = np.array(cols.emissivity_channels, dtype=object)
+        if cols.level_coord is not None:
+            coords["level"] = cols.level_coord.values
     return xr.Dataset(data, coords=coords)
 
 

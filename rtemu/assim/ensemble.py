@@ -79,6 +79,11 @@ class EnsembleResult:
         return self.diagnostics["qc_reason"]
 
 
+def _mv(m, v):
+    """Batched matrix-vector product: ``m`` [P, a, b], ``v`` [P, b] -> [P, a]."""
+    return (m @ v[..., None])[..., 0]
+
+
 @one_blas_thread
 def perturbed_observation_update(x, hx, y, r, weight, eps):
     """Stochastic EnKF analysis with perturbed observations, batched over columns.
@@ -106,8 +111,8 @@ def perturbed_observation_update(x, hx, y, r, weight, eps):
     n_mem = x.shape[1]
     xa = x - x.mean(axis=1, keepdims=True)
     ya = (hx - hx.mean(axis=1, keepdims=True)) * weight[:, None, :]
-    pht = np.einsum("pkn,pkm->pnm", xa, ya) / (n_mem - 1)  # P^f H^T
-    s = np.einsum("pki,pkj->pij", ya, ya) / (n_mem - 1)
+    pht = np.swapaxes(xa, 1, 2) @ ya / (n_mem - 1)  # P^f H^T
+    s = np.swapaxes(ya, 1, 2) @ ya / (n_mem - 1)
     s = s + np.eye(len(r))[None] * r  # unused rows: Y' = 0 so S = diag(R) there
     innovation = np.where(weight[:, None, :] > 0, y[:, None, :] + eps - hx, 0.0)
     z = np.linalg.solve(s, np.swapaxes(innovation, 1, 2))  # [P, m, N]
@@ -146,12 +151,13 @@ def transform_update(x, hx, y, r, weight):
     # Thin SVD Yt = V s U^T: C = Yt Yt^T = V s^2 V^T; outside span(V) C is zero.
     v, s, ut = np.linalg.svd(yt, full_matrices=False)  # v [P, N, k], s [P, k], ut [P, k, m]
     lam = s**2
-    wbar = np.einsum("pnk,pk,pkm,pm->pn", v, s / (lam + n_mem - 1), ut, d)
+    # Stacked matrix products (BLAS) in place of multi-operand einsums.
+    wbar = _mv(v, s / (lam + n_mem - 1) * _mv(ut, d))  # [P, N]
     # W = I + V diag(sqrt((N-1)/(lam+N-1)) - 1) V^T  (eigenvalue 0 outside span(V) -> 1)
     f = np.sqrt((n_mem - 1) / (lam + n_mem - 1)) - 1.0
-    vtx = np.einsum("pnk,pni->pki", v, xa)
-    anomalies = xa + np.einsum("pnk,pk,pki->pni", v, f, vtx)
-    increment_mean = np.einsum("pn,pni->pi", wbar, xa)
+    vtx = np.swapaxes(v, 1, 2) @ xa  # [P, k, n]
+    anomalies = xa + v @ (f[:, :, None] * vtx)
+    increment_mean = (wbar[:, None, :] @ xa)[:, 0]
     return xbar + increment_mean[:, None, :] + anomalies
 
 

@@ -179,20 +179,11 @@ class _Covariance:
         return np.broadcast_to(np.einsum("pii->pi", self.b), (n_columns, self.b.shape[-1]))
 
 
-@one_blas_thread
-def _linearise(cov: _Covariance, idx, h_tilde):
-    """H~ B [k, C, n] and H~ B H~^T [k, C, C] of the columns ``idx``.
-
-    These change only when a column accepts a step; every solve of that state reuses them.
-    """
-    hb = cov.rows_times(h_tilde, idx)
-    return hb, hb @ _t(h_tilde)
-
-
-def _gradient(binv_dx, h, hx, y, weight):
-    """g = B^-1 (x - xb) - H^T R^-1 (y - H(x)) [control units^-1], B^-1 (x - xb) given."""
-    d = np.where(weight > 0, y - hx, 0.0)
-    return binv_dx - np.einsum("pcn,pc->pn", h, weight * d)
+def _gradient(binv_dx, h_tilde, hx, y, sqrt_w):
+    """g = B^-1 (x - xb) - H^T R^-1 (y - H(x)) = B^-1 (x - xb) - H~^T R^-1/2 (y - H(x))
+    [control units^-1], with B^-1 (x - xb) given."""
+    d = np.where(sqrt_w > 0, y - hx, 0.0)
+    return binv_dx - np.einsum("pcn,pc->pn", h_tilde, sqrt_w * d)
 
 
 def _observation_cost(hx, y, weight):
@@ -213,64 +204,64 @@ def _blocked(x, grad, cols, layout):
     return ((x >= hi - tol) & (grad < 0)) | ((x <= lo + tol) & (grad > 0))
 
 
-def _blocked_rows(cov: _Covariance, idx, blocked):
-    """The blocked rows of B per column, padded to the largest count k.
+@one_blas_thread
+def _step_system(grad, cov: _Covariance, idx, h_tilde, blocked, hb=None):
+    """The parts of the Newton step from one iterate that do not depend on the damping.
 
-    Returns the columns with blocked elements (positions in ``blocked``), the element
-    order (blocked first) [r, k], the mask of real (not padding) entries [r, k], B_b:
-    [r, k, n] and B_bb [r, k, k] (identity on the padding).
+    Sherman-Morrison-Woodbury identity (behind Rodgers 2000 eqs. 2.44-2.45, from memory):
+
+        [s B^-1 + H~^T H~]^-1 g = (B g - B H~^T w) / s,  (H~ B H~^T + s I) w = H~ B g,
+
+    so only C x C systems are solved (C channels), whatever the damping s. Holding the
+    blocked elements b fixed leaves the free ones f with the prior precision
+    (B^-1)_ff = (B_ff - B_fb B_bb^-1 B_bf)^-1 (block inversion, Schur complement): the
+    same formula with B' = B - B_:b B_bb^-1 B_b: (zero on the blocked rows and columns)
+    in place of B gives the step over f and 0 on b. Only the k blocked rows of B enter,
+    as corrections of size n k C per column; no n x n system is formed.
+
+    Parameters: ``grad`` g [k, n], ``h_tilde`` H~ = R^-1/2 H [k, C, n] and ``blocked``
+    [k, n] of the columns ``idx``; ``hb`` = H~ B if already known (it is overwritten).
+    Returns B' g [k, n], H~ B' g [k, C], H~ B' [k, C, n] and H~ B' H~^T [k, C, C].
     """
+    if hb is None:
+        hb = cov.rows_times(h_tilde, idx)
+    gmat = hb @ _t(h_tilde)
+    bg = cov.times(grad, idx)
+    hbg = _mv(hb, grad)
     rows = np.flatnonzero(blocked.any(axis=1))
+    if rows.size == 0:
+        return bg, hbg, hb, gmat
+    # Blocked indices first, padded to the largest count with identity rows of B_bb.
     blk = blocked[rows]
-    k = int(blk.sum(axis=1).max()) if rows.size else 0
+    k = int(blk.sum(axis=1).max())
     order = np.argsort(~blk, axis=1, kind="stable")[:, :k]
     mask = np.take_along_axis(blk, order, axis=1)
-    b_rows = cov.rows(order, idx[rows]) * mask[:, :, None]
+    b_rows = cov.rows(order, idx[rows]) * mask[:, :, None]  # B_b: [r, k, n]
     b_bb = np.take_along_axis(b_rows, order[:, None, :], axis=2) * mask[:, None, :]
     b_bb = b_bb + np.eye(k) * ~mask[:, None, :]
-    return rows, order, mask, b_rows, b_bb
+    hb_b = np.take_along_axis(hb[rows], order[:, None, :], axis=2) * mask[:, None, :]  # H~ B_:b
+    bg_b = np.take_along_axis(bg[rows], order, axis=1) * mask  # B_b: g
+    z = np.linalg.solve(b_bb, np.concatenate([_t(hb_b), bg_b[:, :, None]], axis=2))
+    z_h, z_g = z[:, :, :-1], z[:, :, -1:]  # B_bb^-1 B_b: H~^T, B_bb^-1 B_b: g
+    bg[rows] -= (_t(z_g) @ b_rows)[:, 0]
+    hbg[rows] -= (_t(z_h) @ bg_b[:, :, None])[..., 0]
+    hb[rows] -= _t(z_h) @ b_rows
+    gmat[rows] -= hb_b @ z_h
+    return bg, hbg, hb, gmat
 
 
 @one_blas_thread
-def _newton_solve(grad, cov: _Covariance, idx, hb, gmat, scale, blocked):
-    """[scale B^-1 + H~^T H~]^-1 g over the free elements; blocked elements get 0.
+def _damped_step(system, scale, blocked):
+    """[scale B^-1 + H~^T H~]^-1 g over the free elements, blocked elements 0 [k, n].
 
-    Sherman-Morrison-Woodbury identity (behind Rodgers 2000 eqs. 2.44-2.45, from memory):
-    [s B^-1 + H~^T H~]^-1 g = (B g - B H~^T w) / s with (H~ B H~^T + s I) w = H~ B g, so
-    only C x C systems are solved (C channels). ``hb`` = H~ B [k, C, n] and ``gmat`` =
-    H~ B H~^T [k, C, C] of the columns ``idx``.
-
-    Holding the blocked elements b fixed leaves the free ones f with the prior precision
-    (B^-1)_ff = (B_ff - B_fb B_bb^-1 B_bf)^-1 (block inversion, Schur complement): the
-    same step with B' = B - B_:b B_bb^-1 B_b: (zero on the blocked rows and columns) in
-    place of B. Only the k blocked rows of B enter, as corrections of size n k per
-    column; the n x n system is never formed.
+    ``system`` is the output of :func:`_step_system` for these columns.
     """
-    bg = cov.times(grad, idx)  # B g
-    hbg = _mv(hb, grad)  # H~ B g
+    bg, hbg, hb, gmat = system
     inner = gmat + scale[:, None, None] * np.eye(gmat.shape[-1])
-    rows, order, mask, b_rows, b_bb = _blocked_rows(cov, idx, blocked)
-    if rows.size:
-        hb_b = np.take_along_axis(hb[rows], order[:, None, :], axis=2) * mask[:, None, :]  # H~ B_:b
-        bg_b = np.take_along_axis(bg[rows], order, axis=1) * mask  # B_b: g
-        z = np.linalg.solve(b_bb, np.concatenate([_t(hb_b), bg_b[:, :, None]], axis=2))
-        z_h, z_g = z[:, :, :-1], z[:, :, -1]  # B_bb^-1 B_b: H~^T, B_bb^-1 B_b: g
-        inner[rows] -= hb_b @ z_h  # H~ B' H~^T
-        hbg[rows] -= (_t(z_h) @ bg_b[:, :, None])[..., 0]  # H~ B' g
     w = np.linalg.solve(inner, hbg[..., None])  # [k, C, 1]
-    step = bg - (_t(w) @ hb)[:, 0]
-    if rows.size:
-        # B' g - B' H~^T w = B g - B H~^T w - B_:b (z_g - z_h w)
-        step[rows] -= ((z_g - (z_h @ w[rows])[..., 0])[:, None, :] @ b_rows)[:, 0]
-    step /= scale[:, None]
+    step = (bg - (_t(w) @ hb)[:, 0]) / scale[:, None]
     step[blocked] = 0.0
     return step
-
-
-def _gauss_newton_d2(grad, cov: _Covariance, idx, hb, gmat, blocked):
-    """d^2 = g^T (B^-1 + H^T R^-1 H)^-1 g of the undamped step over the free elements [1]."""
-    step = _newton_solve(grad, cov, idx, hb, gmat, np.ones(len(grad)), blocked)
-    return np.einsum("pn,pn->p", grad, step)
 
 
 def var1d(
@@ -362,25 +353,24 @@ def var1d(
     h_xb = raw["bt"]
     h = control_jacobian(raw, cols_b, layout)
     finite_h = np.isfinite(h).all(axis=-1)
-    h = np.where(finite_h[..., None], h, 0.0)
-    hb_all = cov.rows_times(h, everything)  # H B
-    departure_std = np.sqrt(np.einsum("pcn,pcn->pc", h, hb_all) + r)  # sqrt(H B H^T + R)_ii
+    h[~finite_h] = 0.0
+    hb_xb = cov.rows_times(h, everything)  # H B
+    departure_std = np.sqrt(np.einsum("pcn,pcn->pc", h, hb_xb) + r)  # sqrt(H B H^T + R)_ii
     flag = np.where(finite_h, raw["flag"], raw["flag"] | 1)
     reason = _qc.screen(y, h_xb, flag, departure_std, qc_threshold)
     used = reason == _qc.USED
     weight = np.where(used, 1.0 / r, 0.0)
-    sqrt_w = np.sqrt(weight)[..., None]
-    h = np.where(used[..., None], h, 0.0)
+    sqrt_w = np.sqrt(weight)
     n_used = used.sum(axis=1)
 
-    # Per-column state at the current iterate; the linearisation (H~ = R^-1/2 H, H~ B,
-    # H~ B H~^T), gradient and active set change only when a column accepts a step.
+    # Per-column state at the current iterate. The observation side is kept as
+    # H~ = R^-1/2 H (rows of unused observations zero), and everything the steps from an
+    # iterate need except the damping (the step system) is built once per iterate.
     x = xb.copy()
     cols = cols_b
     hx = np.where(used, h_xb, 0.0)
-    h_tilde = h * sqrt_w
-    hb = hb_all * sqrt_w
-    gmat = hb @ _t(h_tilde)
+    h_tilde = h * sqrt_w[..., None]
+    del h
     binv_dx = np.zeros_like(x)  # B^-1 (x - xb)
     cost_now = _observation_cost(hx, y, weight)
     cost = np.full((n_prof, max_iter + 1), np.nan)
@@ -392,26 +382,34 @@ def var1d(
     n_rejected = np.zeros(n_prof, dtype=np.int64)
     grad = np.zeros_like(x)
     blocked = np.zeros(x.shape, dtype=bool)
+    system = (np.zeros_like(x), np.zeros(used.shape), np.zeros_like(h_tilde),
+              np.zeros(used.shape + used.shape[1:]))
 
-    def new_iterate(idx):
-        """Gradient and active set at the accepted iterates of ``idx``; True if converged by step size."""
-        grad[idx] = _gradient(binv_dx[idx], h[idx], hx[idx], y[idx], weight[idx])
+    def new_iterate(idx, hb=None):
+        """Gradient, active set and step system at the iterates of ``idx``; returns d^2."""
+        grad[idx] = _gradient(binv_dx[idx], h_tilde[idx], hx[idx], y[idx], sqrt_w[idx])
         blocked[idx] = _blocked(x[idx], grad[idx], cols.subset(idx), layout)
-        return _gauss_newton_d2(grad[idx], cov, idx, hb[idx], gmat[idx], blocked[idx])
+        parts = _step_system(grad[idx], cov, idx, h_tilde[idx], blocked[idx], hb)
+        for whole, part in zip(system, parts):
+            whole[idx] = part
+        # d^2 = g^T (B^-1 + H^T R^-1 H)^-1 g of the undamped step over the free elements
+        undamped = _damped_step(parts, np.ones(len(idx)), blocked[idx])
+        return np.einsum("pn,pn->p", grad[idx], undamped)
 
     status[n_used == 0] = NO_OBSERVATIONS
     active = n_used > 0
     idx = np.flatnonzero(active)
     if idx.size:
-        done = new_iterate(idx) < step_tol * n_ctl
+        done = new_iterate(idx, hb_xb[idx] * sqrt_w[idx, :, None]) < step_tol * n_ctl
         status[idx[done]] = CONVERGED
         active[idx[done]] = False
+    del hb_xb
 
     for it in range(1, max_iter + 1):
         idx = np.flatnonzero(active)
         if idx.size == 0:
             break
-        dx = -_newton_solve(grad[idx], cov, idx, hb[idx], gmat[idx], 1.0 + gamma[idx], blocked[idx])
+        dx = -_damped_step([part[idx] for part in system], 1.0 + gamma[idx], blocked[idx])
         trial_cols, trial_x = from_control(x[idx] + dx, cols.subset(idx), layout)
         raw = run_operator(operator, trial_cols, channels, jacobian=True)
         raw["flag"] = raw["flag"] & ~tolerated_bits
@@ -423,7 +421,6 @@ def var1d(
             & (np.isfinite(trial_h).all(axis=-1) | ~u).all(axis=1)
         )
         trial_hx = np.where(u, raw["bt"], 0.0)
-        trial_h = np.where(u[..., None], trial_h, 0.0)
         trial_dxb = trial_x - xb[idx]
         trial_binv_dx = cov.inv_times(trial_dxb, idx)
         tjb = 0.5 * np.einsum("pn,pn->p", trial_dxb, trial_binv_dx)
@@ -444,8 +441,8 @@ def var1d(
         x[acc] = trial_x[accept]
         binv_dx[acc] = trial_binv_dx[accept]
         hx[acc] = trial_hx[accept]
-        h[acc] = trial_h[accept]
-        h_tilde[acc] = trial_h[accept] * sqrt_w[acc]
+        # Unused rows may hold non-finite values: select first (inf * 0 is NaN).
+        h_tilde[acc] = np.where(u[accept, :, None], trial_h[accept], 0.0) * sqrt_w[acc, :, None]
         cost_now[acc] = tj[accept]
         cols = _replace_columns(cols, acc, trial_cols.subset(np.flatnonzero(accept)))
         gamma[acc] /= lm_factor if damped else 1.0
@@ -456,7 +453,6 @@ def var1d(
         cost[idx, it] = cost_now[idx]
 
         if acc.size:
-            hb[acc], gmat[acc] = _linearise(cov, acc, h_tilde[acc])
             d2 = new_iterate(acc)
             small_decrease = (decrease >= 0) & (decrease < cost_tol * np.maximum(n_used[acc], 1))
             done = (d2 < step_tol * n_ctl) | (small_decrease & (d2 < n_ctl))
@@ -466,7 +462,7 @@ def var1d(
     analysis = write_columns(background, cols, ("profile",), control_emissivity)
     diagnostics = _diagnostics(
         background=background, channels=channels, layout=layout, cov=cov,
-        h_tilde=h_tilde, hb=hb, gmat=gmat, y=y, h_xb=h_xb, hx=hx, used=used, reason=reason,
+        h_tilde=h_tilde, y=y, h_xb=h_xb, hx=hx, used=used, reason=reason,
         departure_std=departure_std, r=r, cost_background=0.5 * np.einsum("pn,pn->p", x - xb, binv_dx),
         cost_observation=_observation_cost(hx, y, weight), cost=cost, trial_cost=trial_cost,
         status=status, n_iter=n_iter, n_rejected=n_rejected, gamma=gamma,
@@ -499,13 +495,15 @@ def _replace_columns(cols, index, new):
 
 
 @one_blas_thread
-def _analysis_matrices(cov: _Covariance, h_tilde, hb, gmat, matrices: bool):
+def _analysis_matrices(cov: _Covariance, h_tilde, matrices: bool):
     """diag(A), diag(S) and, with ``matrices``, A and S at the analysis, in one batched pass.
 
     m-form (Rodgers 2000 eq. 2.44 gain, from memory): G~ = B H~^T (H~ B H~^T + I)^-1,
-    A = G~ H~, S = B - G~ H~ B = (I - A) B; no n x n inverse is needed. ``hb`` = H~ B and
-    ``gmat`` = H~ B H~^T at the analysis, as kept by the iteration.
+    A = G~ H~, S = B - G~ H~ B = (I - A) B; no n x n inverse is needed. ``h_tilde`` =
+    R^-1/2 H at the analysis [N, C, n].
     """
+    hb = cov.rows_times(h_tilde, np.arange(len(h_tilde)))
+    gmat = hb @ _t(h_tilde)
     # With L L^T = H~ B H~^T + I: G~^T = L^-T L^-1 H~ B and G~ H~ B = M^T M, M = L^-1 H~ B
     # (C x C factors only; S = B - M^T M is symmetric up to the BLAS summation order,
     # exactly so with OpenBLAS).
@@ -524,10 +522,10 @@ def _analysis_matrices(cov: _Covariance, h_tilde, hb, gmat, matrices: bool):
     return diag_a, s_diag, kernel, s_hat
 
 
-def _diagnostics(*, background, channels, layout, cov, h_tilde, hb, gmat, y, h_xb, hx, used,
+def _diagnostics(*, background, channels, layout, cov, h_tilde, y, h_xb, hx, used,
                  reason, departure_std, r, cost_background, cost_observation, cost, trial_cost,
                  status, n_iter, n_rejected, gamma, diagnostic_matrices, settings) -> xr.Dataset:
-    diag_a, s_diag, kernel, s_hat = _analysis_matrices(cov, h_tilde, hb, gmat, diagnostic_matrices)
+    diag_a, s_diag, kernel, s_hat = _analysis_matrices(cov, h_tilde, diagnostic_matrices)
     groups = np.array(layout.groups)
     group_names = list(dict.fromkeys(layout.groups))
     dfs_by = np.stack([diag_a[:, groups == g].sum(axis=1) for g in group_names], axis=1)
