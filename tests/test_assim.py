@@ -639,3 +639,107 @@ def test_accept_flags_lets_chosen_flag_bits_through():
     assert other_bit.qc_reason.values[0, 2] == qc.OPERATOR_FLAG
     with pytest.raises(ValueError, match="accept_flags"):
         assim.var1d(op, bg, obs, b_matrix=b, accept_flags=-1)
+
+
+# -- fast paths against dense linear algebra -------------------------------------------------
+def _spd(rng, n):
+    a = rng.standard_normal((n, n))
+    return a @ a.T + n * np.eye(n)
+
+
+@pytest.mark.parametrize("shared_b", [True, False])
+def test_active_set_step_equals_the_reduced_newton_system(shared_b):
+    """The Woodbury step with B conditioned on the blocked elements is the projected step.
+
+    Reference: a projected Newton step (Bertsekas 1982, SIAM J. Control Optim. 20, 221)
+    holds the blocked elements at 0 and solves the Newton system over the free ones,
+    [s (B^-1)_ff + (H~^T H~)_ff] dx_f = g_f; written out here with dense inverses.
+    """
+    from rtemu.assim.var1d import _Covariance, _damped_step, _step_system
+
+    rng = np.random.default_rng(7)
+    n, c, n_cols = 15, 4, 6
+    b = _spd(rng, n) if shared_b else np.stack([_spd(rng, n) for _ in range(n_cols + 2)])
+    idx = np.arange(n_cols) if shared_b else np.array([7, 0, 3, 5, 2, 6])  # a subset, out of order
+    h_tilde = rng.standard_normal((n_cols, c, n))
+    grad = rng.standard_normal((n_cols, n))
+    blocked = rng.random((n_cols, n)) < 0.3
+    blocked[0] = False  # nothing blocked
+    blocked[1] = False
+    blocked[1, 4] = True  # one element
+    blocked[2] = True
+    blocked[2, 5] = False  # all but one
+    blocked[3] = True  # all
+    scale = rng.uniform(1.0, 100.0, n_cols)
+    step = _damped_step(_step_system(grad, _Covariance(b), idx, h_tilde, blocked), scale, blocked)
+    for p in range(n_cols):
+        bp = b if shared_b else b[idx[p]]
+        free = ~blocked[p]
+        hessian = scale[p] * np.linalg.inv(bp) + h_tilde[p].T @ h_tilde[p]
+        ref = np.zeros(n)
+        if free.any():
+            ref[free] = np.linalg.solve(hessian[np.ix_(free, free)], grad[p, free])
+        np.testing.assert_allclose(step[p], ref, rtol=1e-9, atol=1e-12)
+        assert (step[p][blocked[p]] == 0.0).all()
+
+
+class _RelabelledOutput(LinearOperator):
+    """The same linear operator, returning channels reversed and dims in another order."""
+
+    def simulate(self, ds, jacobian=False):
+        out = super().simulate(ds, jacobian)
+        return out.isel(channel=slice(None, None, -1)).transpose("channel", ...)
+
+
+def test_var1d_reads_operator_outputs_by_label_not_position():
+    op, bg, layout, b, h, r, y, hxb, xb, obs = _linear_case()
+    relabelled = _RelabelledOutput(layout.n_levels)  # same seed: same matrices as op
+    res = assim.var1d(relabelled, bg, obs, b_matrix=b, lm_damping=0.0, qc_threshold=None)
+    # Closed form of Rodgers (2000), as in test_var1d_gauss_newton_matches_optimal_estimation.
+    xa_ref, a_ref, s_ref = optimal_estimate(xb, b, h, r, y, hxb)
+    np.testing.assert_allclose(control(res.analysis, layout), xa_ref, rtol=0, atol=1e-9)
+    np.testing.assert_allclose(res.averaging_kernel.values, a_ref, atol=1e-9)
+    s = res.diagnostics["analysis_error_covariance"].values
+    np.testing.assert_allclose(s, s_ref, rtol=1e-8, atol=1e-12)
+    np.testing.assert_allclose(s, np.swapaxes(s, 1, 2), rtol=0, atol=1e-12 * np.abs(s).max())
+    np.testing.assert_allclose(res.diagnostics["departure_background"].values, y - hxb, atol=1e-9)
+
+
+def test_diagnostics_without_matrices_keep_the_same_dfs_and_errors():
+    op, bg, layout, b, h, r, y, hxb, xb, obs = _linear_case()
+    full = assim.var1d(op, bg, obs, b_matrix=b, lm_damping=0.0, qc_threshold=None)
+    lean = assim.var1d(op, bg, obs, b_matrix=b, lm_damping=0.0, qc_threshold=None,
+                       diagnostic_matrices=False)
+    assert "averaging_kernel" not in lean.diagnostics
+    _, a_ref, s_ref = optimal_estimate(xb, b, h, r, y, hxb)  # Rodgers (2000) m-form
+    np.testing.assert_allclose(lean.dfs.values, np.trace(a_ref, axis1=1, axis2=2), atol=1e-9)
+    np.testing.assert_allclose(lean.diagnostics["analysis_error_std"].values,
+                               np.sqrt(np.einsum("pii->pi", s_ref)), rtol=1e-8)
+    np.testing.assert_allclose(lean.diagnostics["analysis_error_std"].values,
+                               full.diagnostics["analysis_error_std"].values, rtol=1e-10)
+
+
+def test_one_blas_thread_limits_blas_inside_and_restores_it_after():
+    threadpoolctl = pytest.importorskip("threadpoolctl")
+    from rtemu.assim import _linalg
+
+    controlled = {lib.filepath for lib in _linalg._controller().lib_controllers if lib.user_api == "blas"}
+    assert controlled  # numpy's BLAS at least
+
+    def threads():
+        return {i["filepath"]: i["num_threads"] for i in threadpoolctl.threadpool_info()
+                if i["filepath"] in controlled}
+
+    before = threads()
+
+    @_linalg.one_blas_thread
+    def inner():
+        return threads()
+
+    @_linalg.one_blas_thread
+    def outer():
+        return inner(), threads()
+
+    nested, own = outer()
+    assert set(nested.values()) == set(own.values()) == {1}
+    assert threads() == before
