@@ -212,7 +212,8 @@ def read_columns(
                     f"{what}: surface_emissivity channels {have} differ from the operator's "
                     f"{list(channels)} (rule: one value per operator channel)"
                 )
-            ds = ds.assign(surface_emissivity=emis.sel(channel=list(channels)))
+            if have != list(channels):
+                ds = ds.assign(surface_emissivity=emis.sel(channel=list(channels)))
         elif ds.sizes["channel"] != len(channels):
             raise ValueError(
                 f"{what}: surface_emissivity has {ds.sizes['channel']} channels, the operator "

@@ -194,7 +194,9 @@ def check_b_matrix(b_matrix, layout: ControlLayout, n_profiles: int, name: str =
                     f"unexpected {extra[:5]}) (rule: B over exactly the control vector; "
                     "check control_emissivity and the number of levels)"
                 )
-            b_matrix = b_matrix.sel({ROW: want, COL: want})
+            have_col = [str(v) for v in b_matrix[COL].values]
+            if have != want or have_col != want:
+                b_matrix = b_matrix.sel({ROW: want, COL: want})
         order = ("profile", ROW, COL) if "profile" in b_matrix.dims else (ROW, COL)
         b = np.asarray(b_matrix.transpose(*order).values, dtype=float)
     else:

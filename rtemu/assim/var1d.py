@@ -38,7 +38,11 @@ Diagnostics at the analysis, with H the Jacobian there (Rodgers 2000, ch. 2-3):
 * degrees of freedom for signal DFS = trace(A) (eq. 2.80).
 
 Each iteration makes one batched operator call (with Jacobians) over all columns still
-iterating; the per-column linear algebra is batched with numpy.
+iterating; the per-column linear algebra is batched with numpy. Steps are solved in
+Woodbury form (C x C systems for C channels, never n x n, also with elements held at a
+limit); what a step needs apart from the damping is built once per accepted iterate and
+shared by the convergence test and every damped trial from it. The matrix diagnostics
+are computed in one pass at the end.
 
 References
 ----------
