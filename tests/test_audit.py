@@ -525,9 +525,8 @@ novelty_margin = 1.0
 
 @pytest.fixture(scope="module")
 def tiny_bundle(tmp_path_factory, instrument):
-    sampling = pytest.importorskip("rtemu.sampling")
-    training = pytest.importorskip("rtemu.training")
-    export = pytest.importorskip("rtemu.export")
+    from rtemu import export, sampling, training
+
     d = tmp_path_factory.mktemp("bundle")
     (d / "tiny.toml").write_text(_TINY_RECIPE)
     sampling.sample_to_netcdf(instrument, d / "train.nc", count=400, seed=0, progress=False)
