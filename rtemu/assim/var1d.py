@@ -466,7 +466,7 @@ def var1d(
     analysis = write_columns(background, cols, ("profile",), control_emissivity)
     diagnostics = _diagnostics(
         background=background, channels=channels, layout=layout, cov=cov,
-        h_tilde=h_tilde, y=y, h_xb=h_xb, hx=hx, used=used, reason=reason,
+        h_tilde=h_tilde, system=system, blocked=blocked, y=y, h_xb=h_xb, hx=hx, used=used, reason=reason,
         departure_std=departure_std, r=r, cost_background=0.5 * np.einsum("pn,pn->p", x - xb, binv_dx),
         cost_observation=_observation_cost(hx, y, weight), cost=cost, trial_cost=trial_cost,
         status=status, n_iter=n_iter, n_rejected=n_rejected, gamma=gamma,
@@ -499,15 +499,20 @@ def _replace_columns(cols, index, new):
 
 
 @one_blas_thread
-def _analysis_matrices(cov: _Covariance, h_tilde, matrices: bool):
+def _analysis_matrices(cov: _Covariance, h_tilde, system, blocked, matrices: bool):
     """diag(A), diag(S) and, with ``matrices``, A and S at the analysis, in one batched pass.
 
     m-form (Rodgers 2000 eq. 2.44 gain, from memory): G~ = B H~^T (H~ B H~^T + I)^-1,
     A = G~ H~, S = B - G~ H~ B = (I - A) B; no n x n inverse is needed. ``h_tilde`` =
-    R^-1/2 H at the analysis [N, C, n].
+    R^-1/2 H at the analysis [N, C, n]; ``system`` and ``blocked`` are the step system
+    and active set there: without blocked elements its H~ B and H~ B H~^T are the
+    unconditioned ones and are reused.
     """
-    hb = cov.rows_times(h_tilde, np.arange(len(h_tilde)))
-    gmat = hb @ _t(h_tilde)
+    hb, gmat = system[2].copy(), system[3].copy()
+    rows = np.flatnonzero(blocked.any(axis=1))
+    if rows.size:
+        hb[rows] = cov.rows_times(h_tilde[rows], rows)
+        gmat[rows] = hb[rows] @ _t(h_tilde[rows])
     # With L L^T = H~ B H~^T + I: G~^T = L^-T L^-1 H~ B and G~ H~ B = M^T M, M = L^-1 H~ B
     # (C x C factors only; S = B - M^T M is symmetric up to the BLAS summation order,
     # exactly so with OpenBLAS).
@@ -526,10 +531,10 @@ def _analysis_matrices(cov: _Covariance, h_tilde, matrices: bool):
     return diag_a, s_diag, kernel, s_hat
 
 
-def _diagnostics(*, background, channels, layout, cov, h_tilde, y, h_xb, hx, used,
+def _diagnostics(*, background, channels, layout, cov, h_tilde, system, blocked, y, h_xb, hx, used,
                  reason, departure_std, r, cost_background, cost_observation, cost, trial_cost,
                  status, n_iter, n_rejected, gamma, diagnostic_matrices, settings) -> xr.Dataset:
-    diag_a, s_diag, kernel, s_hat = _analysis_matrices(cov, h_tilde, diagnostic_matrices)
+    diag_a, s_diag, kernel, s_hat = _analysis_matrices(cov, h_tilde, system, blocked, diagnostic_matrices)
     groups = np.array(layout.groups)
     group_names = list(dict.fromkeys(layout.groups))
     dfs_by = np.stack([diag_a[:, groups == g].sum(axis=1) for g in group_names], axis=1)
