@@ -356,16 +356,17 @@ def write_columns(
     Variables keep their original dim order; their ``units`` attribute becomes canonical.
     """
     shape = tuple(template.sizes[d] for d in column_dims)
-    out = template.copy()
+    new = {}
 
     def put(name, values, trailing):
         dims = (*column_dims, *trailing)
         values = values.reshape(*shape, *values.shape[1:])
         attrs = dict(template[name].attrs)
         attrs["units"] = CANONICAL_UNITS[name]
-        da = xr.DataArray(values, dims=dims, attrs=attrs)
-        order = [d for d in template[name].dims if d in dims] + [d for d in dims if d not in template[name].dims]
-        out[name] = da.transpose(*order)
+        old_dims = template.variables[name].dims
+        order = [d for d in old_dims if d in dims] + [d for d in dims if d not in old_dims]
+        # Variables, not DataArrays: no index alignment against the template.
+        new[name] = xr.Variable(dims, values, attrs).transpose(*order)
 
     put("air_temperature", cols.temperature, ("level",))
     put("specific_humidity", cols.humidity, ("level",))
@@ -380,4 +381,6 @@ def write_columns(
                 order = [list(cols.emissivity_channels).index(str(c)) for c in template["channel"].values]
                 values = values[:, order]
             put("surface_emissivity", values, ("channel",))
+    out = template.copy()
+    out.update(new)
     return out

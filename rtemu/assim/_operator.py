@@ -26,9 +26,10 @@ def operator_channels(operator) -> tuple[str, ...]:
 
 def _channel_order(out: xr.Dataset, channels) -> np.ndarray | None:
     """Positions of the operator channels in the output's channel coordinate (None: same order)."""
-    if "channel" not in out.coords:
+    index = out.indexes.get("channel")
+    if index is None:
         return None
-    have = [str(c) for c in out["channel"].values]
+    have = [str(c) for c in index]
     if have == list(channels):
         return None
     absent = [c for c in channels if c not in have]
