@@ -11,7 +11,7 @@ Function evaluated (per profile n, channel c; all linear maps folded at export):
     h(q)   = ln(max(q, q_floor))  or  q                   humidity transform ("log+linear":
                                                           both ln q and q blocks)
     s      = sec(theta)  or  theta                        zenith transform
-    z      = x A + a0                                     standardise + PCA + whiten [K]
+    z      = x A + a0                                     standardise + PCA + scale [K]
     a1     = tanh(z W1_c + e_c w1e_c + b1_c)              hidden layer 1 [H1]
     a_k    = tanh(a_{k-1} W_k,c + b_k,c)                  further hidden layers
     y_c    = a_d w_out,c + z1.l_c + e_c (z1.m_c) + s (z1.n_c),  z1 = [z, 1]
@@ -184,7 +184,7 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     # deviations, not of the raw values (e.g. 250 K)
     X = b.op("Sub", b.op("Concat", *profile, Ts1, s1, axis=1), "feature_center")
 
-    # ---- [z, 1] = X A + a0: whitened PCA coordinates and a constant-1 column carrying
+    # ---- [z, 1] = X A + a0: scaled PCA coordinates and a constant-1 column carrying
     # the first-layer bias. The stored projection also holds (columns K+1..) the
     # residuals off the PCA subspaces, computed by a second Gemm on the flag path only,
     # so that a session without quality_flag skips it.
@@ -297,7 +297,7 @@ def _flags(b: _Builder, layout: GraphLayout, X: str, z1: str, Ts1: str, cols, ln
     Ts - T_0 (lowest level). A 0/1 matrix maps the violation indicators
     (and the per-profile novelty indicator) to per-channel hit counts in one MatMul:
     a per-profile input affects all channels, e_c only channel c.
-    Novelty: the squared Mahalanobis distance ||z||^2 (z is whitened) and the squared
+    Novelty: the squared (diagonal) Mahalanobis distance sum z^2/var(z) and the squared
     reconstruction error of each block, each divided by its training maximum.
     Decoding: with hits (inv, out, nov) in {0, 1} and inv implying out (the training range
     lies inside the physical range),

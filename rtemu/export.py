@@ -3,7 +3,7 @@
 Stage "export" (training -> export -> runtime). The bundle layout:
 
 * shared initializers, fixed by the first training of a bundle: the affine map of the raw
-  features to the whitened PCA coordinates and reconstruction residuals
+  features to the scaled PCA coordinates and reconstruction residuals
   (``projection_weight``/``projection_offset``), the novelty limits, the training bounds of
   the profile variables, the humidity floor;
 * per-channel initializers, stacked on a channel axis with hidden layers zero-padded to
@@ -102,8 +102,9 @@ class FrozenTransform:
     transform = project
 
     def novelty_scores(self, x):
+        """Scores already divided by the bundle's limits (the limits stay the bundle's)."""
         y = (np.asarray(x, dtype=float) - self.center_) @ self.weight + self.offset
-        return (y**2) @ (self.novelty_scale > 0)
+        return (y**2) @ self.novelty_scale
 
 
 # ---- per-channel <-> stacked arrays -------------------------------------------------------
@@ -180,7 +181,7 @@ def _shared_from_emulator(emu: TrainedEmulator) -> tuple[dict, dict]:
     # round-off of the scores
     limits = np.maximum(np.asarray(emu.envelope.novelty_limits, dtype=float), 1e-30) * (1.0 + 1e-3)
     scale = np.zeros((K + 1 + R, 1 + B))
-    scale[:K, 0] = 1.0 / limits[0]
+    scale[:K, 0] = 1.0 / (tr.component_variance_ * limits[0])
     L = tr.n_levels
     for b in range(B):
         scale[K + 1 + b * L: K + 1 + (b + 1) * L, 1 + b] = 1.0 / limits[1 + b]

@@ -11,11 +11,15 @@ emissivity:
   adding q to ln q cut the linear-model residual of the microwave window channel from
   10.1 K to 1.5 K RMS. s(theta) = sec(theta) (the slant path through a plane-parallel
   layer is sec(theta) times the vertical one) or theta in degrees;
-* compressed features z: x standardised per element, each profile block (T, h(q))
-  projected on its leading principal components, and the result (with the
-  standardised Ts and s) whitened jointly (Cholesky), so that z has zero mean and
-  identity covariance over the training set. ``||z||^2`` is then the squared
-  Mahalanobis distance of the state in the compressed space.
+* compressed features z: x standardised per element, each profile block (T, h(q), q)
+  projected on its leading principal components, each block's coordinates divided by
+  the spread of its first component (not whitened: a component keeps its natural,
+  decreasing variance, so the ridge penalty and the network's weight decay damp the
+  directions the training set barely spans - whitening them gave per-level Jacobians
+  with large spurious wiggles), and the standardised Ts and s. z has zero mean;
+  ``sum_k z_k^2 / var(z_k)`` is the squared Mahalanobis distance with the diagonal
+  covariance (components of one block are uncorrelated; cross-block correlation is
+  ignored).
 
 The whole map x -> z is affine, z = x A + a0, and is folded into one matrix in the bundle;
 so is the reconstruction residual of each block off its PCA subspace, used by the
@@ -186,7 +190,10 @@ class FeatureTransform:
     pca_ : dict of str to sklearn.decomposition.PCA or None
         Per block ("temperature", "humidity"); None for an uncompressed block.
     whitening_ : numpy.ndarray
-        W [K, K] with cov(c W) = I for the concatenated block coordinates c.
+        W [K, K], diagonal: 1 / (spread of the block's first component) per column of the
+        concatenated block coordinates c (1 / std for Ts and s).
+    component_variance_ : numpy.ndarray
+        var(z_k) over the training set [K].
     center_ : numpy.ndarray
         x_ref [F]: the training mean of x rounded to float32 (exactly representable in
         the bundle); the folded maps act on x - x_ref.
@@ -229,11 +236,14 @@ class FeatureTransform:
                 pieces.append(s[:, sl])
         pieces.append(s[:, F - 2:])
         c = np.concatenate(pieces, axis=1)
-        cov = np.cov(c, rowvar=False)
-        # c W with W = inverse of the upper Cholesky factor has identity covariance
-        chol = np.linalg.cholesky(cov + 1e-12 * np.eye(cov.shape[0]) * np.trace(cov) / cov.shape[0])
-        self.whitening_ = np.linalg.inv(chol).T
+        scale = []
+        for piece in pieces:
+            ref = piece.std(axis=0)
+            scale.append(np.full(piece.shape[1], ref[0]) if piece is not pieces[-1] else ref)
+        scale = np.concatenate(scale)
+        self.whitening_ = np.diag(1.0 / np.where(scale > 1e-12, scale, 1.0))
         self.block_mean_ = c.mean(axis=0)
+        self.component_variance_ = np.maximum(((c - self.block_mean_) @ self.whitening_).var(axis=0), 1e-30)
         self.center_ = self.scaler_.mean_.astype(np.float32).astype(float)
         self._fold()
         return self
@@ -305,10 +315,10 @@ class FeatureTransform:
         return (np.asarray(x, dtype=float) - self.center_) @ self.projection_ + self.offset_
 
     def novelty_scores(self, x: np.ndarray) -> np.ndarray:
-        """[N, 1 + B]: ||z||^2 and the squared reconstruction error of each block [1]."""
+        """[N, 1 + B]: sum z^2/var(z) and the squared reconstruction error of each block [1]."""
         x = np.asarray(x, dtype=float)
         z = self.project(x)
         r = (x - self.center_) @ self.reconstruction_ + self.reconstruction_offset_
         L = self.n_levels
         blocks = [np.sum(r[:, i * L:(i + 1) * L] ** 2, axis=1) for i in range(self.n_reconstruction_blocks)]
-        return np.stack([np.sum(z**2, axis=1), *blocks], axis=1)
+        return np.stack([np.sum(z**2 / self.component_variance_, axis=1), *blocks], axis=1)

@@ -621,7 +621,9 @@ def _fit_channel_inner(*, channel_id, s, z, e, y, train, val, net, seed, residua
         sd = v.std(axis=0)
         return np.where(sd > 1e-9, sd, 1.0)
 
-    fit = ChannelFit(channel_id=channel_id, ridge=None, z_mean=zt.mean(axis=0), z_scale=spread(zt),
+    # z is not standardised per component: the ridge penalty then damps the directions
+    # the training set barely spans (their coefficients would be pure noise in the Jacobian)
+    fit = ChannelFit(channel_id=channel_id, ridge=None, z_mean=zt.mean(axis=0), z_scale=np.ones(zt.shape[1]),
                      s_mean=float(st.mean()), s_scale=float(spread(st)), e_mean=float(et.mean()),
                      e_scale=float(spread(et)), target_mean=0.0, target_scale=1.0, mlp=None, stats={})
     if residual:
