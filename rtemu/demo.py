@@ -29,7 +29,7 @@ from rtemu.instrument import load_instrument
 INSTRUMENT = "demo-sounder"
 #: Embedded defaults (chosen so the whole demo takes at most about 5 minutes on 2 cores).
 DEFAULTS = {
-    "train_count": 40000,
+    "train_count": 20000,
     "train_seed": 101,
     "test_count": 4000,
     "test_seed": 202,
