@@ -228,3 +228,27 @@ def test_million_profile_lazy_dataset_stays_lazy():
     assert out["brightness_temperature"].chunks is not None
     part = out["brightness_temperature"].isel(profile=slice(0, 3)).compute()
     assert np.isfinite(part.values).all()
+
+
+@pytest.fixture(scope="module")
+def emulator_profiles(tiny_bundle, demo_instrument):
+    from rtemu.runtime import EmulatedOperator
+    from rtemu.sampling import draw_states
+
+    op = EmulatedOperator.load(tiny_bundle)
+    ds = draw_states(4, seed=21, pressure_hpa=op.pressure_hpa, channels=demo_instrument)
+    return op, ds[["air_pressure", "air_temperature", "specific_humidity", "surface_temperature",
+                   "surface_emissivity", "sensor_zenith_angle"]].load()
+
+
+@pytest.mark.parametrize("case", CASES, ids=lambda c: c.name)
+def test_emulated_operator(case, emulator_profiles):
+    op, ds = emulator_profiles
+    _check_outcome(case, lambda d: op.simulate(d, jacobian=True), ds)
+
+
+def test_emulated_operator_refuses_another_grid(emulator_profiles):
+    op, ds = emulator_profiles
+    other = ds.assign(air_pressure=ds["air_pressure"] * 0.98)
+    with pytest.raises(ValueError, match="air_pressure.*emulator's grid"):
+        op.simulate(other)
