@@ -12,7 +12,9 @@ physics(truth) + instrument noise (seed 404), B estimated from the demo's invent
 background error model (seed 405) and one background per column drawn from B (seed 406).
 The emulator run adds the emulator's error to R, as the demo does with its audit figure;
 here it is the per-channel RMS difference emulator - physics on 500 independent states
-(seed 202).
+(seed 202). As in the demo, the emulator recomputes columns outside its training envelope
+with the physics (``fallback="physics"``; ``--no-fallback`` switches that off) and both
+runs accept the flag bits the demo accepts.
 
 Without ``--model`` a small bundle is trained first (``--train-count`` profiles, recipe
 "demo"; a minute or two), in a temporary directory.
@@ -41,7 +43,7 @@ sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 import numpy as np  # noqa: E402
 
 from rtemu import assim  # noqa: E402
-from rtemu.demo import DEFAULTS, _invented_error_samples  # noqa: E402
+from rtemu.demo import _ACCEPTED, DEFAULTS, _invented_error_samples  # noqa: E402
 from rtemu.instrument import load_instrument  # noqa: E402
 from rtemu.runtime import EmulatedOperator, PhysicalOperator  # noqa: E402
 from rtemu.sampling import draw_states  # noqa: E402
@@ -174,6 +176,8 @@ def main(argv=None):
     parser.add_argument("--repeat", type=int, default=3)
     parser.add_argument("--no-matrices", action="store_true",
                         help="var1d(diagnostic_matrices=False): no averaging kernel / S matrices")
+    parser.add_argument("--no-fallback", action="store_true",
+                        help="emulator without physics fallback (the demo uses fallback='physics')")
     parser.add_argument("--threads", type=int, default=None,
                         help="onnxruntime intra-op threads of the emulator (default: its own choice)")
     parser.add_argument("--cprofile", action="store_true", help="profile the emulator run")
@@ -182,19 +186,26 @@ def main(argv=None):
     print(f"python {platform.python_version()}, numpy {np.__version__}, {os.cpu_count()} CPUs, "
           f"load average {os.getloadavg()}")
     with tempfile.TemporaryDirectory() as tmp:
+        # The emulator opens its onnxruntime session at the first call: keep the bundle.
         model = Path(args.model) if args.model else train_small_bundle(Path(tmp), args.train_count)
-        emulated = EmulatedOperator.load(model, threads=args.threads)
-        physical, background, observations, b_matrix = demo_case(args.columns)
-        sigma_emu = emulator_error(emulated, physical)
-    options = {"diagnostic_matrices": not args.no_matrices}
+        measure(args, model)
+
+
+def measure(args, model):
+    emulated = EmulatedOperator.load(model, threads=args.threads,
+                                     fallback=None if args.no_fallback else "physics")
+    physical, background, observations, b_matrix = demo_case(args.columns)
+    sigma_emu = emulator_error(emulated, physical)
+    options = {"diagnostic_matrices": not args.no_matrices, "accept_flags": _ACCEPTED}
     print(f"{args.columns} columns, {background.sizes['level']} levels, {len(physical.channels)} "
           f"channels, control vector {b_matrix.sizes['control_row']}; diagnostic_matrices="
-          f"{options['diagnostic_matrices']}; best of {args.repeat}")
+          f"{options['diagnostic_matrices']}; emulator fallback {emulated.fallback}, threads "
+          f"{emulated.threads}; best of {args.repeat}")
 
     timed_emu, timed_phys = TimedOperator(emulated), TimedOperator(physical)
     # Warm-up: onnxruntime session, first-call caches.
     assim.var1d(timed_emu, background.isel(profile=slice(0, 2)), observations.isel(profile=slice(0, 2)),
-                b_matrix=b_matrix, emulator_error=sigma_emu)
+                b_matrix=b_matrix, emulator_error=sigma_emu, accept_flags=_ACCEPTED)
     emu = run(timed_emu, background, observations, b_matrix, args.repeat, emulator_error=sigma_emu, **options)
     phys = run(timed_phys, background, observations, b_matrix, args.repeat, **options)
     report("emulator", emu)
