@@ -159,11 +159,29 @@ def test_column_solver_reaches_its_targets():
     t = atm.us_standard_atmosphere_1976(p)[None, :] + rng.uniform(-20, 25, (n, 1))
     weight = sampling._sigmoid((np.log(p)[None, :] - np.log(200.0)) / 0.1) * np.ones((n, 1))
     shape = -2.0 * np.clip((p[0] - p) / (p[0] - 200.0), 0, 1.2)[None, :] * np.ones((n, 1))
-    humidity = sampling._Humidity(p, t, weight, shape, np.full(n, 3e-6))
+    humidity = sampling._Humidity(p, t, weight, shape, np.full((n, p.size), np.log(3e-6)))
     dry, wet = humidity.column(np.full(n, -40.0)), humidity.column(np.full(n, 40.0))
     target = dry * (wet / dry) ** rng.uniform(0, 1, n)
     shift = sampling._solve_shift(humidity, target, -40.0, 40.0, dry, wet)
     np.testing.assert_allclose(humidity.column(shift), target, rtol=1e-10)
+
+
+def test_stratospheric_humidity_has_vertical_structure(inst):
+    # Generator version 2: stratospheric ln q is not one value per profile but varies with
+    # height (drawn gradient + correlated perturbation), so a background with some vertical
+    # structure there stays inside the emulator's training span.
+    ds = sampling.draw_states(2000, seed=3, channels=inst)
+    p = ds.air_pressure.values
+    lnq = np.log(ds.specific_humidity.transpose("profile", "level").values)
+    i50, i10, i2 = (int(np.argmin(abs(p - v))) for v in (50.0, 10.0, 2.0))
+    assert np.std(lnq[:, i10] - lnq[:, i50]) > 0.1
+    # the second difference is not zero either (not a straight line in every profile)
+    curvature = lnq[:, i2] - 2 * lnq[:, i10] + lnq[:, i50]
+    assert np.std(curvature) > 0.05
+    # and the values stay plausible: 1-20 mg/kg (0.5 % / 99.5 % quantiles; common practice:
+    # stratospheric water vapour is a few ppmv)
+    q10 = ds.specific_humidity.transpose("profile", "level").values[:, i10]
+    assert 1e-6 < np.quantile(q10, 0.005) and np.quantile(q10, 0.995) < 2e-5
 
 
 # --- determinism ------------------------------------------------------------------------------
