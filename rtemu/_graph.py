@@ -6,10 +6,13 @@ the graph evaluates, written out as nodes), and the quality-flag bitmask.
 
 Function evaluated (per profile n, channel c; all linear maps folded at export)::
 
-    x      = [T, h(q), (q), Ts, s(theta)] - x_ref         shared raw features [F = 2L + 2
-                                                          or 3L + 2], centred (float32 accuracy)
+    x      = [T, h(q), (q), (u), Ts, s(theta)] - x_ref    shared raw features [F = B L + 2
+                                                          for B profile blocks], centred
+                                                          (float32 accuracy)
     h(q)   = ln(max(q, q_floor))  or  q                   humidity transform ("log+linear":
                                                           both ln q and q blocks)
+    u      = ln(q M + W_0)                                log water-vapour path above each
+                                                          level (optional block; M [L, L])
     s      = sec(theta)  or  theta                        zenith transform
     z      = x A + a0                                     standardise + PCA + scale [K]
     a1     = tanh(z W1_c + e_c w1e_c + b1_c)              hidden layer 1 [H1]
@@ -22,7 +25,8 @@ Jacobian (chain rule, reverse order)::
     g_k-1  = (g_k W_k,c^T) (1 - a_{k-1}^2)
     dy/dz  = g_1 W1_c^T + l_c + e_c m_c + s n_c  (z rows);  dy/de = g_1 . w1e_c + z1.m_c
     dy/dx  = dy/dz A^T      (s(theta) is not differentiated)
-    dy/dT  = dy/dx[:L];  dy/dq = dy/dx[L:2L] h'(q) (+ dy/dx[2L:3L]);  dy/dTs = dy/dx[F-2]
+    dy/dT  = dy/dx[:L];  dy/dq = dy/dx[L:2L] h'(q) (+ dy/dx[2L:3L])
+             (+ (dy/du / (q M + W_0)) M^T);  dy/dTs = dy/dx[F-2]
 
 Per-channel tensors carry the channel as their leading axis ([C, ...]); hidden layers of
 different widths are zero-padded to a common width, which leaves the function and its
@@ -82,10 +86,11 @@ class GraphLayout:
     humidity: str = "log+linear"
     zenith: str = "secant"
     n_reconstruction_blocks: int = 2
+    water_path: bool = False
 
     @property
     def n_profile_blocks(self) -> int:
-        return 3 if self.humidity == "log+linear" else 2
+        return 2 + (self.humidity == "log+linear") + bool(self.water_path)
 
     @property
     def n_features(self) -> int:
@@ -172,7 +177,11 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
         x_q = b.op("Log", q_clip)
     else:
         x_q = q
-    profile = [T, x_q, q] if layout.n_profile_blocks == 3 else [T, x_q]
+    profile = [T, x_q, q] if layout.humidity == "log+linear" else [T, x_q]
+    if layout.water_path:
+        # W + W_0 > 0 for any q >= 0 (M >= 0): the logarithm needs no clip
+        path = b.op("Add", b.op("MatMul", q, "water_path_matrix"), "water_path_floor")  # [N, L]
+        profile.append(b.op("Log", path))
     if layout.zenith == "secant":
         ang = b.op("Mul", theta, b.const("degree", math.pi / 180.0))
         x_theta = b.op("Reciprocal", b.op("Cos", ang))
@@ -247,17 +256,30 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
 
     back(0, L, out="jacobian_air_temperature")
     jq = "jacobian_specific_humidity"
-    three = layout.n_profile_blocks == 3
+    terms = []  # dy/dq [N, C, L] through each humidity block
     if log_q:
-        d_xq = back(L, 2 * L)
         # d ln(max(q, floor)) / dq = 1/q above the floor, 0 below (the clip is flat there)
         above = b.op("Cast", b.op("Greater", q, "humidity_floor"), to=b.elem)
         dh = b.op("Unsqueeze", b.op("Div", above, q_clip), ax1)  # [N, 1, L]
-        d_xq = b.op("Mul", d_xq, dh, out=None if three else jq)
-        if three:
-            b.op("Add", d_xq, back(2 * L, 3 * L), out=jq)
+        terms.append(b.op("Mul", back(L, 2 * L), dh))
     else:
-        back(L, 2 * L, out=jq)
+        terms.append(back(L, 2 * L))
+    start = 2 * L
+    if layout.humidity == "log+linear":
+        terms.append(back(start, start + L))
+        start += L
+    if layout.water_path:
+        # du_i/dq_k = M[k, i] / (W_i + W_0): scale by 1/(W + W_0), then one 2-D product by M^T
+        d_u = b.op("Mul", back(start, start + L), b.op("Unsqueeze", b.op("Reciprocal", path), ax1))
+        d_u = b.op("MatMul", b.op("Reshape", d_u, b.ints([-1, L])),
+                   b.op("Transpose", "water_path_matrix", perm=[1, 0]))
+        terms.append(b.op("Reshape", d_u, b.ints([-1, C, L])))
+    while len(terms) > 2:
+        terms[:2] = [b.op("Add", terms[0], terms[1])]
+    if len(terms) == 2:
+        b.op("Add", terms[0], terms[1], out=jq)
+    else:
+        b.op("Identity", terms[0], out=jq)
     # a [.., 1] matrix, not a vector: onnxruntime runs MatMul by a 1-D operand as one
     # small product per profile (measured 10x slower)
     F = layout.n_features
@@ -362,6 +384,9 @@ def primary_shapes(layout: GraphLayout) -> dict[str, tuple[int, ...]]:
         "layer1_emissivity": (C, 1, h[0]),
         "output_weight": (C, h[-1], 1),
     }
+    if layout.water_path:
+        shapes["water_path_matrix"] = (L, L)
+        shapes["water_path_floor"] = ()
     for k in range(2, len(h) + 1):
         shapes[layer_weight_name(k)] = (C, h[k - 2], h[k - 1])
         shapes[layer_bias_name(k)] = (C, 1, h[k - 1])

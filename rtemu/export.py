@@ -30,7 +30,7 @@ import onnx
 from rtemu import _graph, flags as _flags
 from rtemu import bundle as _bundle
 from rtemu._io import write_bytes_atomic
-from rtemu.features import FeatureConfig
+from rtemu.features import FeatureConfig, water_path_matrix
 from rtemu.training import (
     PHYSICAL_BOUNDS,
     Envelope,
@@ -75,7 +75,7 @@ _SHAPES = {
 #: Per-channel arrays: name -> channel axis in the stacked array.
 _LINEAR_COLUMNS = ("linear_weight", "linear_emissivity_weight", "linear_zenith_weight")
 _SHARED = ("feature_center", "projection_weight", "projection_offset", "novelty_scale", "humidity_floor",
-           "log_pressure_minus_bolton_a")
+           "log_pressure_minus_bolton_a", "water_path_matrix", "water_path_floor")
 
 
 class FrozenTransform:
@@ -193,6 +193,9 @@ def _shared_from_emulator(emu: TrainedEmulator) -> tuple[dict, dict]:
         "humidity_floor": np.float32(emu.config.humidity_floor),
         "log_pressure_minus_bolton_a": (np.log(emu.pressure_hpa) - 17.67).astype(np.float32),
     }
+    if emu.config.water_path:
+        shared["water_path_matrix"] = water_path_matrix(emu.pressure_hpa).astype(np.float32)
+        shared["water_path_floor"] = np.float32(emu.config.water_path_floor)
     bounds = {name: (np.atleast_1d(emu.envelope.lower[name]).astype(np.float32),
                      np.atleast_1d(emu.envelope.upper[name]).astype(np.float32))
               for name in _PROFILE_VARIABLES}
@@ -256,6 +259,7 @@ def _metadata(*, layout, config, instrument, channel_ids, grid, bounds, parts, l
             "n_components": layout.n_components, "hidden": list(layout.hidden),
             "humidity": layout.humidity, "zenith": layout.zenith,
             "n_reconstruction_blocks": layout.n_reconstruction_blocks, "opset": _graph.OPSET,
+            "water_path": layout.water_path,
             "level_order": "surface first" if grid[0] > grid[-1] else "top first",
         }, sort_keys=True),
         "rtemu.features": config.to_json(),
@@ -366,7 +370,7 @@ def build_bundle_model(emu: TrainedEmulator, *, base=None, dtype=np.float32):
     blocks = sum(1 for _, k in cfg.blocks() if k)
     layout = _graph.GraphLayout(n_levels=emu.pressure_hpa.size, n_channels=len(ids), n_components=K,
                                 hidden=hidden, humidity=cfg.humidity, zenith=cfg.zenith,
-                                n_reconstruction_blocks=blocks)
+                                n_reconstruction_blocks=blocks, water_path=cfg.water_path)
     arrays = _assemble(shared, bounds, parts, layout)
     model = _graph.build_model(layout, arrays, dtype=dtype)
     meta = _metadata(layout=layout, config=cfg, instrument=instrument, channel_ids=ids,

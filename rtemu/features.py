@@ -3,13 +3,20 @@
 Every channel's emulator sees the same shared features of a profile plus its own surface
 emissivity:
 
-* raw features x = [T (L levels) [K], h(q) (L levels), (q (L levels)), Ts [K], s(theta)],
+* raw features x = [T (L levels) [K], h(q) (L levels), (q (L levels)), (ln(W + W_0)
+  (L levels)), Ts [K], s(theta)],
   with h(q) = ln(max(q, q_floor)) or q, and optionally q itself besides ln q
   (``"log+linear"``): the radiance responds to ln q where the water vapour is opaque
   (humidity channels) and to q where it is optically thin (the optical depth, hence
   1 - transmittance, is proportional to the water path); measured on the demo sounder,
   adding q to ln q cut the linear-model residual of the microwave window channel from
-  10.1 K to 1.5 K RMS. s(theta) = sec(theta) (the slant path through a plane-parallel
+  10.1 K to 1.5 K RMS. Optionally (``water_path``) the log of the water-vapour path
+  above each level, W_i = sum_{j >= i} qbar_j dm_j [kg m-2] (layers j between levels j
+  and j + 1, qbar_j the layer-mean q, dm_j = |p_j - p_j+1| 100 / g the layer's air mass
+  [kg m-2]; W = q M is linear in q, see :func:`water_path_matrix`), plus a floor W_0:
+  the transmittance from level i to space of a water-vapour band is exp(-k W_i sec(theta))
+  to first order, so ln W_i decides where a humidity channel's weighting function sits
+  (it peaks near k W_i sec(theta) = 1). s(theta) = sec(theta) (the slant path through a plane-parallel
   layer is sec(theta) times the vertical one) or theta in degrees;
 * compressed features z: x standardised per element, each profile block (T, h(q), q)
   projected on its leading principal components, each block's coordinates divided by
@@ -39,7 +46,10 @@ import numpy as np
 from sklearn.decomposition import PCA
 from sklearn.preprocessing import StandardScaler
 
-__all__ = ["FeatureConfig", "FeatureTransform", "raw_features", "humidity_transform", "zenith_transform"]
+from rtemu.constants import STANDARD_GRAVITY
+
+__all__ = ["FeatureConfig", "FeatureTransform", "raw_features", "humidity_transform", "zenith_transform",
+           "water_path_matrix", "water_path_transform"]
 
 HUMIDITY_TRANSFORMS = ("log+linear", "log", "linear")
 ZENITH_TRANSFORMS = ("secant", "degrees")
@@ -63,6 +73,13 @@ class FeatureConfig:
     temperature_components, humidity_components, linear_humidity_components : int
         Principal components kept per profile block (T, h(q), and q for "log+linear")
         [1]; 0 keeps the block uncompressed (then it has no reconstruction residual).
+    water_path : bool
+        Add the block ln(W + W_0) of the water-vapour path above each level.
+    water_path_components : int
+        Principal components kept of that block [1] (0: uncompressed).
+    water_path_floor : float
+        W_0 [kg m-2]: keeps the logarithm finite at the top level (W = 0 there) and smooth
+        where the path is negligible for any channel.
     """
 
     humidity: str = "log+linear"
@@ -71,6 +88,9 @@ class FeatureConfig:
     temperature_components: int = 24
     humidity_components: int = 24
     linear_humidity_components: int = 8
+    water_path: bool = False
+    water_path_components: int = 12
+    water_path_floor: float = 1e-3
 
     def __post_init__(self):
         if self.humidity not in HUMIDITY_TRANSFORMS:
@@ -79,7 +99,12 @@ class FeatureConfig:
             raise ValueError(f"zenith transform must be one of {ZENITH_TRANSFORMS}, got {self.zenith!r}")
         if not (self.humidity_floor > 0 and np.isfinite(self.humidity_floor)):
             raise ValueError(f"humidity_floor must be a positive number [kg kg-1], got {self.humidity_floor!r}")
-        for name in ("temperature_components", "humidity_components", "linear_humidity_components"):
+        if not isinstance(self.water_path, bool):
+            raise ValueError(f"water_path must be true or false, got {self.water_path!r}")
+        if not (self.water_path_floor > 0 and np.isfinite(self.water_path_floor)):
+            raise ValueError(f"water_path_floor must be a positive number [kg m-2], got {self.water_path_floor!r}")
+        for name in ("temperature_components", "humidity_components", "linear_humidity_components",
+                     "water_path_components"):
             value = getattr(self, name)
             if isinstance(value, bool) or not isinstance(value, int) or value < 0:
                 raise ValueError(f"{name} must be an integer >= 0, got {value!r}")
@@ -96,6 +121,8 @@ class FeatureConfig:
         out = [("temperature", self.temperature_components), ("humidity", self.humidity_components)]
         if self.humidity == "log+linear":
             out.append(("humidity_linear", self.linear_humidity_components))
+        if self.water_path:
+            out.append(("water_path", self.water_path_components))
         return tuple(out)
 
     def n_features(self, n_levels: int) -> int:
@@ -143,9 +170,63 @@ def zenith_transform(sensor_zenith_angle, config: FeatureConfig) -> np.ndarray:
     return theta
 
 
+def water_path_matrix(pressure_hpa) -> np.ndarray:
+    """M [L, L] with W = q M: water-vapour path above each level [kg m-2] per [kg kg-1].
+
+    W_i = sum over the layers j above level i of qbar_j dm_j, with qbar_j the arithmetic
+    mean of q at the layer's two levels and dm_j = |p_a - p_b| 100 / g [kg m-2] its air
+    mass per unit area (hydrostatic balance, dp = -rho g dz). W is zero at the top level.
+    Works for either level order (the top is the level of lowest pressure).
+
+    Parameters
+    ----------
+    pressure_hpa : array_like
+        Level pressures p [hPa], shape (L,), strictly monotonic.
+
+    Returns
+    -------
+    numpy.ndarray
+        M [kg m-2 (kg kg-1)-1], shape (L, L); M[k, i] = dW_i / dq_k.
+    """
+    p = np.asarray(pressure_hpa, dtype=float)
+    if p.ndim != 1 or p.size < 2 or not (np.all(np.diff(p) < 0) or np.all(np.diff(p) > 0)):
+        raise ValueError("pressure_hpa must be a strictly monotonic level grid of at least 2 levels")
+    order = np.argsort(-p)  # surface first
+    ps = p[order]
+    L = ps.size
+    dm = (ps[:-1] - ps[1:]) * 100.0 / STANDARD_GRAVITY
+    layer = np.zeros((L, L - 1))  # d qbar_j / d q_k dm_j
+    layer[np.arange(L - 1), np.arange(L - 1)] = 0.5 * dm
+    layer[np.arange(1, L), np.arange(L - 1)] += 0.5 * dm
+    above = (np.arange(L - 1)[:, None] >= np.arange(L)[None, :]).astype(float)
+    ms = layer @ above  # surface-first M
+    out = np.empty_like(ms)
+    out[np.ix_(order, order)] = ms
+    return out
+
+
+def water_path_transform(specific_humidity, matrix, config: FeatureConfig) -> np.ndarray:
+    """ln(W + W_0) with W = q M (see :func:`water_path_matrix`).
+
+    Parameters
+    ----------
+    specific_humidity : array_like
+        q [kg kg-1], shape (N, L).
+    matrix : array_like
+        M [kg m-2 (kg kg-1)-1], shape (L, L).
+    config : FeatureConfig
+
+    Returns
+    -------
+    numpy.ndarray
+        ln(W + W_0) [ln(kg m-2)], shape (N, L).
+    """
+    return np.log(np.asarray(specific_humidity, dtype=float) @ matrix + config.water_path_floor)
+
+
 def raw_features(air_temperature, specific_humidity, surface_temperature, sensor_zenith_angle,
-                 config: FeatureConfig) -> np.ndarray:
-    """Shared raw features x = [T, h(q), Ts, s(theta)].
+                 config: FeatureConfig, pressure_hpa=None) -> np.ndarray:
+    """Shared raw features x = [T, h(q), (q), (ln(W + W_0)), Ts, s(theta)].
 
     Parameters
     ----------
@@ -158,17 +239,23 @@ def raw_features(air_temperature, specific_humidity, surface_temperature, sensor
     sensor_zenith_angle : array_like
         theta [degree], shape (N,).
     config : FeatureConfig
+    pressure_hpa : array_like, optional
+        Level pressures [hPa], shape (L,), same level order; required with ``water_path``.
 
     Returns
     -------
     numpy.ndarray
-        x, shape (N, F) with F = 2 L + 2, or 3 L + 2 for "log+linear" [mixed units: K,
-        ln(kg kg-1), kg kg-1, K, 1].
+        x, shape (N, F) with F = B L + 2 for B profile blocks [mixed units: K,
+        ln(kg kg-1), kg kg-1, ln(kg m-2), K, 1].
     """
     T = np.asarray(air_temperature, dtype=float)
     parts = [T, humidity_transform(specific_humidity, config)]
     if config.humidity == "log+linear":
         parts.append(np.asarray(specific_humidity, dtype=float))
+    if config.water_path:
+        if pressure_hpa is None:
+            raise ValueError("raw_features: pressure_hpa is required with the water_path feature")
+        parts.append(water_path_transform(specific_humidity, water_path_matrix(pressure_hpa), config))
     parts += [np.asarray(surface_temperature, dtype=float)[:, None],
               zenith_transform(sensor_zenith_angle, config)[:, None]]
     return np.concatenate(parts, axis=1)

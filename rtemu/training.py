@@ -136,6 +136,9 @@ SCHEMA: dict[str, dict[str, Any]] = {
         "temperature_components": _int(0),
         "humidity_components": _int(0),
         "linear_humidity_components": _int(0),
+        "water_path": _bool,
+        "water_path_components": _int(0),
+        "water_path_floor": _float(0.0, strict_lo=True),
     },
     "linear": {"residual": _bool, "ridge_alpha": _float(0.0)},
     "network": {k: v for k, v in _NETWORK.items() if k != "ridge_alpha"},
@@ -720,7 +723,7 @@ class TrainedEmulator:
                 sensor_zenith_angle) -> np.ndarray:
         """BT [K], shape (N, C), through the scikit-learn objects (levels surface-first)."""
         x = raw_features(air_temperature, specific_humidity, surface_temperature, sensor_zenith_angle,
-                         self.config)
+                         self.config, self.pressure_hpa)
         z = self.transform.transform(x)
         e = np.asarray(surface_emissivity, dtype=float)
         return np.stack([self.channels[c].predict(z, x[:, -1], e[:, i]) for i, c in enumerate(self.channel_ids)],
@@ -818,7 +821,7 @@ def fit_emulator(data, recipe, *, channels=None, transform=None, workers=None, p
     config = recipe.feature_config()
     L = data.pressure_hpa.size
     x = raw_features(data.air_temperature[rows], data.specific_humidity[rows],
-                     data.surface_temperature[rows], data.sensor_zenith_angle[rows], config)
+                     data.surface_temperature[rows], data.sensor_zenith_angle[rows], config, data.pressure_hpa)
     if transform is None:
         transform = FeatureTransform(config=config, n_levels=L).fit(x[train])
     elif transform.n_levels != L:

@@ -25,6 +25,8 @@ validation_fraction = 0.2
 [features]
 temperature_components = 6
 humidity_components = 5
+water_path = true
+water_path_components = 4
 [network]
 hidden_layers = [10, 7]
 max_iter = 60
@@ -79,7 +81,8 @@ def _layout(b):
     g = b.graph
     return _graph.GraphLayout(n_levels=g["n_levels"], n_channels=g["n_channels"], n_components=g["n_components"],
                               hidden=tuple(g["hidden"]), humidity=g["humidity"], zenith=g["zenith"],
-                              n_reconstruction_blocks=g["n_reconstruction_blocks"])
+                              n_reconstruction_blocks=g["n_reconstruction_blocks"],
+                              water_path=g.get("water_path", False))
 
 
 def test_flag_bits_match_rtemu_flags():
@@ -92,8 +95,9 @@ def test_graph_is_valid_onnx_and_lean(trained):
     onnx.checker.check_model(model, full_check=True)
     assert model.opset_import[0].version == _graph.OPSET
     # nodes on initializers only are folded at session creation; what runs per call stays
-    # small (each node costs ~1 us in a single-profile call)
-    assert len(_graph.runtime_nodes(model)) <= 95
+    # small (each node costs ~1 us in a single-profile call); the water-path block (on in
+    # this recipe) adds 12 (95 without it)
+    assert len(_graph.runtime_nodes(model)) <= 107
 
 
 def test_onnx_matches_in_memory_sklearn_model(trained):
@@ -123,7 +127,7 @@ def test_forward_cross_checked_with_skl2onnx(trained):
     bundle_bt = _run(make_session(trained["path"]), feeds, ["brightness_temperature"])["brightness_temperature"]
     x = raw_features(*(feeds[n].astype(float) for n in ("air_temperature", "specific_humidity",
                                                          "surface_temperature", "sensor_zenith_angle")),
-                     emu.config)
+                     emu.config, data.pressure_hpa)
     z = emu.transform.transform(x)  # through the sklearn scaler/PCA objects
     for i, cid in enumerate(emu.channel_ids):
         fit = emu.channels[cid]

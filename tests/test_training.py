@@ -128,7 +128,7 @@ def test_folded_parameters_reproduce_the_sklearn_prediction(data_path, recipe_pa
     emu = fit_emulator(data, recipe_path, channels=["mw-win", "ir-t2"], workers=1, progress=False)
     cfg: FeatureConfig = emu.config
     x = raw_features(data.air_temperature, data.specific_humidity, data.surface_temperature,
-                     data.sensor_zenith_angle, cfg)
+                     data.sensor_zenith_angle, cfg, data.pressure_hpa)
     z = emu.transform.transform(x)
     z1 = np.concatenate([z, np.ones((len(z), 1))], axis=1)
     s = x[:, -1]
