@@ -63,7 +63,7 @@ def _fail(message: str):
 
 
 def _dims(ds: xr.Dataset, name: str, allowed: list[tuple[str, ...]]) -> tuple[str, ...]:
-    dims = ds[name].dims
+    dims = ds.variables[name].dims
     for option in allowed:
         if set(dims) == set(option) and len(dims) == len(option):
             return option
@@ -73,10 +73,20 @@ def _dims(ds: xr.Dataset, name: str, allowed: list[tuple[str, ...]]) -> tuple[st
     )
 
 
-def _values(ds, name, order, da=None):
-    da = ds[name] if da is None else da
-    scale, offset = unit_conversion(name, da.attrs.get("units"))
-    values = np.asarray(da.transpose(*order).values, dtype=float)
+def _values(ds, name, order, take=None):
+    """Canonical-unit values of ``ds[name]`` with axes in ``order`` (float64, a new array).
+
+    Reads the Variable, not a DataArray: building DataArrays and transposing them through
+    xarray cost more than all the checks together on a one-profile call. ``take``
+    optionally re-orders the ``channel`` axis by position.
+    """
+    var = ds.variables[name]
+    scale, offset = unit_conversion(name, var.attrs.get("units"))
+    values = np.asarray(var.values, dtype=float)
+    if var.dims != order:
+        values = np.transpose(values, [var.dims.index(d) for d in order])
+    if take is not None:
+        values = values[..., take]
     return values * scale + offset, scale
 
 
@@ -126,34 +136,38 @@ def prepare_inputs(
     e_order = _dims(dataset, "surface_emissivity", [("profile",), ("profile", "channel")])
     nchan = len(channel_ids)
 
-    emissivity_da = dataset["surface_emissivity"]
+    take = None
     if "channel" in e_order:
         if "channel" in dataset.coords:
-            have = [str(c) for c in dataset["channel"].values]
-            unknown = [c for c in have if c not in channel_ids]
-            absent = [c for c in channel_ids if c not in have]
-            if unknown or absent:
-                _fail(
-                    f"surface_emissivity: channel coordinate does not match the operator's channels "
-                    f"(unknown: {unknown}, missing: {absent}) (rule: one value per operator channel; "
-                    f"select with dataset.sel(channel=[...]))"
-                )
-            emissivity_da = emissivity_da.sel(channel=list(channel_ids))
+            have = [str(c) for c in dataset.variables["channel"].values]
+            if have != list(channel_ids):
+                unknown = [c for c in have if c not in channel_ids]
+                absent = [c for c in channel_ids if c not in have]
+                if unknown or absent:
+                    _fail(
+                        f"surface_emissivity: channel coordinate does not match the operator's channels "
+                        f"(unknown: {unknown}, missing: {absent}) (rule: one value per operator channel; "
+                        f"select with dataset.sel(channel=[...]))"
+                    )
+                if len(set(have)) != len(have):
+                    repeated = sorted({c for c in have if have.count(c) > 1})
+                    _fail(f"surface_emissivity: channel(s) {repeated} repeated in the channel coordinate "
+                          "(rule: one value per operator channel)")
+                # Positions instead of .sel: the same values, without an index lookup.
+                take = np.array([have.index(c) for c in channel_ids])
         elif dataset.sizes["channel"] != nchan:
             _fail(f"surface_emissivity: {dataset.sizes['channel']} channels, operator has {nchan} "
                   "(rule: one value per operator channel)")
-    # Read emissivity from the re-ordered DataArray itself: assigning it back into the
-    # dataset would re-align it to the caller's channel order.
     ds = dataset
 
     p, p_scale = _values(ds, "air_pressure", p_order)
-    p = np.broadcast_to(p, (n, nlev)).copy()
+    p = np.broadcast_to(p, (n, nlev)).copy() if p.ndim == 1 else p
     t, t_scale = _values(ds, "air_temperature", ("profile", "level"))
     q, q_scale = _values(ds, "specific_humidity", ("profile", "level"))
     ts, ts_scale = _values(ds, "surface_temperature", ("profile",))
     zen, z_scale = _values(ds, "sensor_zenith_angle", ("profile",))
-    em, e_scale = _values(ds, "surface_emissivity", e_order, da=emissivity_da)
-    em = np.broadcast_to(em.reshape(n, -1), (n, nchan)).copy()
+    em, e_scale = _values(ds, "surface_emissivity", e_order, take=take)
+    em = np.broadcast_to(em.reshape(n, -1), (n, nchan)).copy() if em.ndim == 1 else em
 
     bad = np.zeros(n, dtype=bool)
     problems: list[str] = []
@@ -196,9 +210,10 @@ def prepare_inputs(
     if valid.any():
         # Not an error: the clear-sky model is defined for any q < 0.1, but a state above
         # saturation is one it cannot represent; operators flag it (rtemu.flags.SUPERSATURATED).
+        rows = slice(None) if valid.all() else valid  # a slice: no copies in the usual case
         with np.errstate(invalid="ignore"):
-            q_sat = saturation_specific_humidity(t[valid], p[valid])
-        supersaturated[valid] = (q[valid] > q_sat * (1.0 + SATURATION_TOLERANCE)).any(axis=1)
+            q_sat = saturation_specific_humidity(t[rows], p[rows])
+        supersaturated[rows] = (q[rows] > q_sat * (1.0 + SATURATION_TOLERANCE)).any(axis=1)
     if bad.any():
         # Give invalid profiles a harmless valid stand-in so the batch computes; their
         # outputs are set to NaN by the caller. A valid profile of the batch serves if any.
@@ -211,8 +226,11 @@ def prepare_inputs(
             arr[bad] = value
 
     flipped = p[:, 0] < p[:, -1]
-    for arr in (p, t, q):
-        arr[flipped] = arr[flipped][:, ::-1]
+    if flipped.all():
+        p, t, q = (np.ascontiguousarray(arr[:, ::-1]) for arr in (p, t, q))
+    elif flipped.any():
+        for arr in (p, t, q):
+            arr[flipped] = arr[flipped][:, ::-1]
 
     return Prepared(
         pressure_hpa=p,

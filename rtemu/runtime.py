@@ -31,7 +31,10 @@ ErrorMode = Literal["raise", "mask"]
 
 
 def _is_lazy(dataset: xr.Dataset) -> bool:
-    return any(v.chunks is not None for v in dataset.variables.values())
+    # The numpy test first: Variable.chunks goes through protocol checks that cost tens
+    # of microseconds per variable.
+    return any(not isinstance(v.data, np.ndarray) and v.chunks is not None
+               for v in dataset.variables.values())
 
 
 def _output_template(dataset: xr.Dataset, channel_ids, jacobian: bool) -> xr.Dataset:
@@ -50,6 +53,38 @@ def _output_template(dataset: xr.Dataset, channel_ids, jacobian: bool) -> xr.Dat
             arrays[name] = da.empty((n, nchan), chunks=(pchunks, nchan))
     flag = da.zeros((n, nchan), chunks=(pchunks, nchan), dtype=np.int32)
     return _physics.label_outputs(arrays, dataset, channel_ids, flag)
+
+
+def _channel_coords(channel_ids) -> xr.Coordinates:
+    """The ``channel`` coordinate of an operator's outputs, with its index, built once."""
+    return xr.Coordinates({"channel": np.array(list(channel_ids), dtype=object)})
+
+
+def _label_outputs(arrays: dict, dataset: xr.Dataset, channel: xr.Coordinates, flag) -> xr.Dataset:
+    """The Dataset of :func:`rtemu.physics.label_outputs`, built from Variables.
+
+    Same variables, attributes and coordinates (the ``channel`` one from ``channel``, see
+    :func:`_channel_coords`; from ``dataset`` every coordinate that a
+    ``dataset.coords["profile"]`` or ``["level"]`` DataArray would bring along, with its
+    index), but no DataArray is made and no index is rebuilt: on a one-profile call
+    that labelling cost more than the emulator itself.
+    """
+    names = []
+    for dim in ("profile", "level"):
+        if dim in dataset.coords:
+            names += [k for k, v in dataset.coords.variables.items()
+                      if set(v.dims) <= {dim} and k not in names]
+    variables = {k: dataset.variables[k] for k in names}
+    indexes = {k: dataset.xindexes[k] for k in names if k in dataset.xindexes}
+    # A shallow copy: a caller editing the output's attributes must not edit the cache.
+    variables["channel"] = channel.variables["channel"].copy(deep=False)
+    indexes["channel"] = channel.xindexes["channel"]
+    data = {}
+    for name, values in arrays.items():
+        dims = ("profile", "channel", "level") if values.ndim == 3 else ("profile", "channel")
+        data[name] = xr.Variable(dims, values, _physics.output_attrs(name))
+    data["quality_flag"] = xr.Variable(("profile", "channel"), flag.astype(np.int32), _flags.flag_attrs())
+    return xr.Dataset(data, coords=xr.Coordinates(variables, indexes=indexes))
 
 
 class _OperatorBase:
@@ -125,14 +160,21 @@ class PhysicalOperator(_OperatorBase):
         self.instrument = load_instrument(instrument)
         self.errors = errors
         self.block_size = block_size
+        self._channel_coords = _channel_coords(self.instrument.channel_ids)
 
     def __repr__(self):
         return f"PhysicalOperator({self.instrument.name!r}, {len(self.channels)} channels)"
 
     def _simulate_eager(self, dataset, jacobian):
-        return _physics.simulate(
-            self.instrument, dataset, jacobian, errors=self.errors, block_size=self.block_size
+        # rtemu.physics.simulate with the cheaper labelling of the emulator's path, so that
+        # both operators pay the same per-call overhead (tests: identical outputs).
+        _, prep, arrays, flag = _physics._compute(
+            self.instrument, dataset, jacobian, self.errors, self.block_size
         )
+        out = _label_outputs(arrays, dataset, self._channel_coords, flag)
+        if prep.problems:
+            out.attrs["invalid_input_summary"] = "; ".join(prep.problems)
+        return out
 
 
 # -- emulator -----------------------------------------------------------------------------
@@ -210,6 +252,10 @@ class EmulatedOperator(_OperatorBase):
             self.model_instrument if channels is None else self.model_instrument.select(list(channels))
         )
         self._columns = np.array([model_ids.index(c) for c in self.instrument.channel_ids])
+        # None when the operator serves every channel of the bundle in its order: no
+        # emissivity scatter and no output gather then.
+        self._subset = None if self._columns.tolist() == list(range(len(model_ids))) else self._columns
+        self._channel_coords = _channel_coords(self.instrument.channel_ids)
         grid = np.asarray(self.bundle.pressure_hpa, dtype=float)
         self._top_first = grid[0] < grid[-1]
         self._grid_surface_first = grid[::-1] if self._top_first else grid
@@ -259,60 +305,88 @@ class EmulatedOperator(_OperatorBase):
                 f"the bundle's grid); first offending profile index {first}"
             )
 
-    def run_arrays(self, prep, jacobian: bool) -> dict:
-        """Run the session on prepared (surface-first, canonical) arrays, all channels.
-
-        Returns float64 arrays over the bundle's channels, surface-first levels.
-        """
+    def _run_session(self, prep, jacobian: bool) -> dict:
+        """onnxruntime's outputs over all bundle channels, as it returns them: float32,
+        levels in the bundle's order, ``quality_flag`` int32."""
         session = self._session(jacobian)
         n = prep.air_temperature.shape[0]
         order = slice(None, None, -1) if self._top_first else slice(None)
-        nmodel = len(self.model_instrument.channels)
-        emissivity = np.full((n, nmodel), 0.95)
-        emissivity[:, self._columns] = prep.surface_emissivity
+        if self._subset is None:
+            emissivity = prep.surface_emissivity.astype(np.float32)
+        else:
+            emissivity = np.full((n, len(self.model_instrument.channels)), 0.95, dtype=np.float32)
+            emissivity[:, self._subset] = prep.surface_emissivity
         feeds_all = {
             "air_temperature": prep.air_temperature[:, order].astype(np.float32),
             "specific_humidity": prep.specific_humidity[:, order].astype(np.float32),
             "surface_temperature": prep.surface_temperature.astype(np.float32),
-            "surface_emissivity": emissivity.astype(np.float32),
+            "surface_emissivity": emissivity,
             "sensor_zenith_angle": prep.sensor_zenith_angle.astype(np.float32),
         }
         names = ["brightness_temperature", "quality_flag"]
         if jacobian:
             names += list(_physics.JACOBIAN_NAMES)
+        if n <= self.batch_size:
+            return dict(zip(names, session.run(names, feeds_all)))
         out = {}
         for start in range(0, n, self.batch_size):
             sl = slice(start, min(n, start + self.batch_size))
             result = session.run(names, {k: v[sl] for k, v in feeds_all.items()})
             for name, value in zip(names, result):
                 out.setdefault(name, []).append(value)
-        arrays = {k: np.concatenate(v).astype(np.float64 if k != "quality_flag" else np.int32)
-                  for k, v in out.items()}
+        return {k: np.concatenate(v) for k, v in out.items()}
+
+    def run_arrays(self, prep, jacobian: bool) -> dict:
+        """Run the session on prepared (surface-first, canonical) arrays, all channels.
+
+        Returns float64 arrays over the bundle's channels, surface-first levels.
+        """
+        raw = self._run_session(prep, jacobian)
+        order = slice(None, None, -1) if self._top_first else slice(None)
+        arrays = {k: v.astype(np.float64 if k != "quality_flag" else np.int32) for k, v in raw.items()}
         for name in ("jacobian_air_temperature", "jacobian_specific_humidity"):
             if name in arrays:
                 arrays[name] = arrays[name][:, :, order]
         return arrays
 
+    def _caller_arrays(self, raw: dict, prep) -> dict:
+        """float64 outputs over the operator's channels, levels in the caller's order.
+
+        One conversion per array: a profile's levels come back from the session in the
+        bundle's order, which is the caller's when the caller gave them in that order.
+        """
+        reverse = prep.flipped != self._top_first  # rows whose caller order is reversed
+        arrays = {}
+        for name, values in raw.items():
+            if self._subset is not None:
+                values = values[:, self._subset]
+            if values.ndim == 3 and reverse.all():
+                values = values[..., ::-1]
+            values = np.array(values, dtype=np.float64)  # C-ordered copy
+            if values.ndim == 3 and reverse.any() and not reverse.all():
+                values[reverse] = values[reverse][..., ::-1]
+            arrays[name] = values
+        return arrays
+
     def _simulate_eager(self, dataset, jacobian):
         prep = prepare_inputs(dataset, self.channels, errors=self.errors)
         self._check_grid(prep)
-        arrays = self.run_arrays(prep, jacobian)
-        cols = self._columns
-        flag = arrays.pop("quality_flag")[:, cols]
-        arrays = {k: v[:, cols] for k, v in arrays.items()}
+        raw = self._run_session(prep, jacobian)
+        flag = raw.pop("quality_flag")
+        flag = (flag if self._subset is None else flag[:, self._subset]).astype(np.int32)
+        arrays = self._caller_arrays(raw, prep)
         if self.fallback == "physics":
             outside = (flag & (_flags.OUTSIDE_TRAINING_BOUNDS | _flags.NOVEL_STATE)).any(axis=1) & prep.valid
             if outside.any():
                 self._recompute_with_physics(prep, outside, arrays, jacobian)
                 flag[outside] |= _flags.PHYSICS_FALLBACK
-        for name in ("jacobian_air_temperature", "jacobian_specific_humidity"):
-            if name in arrays:
-                arrays[name] = prep.to_caller_order(arrays[name])
-        flag[~prep.valid] |= _flags.INVALID_INPUT
+        invalid = ~prep.valid
+        if invalid.any():
+            flag[invalid] |= _flags.INVALID_INPUT
+            for values in arrays.values():
+                values[invalid] = np.nan
         flag[prep.supersaturated] |= _flags.SUPERSATURATED
-        for values in arrays.values():
-            values[~prep.valid] = np.nan
-        out = _physics.label_outputs(arrays, dataset, self.channels, flag)
+        out = _label_outputs(arrays, dataset, self._channel_coords, flag)
         if prep.problems:
             out.attrs["invalid_input_summary"] = "; ".join(prep.problems)
         return out
@@ -328,5 +402,8 @@ class EmulatedOperator(_OperatorBase):
             prep.sensor_zenith_angle[rows],
             jacobian=jacobian,
         )
+        flipped = prep.flipped[rows]  # physics returns surface-first levels; arrays hold the caller's
         for name, values in exact.items():
+            if values.ndim == 3 and flipped.any():
+                values[flipped] = values[flipped][..., ::-1]
             arrays[name][rows] = values

@@ -201,3 +201,51 @@ def emulated_case(tiny_bundle, demo_instrument):
     ds["surface_emissivity"] = ds["surface_emissivity"].clip(max=0.99)
     # float32 arithmetic: ~2e-5 K round-off in BT limits the finite-difference checks.
     return Case(op, ds, fd_rel_tol=2e-2, taylor_min_ratio=3.0, adjoint_rel_tol=1e-10)
+
+
+def _with_coordinates(ds):
+    """``ds`` with coordinates of every kind the outputs carry (or drop), channels shuffled."""
+    n, nlev = ds.sizes["profile"], ds.sizes["level"]
+    out = ds.assign_coords(
+        profile=np.arange(n) * 10 + 3,
+        latitude=("profile", np.linspace(-30.0, 30.0, n)),
+        level=np.arange(nlev),
+        level_name=("level", [f"L{i}" for i in range(nlev)]),
+        scan_time=np.datetime64("2001-02-03T04:05"),  # scalar coordinate
+        patch=(("profile", "level"), np.zeros((n, nlev))),  # neither profile nor level alone
+    )
+    if "channel" in out["surface_emissivity"].dims:
+        out = out.isel(channel=np.arange(out.sizes["channel"])[::-1])
+    return out
+
+
+def test_outputs_labelled_like_the_physics_function(operator_case):
+    """The operators label their outputs without DataArrays (speed); the result must be
+    the Dataset rtemu.physics.label_outputs builds from the same arrays, coordinates
+    included, and the physical operator must equal rtemu.physics.simulate."""
+    from rtemu import physics
+
+    op, ds = operator_case.operator, _with_coordinates(operator_case.profiles)
+    for jacobian in (False, True):
+        out = op.simulate(ds, jacobian=jacobian)
+        arrays = {k: out[k].values for k in out.data_vars if k != "quality_flag"}
+        reference = physics.label_outputs(arrays, ds, op.channels, out["quality_flag"].values)
+        xr.testing.assert_identical(out, reference)
+        assert set(out.coords) == {"profile", "latitude", "level", "level_name", "scan_time", "channel"}
+    if isinstance(op, PhysicalOperator):
+        xr.testing.assert_identical(op.simulate(ds, jacobian=True),
+                                    physics.simulate(op.instrument, ds, jacobian=True, errors="mask"))
+    # The channel coordinate is cached per operator: editing one output must not leak.
+    first = op.simulate(ds)
+    first["channel"].attrs["edited"] = 1
+    assert "edited" not in op.simulate(ds)["channel"].attrs
+
+
+def test_repeated_emissivity_channel_refused(operator_case):
+    op, ds = operator_case.operator, operator_case.profiles
+    if "channel" not in ds["surface_emissivity"].dims:
+        pytest.skip("scalar emissivity")
+    ids = list(op.channels)
+    twice = ds.isel(channel=[0] + list(range(len(ids))))
+    with pytest.raises(ValueError, match=r"surface_emissivity: channel\(s\) \['%s'\] repeated" % ids[0]):
+        op.simulate(twice)
