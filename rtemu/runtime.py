@@ -336,19 +336,6 @@ class EmulatedOperator(_OperatorBase):
                 out.setdefault(name, []).append(value)
         return {k: np.concatenate(v) for k, v in out.items()}
 
-    def run_arrays(self, prep, jacobian: bool) -> dict:
-        """Run the session on prepared (surface-first, canonical) arrays, all channels.
-
-        Returns float64 arrays over the bundle's channels, surface-first levels.
-        """
-        raw = self._run_session(prep, jacobian)
-        order = slice(None, None, -1) if self._top_first else slice(None)
-        arrays = {k: v.astype(np.float64 if k != "quality_flag" else np.int32) for k, v in raw.items()}
-        for name in ("jacobian_air_temperature", "jacobian_specific_humidity"):
-            if name in arrays:
-                arrays[name] = arrays[name][:, :, order]
-        return arrays
-
     def _caller_arrays(self, raw: dict, prep) -> dict:
         """float64 outputs over the operator's channels, levels in the caller's order.
 
