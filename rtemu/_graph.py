@@ -6,13 +6,20 @@ the graph evaluates, written out as nodes), and the quality-flag bitmask.
 
 Function evaluated (per profile n, channel c; all linear maps folded at export)::
 
-    x      = [T, h(q), (q), (u), Ts, s(theta)] - x_ref    shared raw features [F = B L + 2
-                                                          for B profile blocks], centred
-                                                          (float32 accuracy)
+    x      = [T, h(q), (q), (u), (f, g), Ts, s(theta)] - x_ref
+                                                          shared raw features [F = B L + 2 K
+                                                          + 2 for B profile blocks and K
+                                                          kernels], centred (float32 accuracy)
     h(q)   = ln(max(q, q_floor))  or  q                   humidity transform ("log+linear":
                                                           both ln q and q blocks)
     u      = ln(q M + W_0)                                log water-vapour path above each
                                                           level (optional block; M [L, L])
+    t_k    = exp(-kappa_k sec(theta) P_k)                 gray opacity kernels (optional,
+                                                          [K, L]): P_k = q M_l (line) or
+                                                          (q q) M_c (continuum)
+    f_k    = t_k G . T + Ts t_k,s ;  g_k = t_k,s          kernel temperature and surface
+                                                          transmittance (G [L, L]: layer
+                                                          means and transmittance steps)
     s      = sec(theta)  or  theta                        zenith transform
     z      = x A + a0                                     standardise + PCA + scale [K]
     a1     = tanh(z W1_c + e_c w1e_c + b1_c)              hidden layer 1 [H1]
@@ -27,6 +34,11 @@ Jacobian (chain rule, reverse order)::
     dy/dx  = dy/dz A^T      (s(theta) is not differentiated)
     dy/dT  = dy/dx[:L];  dy/dq = dy/dx[L:2L] h'(q) (+ dy/dx[2L:3L])
              (+ (dy/du / (q M + W_0)) M^T);  dy/dTs = dy/dx[F-2]
+    kernels, with a = dy/df, b = dy/dg [K], r_k = -kappa_k sec(theta) t_k, h = T G^T
+    (df_k/dt_k = h + Ts at the surface level s):
+    dy/dT += a (t G);  dy/dTs += a . t_s
+    dy/dq += [(a r) h + ((a Ts + b) . r_s) 1_s] M_l^T  (sums over the line kernels)
+           + 2 q [the same over the continuum kernels] M_c^T
 
 Per-channel tensors carry the channel as their leading axis ([C, ...]); hidden layers of
 different widths are zero-padded to a common width, which leaves the function and its
@@ -87,14 +99,20 @@ class GraphLayout:
     zenith: str = "secant"
     n_reconstruction_blocks: int = 2
     water_path: bool = False
+    n_line_kernels: int = 0
+    n_continuum_kernels: int = 0
 
     @property
     def n_profile_blocks(self) -> int:
         return 2 + (self.humidity == "log+linear") + bool(self.water_path)
 
     @property
+    def n_kernels(self) -> int:
+        return self.n_line_kernels + self.n_continuum_kernels
+
+    @property
     def n_features(self) -> int:
-        return self.n_profile_blocks * self.n_levels + 2
+        return self.n_profile_blocks * self.n_levels + 2 * self.n_kernels + 2
 
     @property
     def n_bounded(self) -> int:
@@ -182,13 +200,15 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
         # W + W_0 > 0 for any q >= 0 (M >= 0): the logarithm needs no clip
         path = b.op("Add", b.op("MatMul", q, "water_path_matrix"), "water_path_floor")  # [N, L]
         profile.append(b.op("Log", path))
-    if layout.zenith == "secant":
-        ang = b.op("Mul", theta, b.const("degree", math.pi / 180.0))
-        x_theta = b.op("Reciprocal", b.op("Cos", ang))
-    else:
-        x_theta = theta
+    sec = None
+    if layout.zenith == "secant" or layout.n_kernels:
+        sec = b.op("Reciprocal", b.op("Cos", b.op("Mul", theta, b.const("degree", math.pi / 180.0))))
+    x_theta = sec if layout.zenith == "secant" else theta
     Ts1 = b.op("Unsqueeze", Ts, ax1)
     s1 = b.op("Unsqueeze", x_theta, ax1)  # [N, 1]
+    kern = _kernel_forward(b, layout, sec, Ts1) if layout.n_kernels else None
+    if kern is not None:
+        profile.append(kern["features"])
     # centring first keeps float32 round-off of the following products at the size of the
     # deviations, not of the raw values (e.g. 250 K)
     X = b.op("Sub", b.op("Concat", *profile, Ts1, s1, axis=1), "feature_center")
@@ -254,7 +274,13 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     def back(r0, r1, out=None):
         return b.op("Reshape", b.op("MatMul", d_aug, back_matrix(r0, r1)), b.ints([-1, C, r1 - r0]), out=out)
 
-    back(0, L, out="jacobian_air_temperature")
+    K2 = 2 * layout.n_kernels
+    k0 = layout.n_profile_blocks * L  # first kernel column of x
+    if kern is not None:
+        d_f, d_g = back(k0, k0 + K2 // 2), back(k0 + K2 // 2, k0 + K2)  # [N, C, K] each
+        b.op("Add", back(0, L), b.op("MatMul", d_f, kern["dfdT"]), out="jacobian_air_temperature")
+    else:
+        back(0, L, out="jacobian_air_temperature")
     jq = "jacobian_specific_humidity"
     terms = []  # dy/dq [N, C, L] through each humidity block
     if log_q:
@@ -274,6 +300,8 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
         d_u = b.op("MatMul", b.op("Reshape", d_u, b.ints([-1, L])),
                    b.op("Transpose", "water_path_matrix", perm=[1, 0]))
         terms.append(b.op("Reshape", d_u, b.ints([-1, C, L])))
+    if kern is not None:
+        terms += _kernel_humidity_terms(b, layout, kern, d_f, d_g, Ts)
     while len(terms) > 2:
         terms[:2] = [b.op("Add", terms[0], terms[1])]
     if len(terms) == 2:
@@ -283,7 +311,11 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     # a [.., 1] matrix, not a vector: onnxruntime runs MatMul by a 1-D operand as one
     # small product per profile (measured 10x slower)
     F = layout.n_features
-    b.op("Squeeze", back(F - 2, F - 1), ax2, out="jacobian_surface_temperature")
+    if kern is not None:
+        d_ts = b.op("Add", back(F - 2, F - 1), b.op("MatMul", d_f, kern["t_surface"]))  # [N, C, 1]
+        b.op("Squeeze", d_ts, ax2, out="jacobian_surface_temperature")
+    else:
+        b.op("Squeeze", back(F - 2, F - 1), ax2, out="jacobian_surface_temperature")
 
     # ---- quality flags
     _flags(b, layout, X, z1, Ts1, cols, x_q if log_q else None)
@@ -304,6 +336,58 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     if metadata:
         helper.set_model_props(model, metadata)
     return model
+
+
+def _kernel_forward(b: _Builder, layout: GraphLayout, sec: str, Ts1: str) -> dict:
+    """Gray opacity kernels: features [N, 2K] = [f, g] and what their Jacobian reuses.
+
+    Both paths come from one product: [q p/p_0, q q p/(epsilon p_0)] M (``kernel_path_scale``
+    [2, L] holds the two level factors, ``kernel_path_matrix`` is M of
+    :func:`rtemu.features.water_path_matrix`); ``kernel_coefficients`` [K, 2] holds kappa_k
+    in the column of its path.
+    """
+    T, q = INPUT_NAMES[0], INPUT_NAMES[1]
+    ax1, ax2 = b.ints([1]), b.ints([2])
+    q_powers = b.op("Concat", b.op("Unsqueeze", q, ax1), b.op("Unsqueeze", b.op("Mul", q, q), ax1), axis=1)
+    paths = b.op("MatMul", b.op("Mul", q_powers, "kernel_path_scale"), "kernel_path_matrix")  # [N, 2, L]
+    sec3 = b.op("Unsqueeze", sec, b.ints([1, 2]))  # [N, 1, 1]
+    depth = b.op("MatMul", "kernel_coefficients", paths)  # [N, K, L]
+    t = b.op("Exp", b.op("Neg", b.op("Mul", depth, sec3)))  # [N, K, L]
+    dfdT = b.op("MatMul", t, "kernel_temperature_matrix")  # df_k/dT [N, K, L]
+    t_surface = b.op("MatMul", t, "kernel_surface_pick")  # [N, K, 1]
+    g = b.op("Squeeze", t_surface, ax2)  # [N, K]
+    f = b.op("Squeeze", b.op("MatMul", dfdT, b.op("Unsqueeze", T, ax2)), ax2)  # [N, K]
+    f = b.op("Add", f, b.op("Mul", g, Ts1))
+    return {"features": b.op("Concat", f, g, axis=1), "t": t, "dfdT": dfdT, "t_surface": t_surface,
+            "sec3": sec3}
+
+
+def _kernel_humidity_terms(b: _Builder, layout: GraphLayout, kern: dict, d_f: str, d_g: str, Ts: str) -> list:
+    """dy/dq [N, C, L] through the kernels (both paths in one product by M^T)."""
+    T, q = INPUT_NAMES[0], INPUT_NAMES[1]
+    L, C, K = layout.n_levels, layout.n_channels, layout.n_kernels
+    rho = b.op("Mul", kern["t"], b.op("Neg", kern["sec3"]))  # dt_k/d(kappa_k P) [N, K, L]
+    h = b.op("Unsqueeze", b.op("MatMul", T, b.op("Transpose", "kernel_temperature_matrix", perm=[1, 0])),
+             b.ints([1]))  # df/dt without the surface term [N, 1, L]
+    kappa_by_path = b.op("Transpose", "kernel_coefficients", perm=[1, 0])  # [2, K]
+
+    def per_path(weights):  # [N, C, K] -> [N, 2C, K]: kappa_k where k acts on that path
+        return b.op("Reshape", b.op("Mul", b.op("Unsqueeze", weights, b.ints([2])), kappa_by_path),
+                    b.ints([0, -1, K]))
+
+    ts3 = b.op("Unsqueeze", Ts, b.ints([1, 2]))  # [N, 1, 1]
+    surface_weight = per_path(b.op("Add", b.op("Mul", d_f, ts3), d_g))
+    d_path = b.op("Mul", b.op("MatMul", per_path(d_f), rho), h)  # dy/dP [N, 2C, L]
+    at_surface = b.op("MatMul", surface_weight, b.op("MatMul", rho, "kernel_surface_pick"))  # [N, 2C, 1]
+    d_path = b.op("Add", d_path, b.op("Mul", at_surface, b.op("Transpose", "kernel_surface_pick", perm=[1, 0])))
+    d_q = b.op("MatMul", b.op("Reshape", d_path, b.ints([-1, L])),
+               b.op("Transpose", "kernel_path_matrix", perm=[1, 0]))
+    d_q = b.op("Reshape", d_q, b.ints([-1, C, 2, L]))
+    # d[q, q q]/dq = [1, 2 q], times the level factors
+    chain = b.op("Add", b.op("Mul", b.op("Unsqueeze", b.op("Add", q, q), b.ints([1])), b.const("second_path", [[0.0], [1.0]])),
+                 b.const("first_path", [[1.0], [0.0]]))  # [N, 2, L]
+    chain = b.op("Unsqueeze", b.op("Mul", chain, "kernel_path_scale"), b.ints([1]))  # [N, 1, 2, L]
+    return [b.op("ReduceSum", b.op("Mul", d_q, chain), b.ints([2]), keepdims=0)]
 
 
 def _flags(b: _Builder, layout: GraphLayout, X: str, z1: str, Ts1: str, cols, ln_q=None) -> None:
@@ -387,6 +471,12 @@ def primary_shapes(layout: GraphLayout) -> dict[str, tuple[int, ...]]:
     if layout.water_path:
         shapes["water_path_matrix"] = (L, L)
         shapes["water_path_floor"] = ()
+    if layout.n_kernels:
+        shapes["kernel_path_matrix"] = (L, L)
+        shapes["kernel_path_scale"] = (2, L)
+        shapes["kernel_coefficients"] = (layout.n_kernels, 2)
+        shapes["kernel_temperature_matrix"] = (L, L)
+        shapes["kernel_surface_pick"] = (L, 1)
     for k in range(2, len(h) + 1):
         shapes[layer_weight_name(k)] = (C, h[k - 2], h[k - 1])
         shapes[layer_bias_name(k)] = (C, 1, h[k - 1])

@@ -30,7 +30,13 @@ import onnx
 from rtemu import _graph, flags as _flags
 from rtemu import bundle as _bundle
 from rtemu._io import write_bytes_atomic
-from rtemu.features import FeatureConfig, water_path_matrix
+from rtemu.constants import EPSILON
+from rtemu.features import (
+    KERNEL_REFERENCE_PRESSURE_HPA,
+    FeatureConfig,
+    kernel_temperature_matrix,
+    water_path_matrix,
+)
 from rtemu.training import (
     PHYSICAL_BOUNDS,
     Envelope,
@@ -75,7 +81,8 @@ _SHAPES = {
 #: Per-channel arrays: name -> channel axis in the stacked array.
 _LINEAR_COLUMNS = ("linear_weight", "linear_emissivity_weight", "linear_zenith_weight")
 _SHARED = ("feature_center", "projection_weight", "projection_offset", "novelty_scale", "humidity_floor",
-           "log_pressure_minus_bolton_a", "water_path_matrix", "water_path_floor")
+           "log_pressure_minus_bolton_a", "water_path_matrix", "water_path_floor", "kernel_path_matrix",
+           "kernel_path_scale", "kernel_coefficients", "kernel_temperature_matrix", "kernel_surface_pick")
 
 
 class FrozenTransform:
@@ -196,10 +203,33 @@ def _shared_from_emulator(emu: TrainedEmulator) -> tuple[dict, dict]:
     if emu.config.water_path:
         shared["water_path_matrix"] = water_path_matrix(emu.pressure_hpa).astype(np.float32)
         shared["water_path_floor"] = np.float32(emu.config.water_path_floor)
+    shared.update(_kernel_arrays(emu.config, emu.pressure_hpa))
     bounds = {name: (np.atleast_1d(emu.envelope.lower[name]).astype(np.float32),
                      np.atleast_1d(emu.envelope.upper[name]).astype(np.float32))
               for name in _PROFILE_VARIABLES}
     return shared, bounds
+
+
+def _kernel_arrays(config: FeatureConfig, pressure_hpa) -> dict:
+    """float32 constants of the gray opacity kernels (none when the recipe has no kernels)."""
+    if not config.n_kernels:
+        return {}
+    p = np.asarray(pressure_hpa, dtype=float)
+    kappa = np.zeros((config.n_kernels, 2))
+    n_line = len(config.line_kernels)
+    kappa[:n_line, 0] = config.line_kernels
+    kappa[n_line:, 1] = config.continuum_kernels
+    pick = np.zeros((p.size, 1))
+    pick[int(np.argmax(p)), 0] = 1.0
+    ratio = p / KERNEL_REFERENCE_PRESSURE_HPA
+    arrays = {
+        "kernel_path_matrix": water_path_matrix(p),
+        "kernel_path_scale": np.stack([ratio, ratio / EPSILON]),
+        "kernel_coefficients": kappa,
+        "kernel_temperature_matrix": kernel_temperature_matrix(p),
+        "kernel_surface_pick": pick,
+    }
+    return {k: v.astype(np.float32) for k, v in arrays.items()}
 
 
 def _assemble(shared: dict, bounds: dict, parts: list[dict], layout: _graph.GraphLayout) -> dict:
@@ -260,6 +290,7 @@ def _metadata(*, layout, config, instrument, channel_ids, grid, bounds, parts, l
             "humidity": layout.humidity, "zenith": layout.zenith,
             "n_reconstruction_blocks": layout.n_reconstruction_blocks, "opset": _graph.OPSET,
             "water_path": layout.water_path,
+            "n_line_kernels": layout.n_line_kernels, "n_continuum_kernels": layout.n_continuum_kernels,
             "level_order": "surface first" if grid[0] > grid[-1] else "top first",
         }, sort_keys=True),
         "rtemu.features": config.to_json(),
@@ -370,7 +401,9 @@ def build_bundle_model(emu: TrainedEmulator, *, base=None, dtype=np.float32):
     blocks = sum(1 for _, k in cfg.blocks() if k)
     layout = _graph.GraphLayout(n_levels=emu.pressure_hpa.size, n_channels=len(ids), n_components=K,
                                 hidden=hidden, humidity=cfg.humidity, zenith=cfg.zenith,
-                                n_reconstruction_blocks=blocks, water_path=cfg.water_path)
+                                n_reconstruction_blocks=blocks, water_path=cfg.water_path,
+                                n_line_kernels=len(cfg.line_kernels),
+                                n_continuum_kernels=len(cfg.continuum_kernels))
     arrays = _assemble(shared, bounds, parts, layout)
     model = _graph.build_model(layout, arrays, dtype=dtype)
     meta = _metadata(layout=layout, config=cfg, instrument=instrument, channel_ids=ids,

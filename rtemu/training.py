@@ -100,6 +100,13 @@ def _choice(options):
     return check
 
 
+def _coefficients(v):
+    if (not isinstance(v, list) or len(v) > 64
+            or any(isinstance(k, bool) or not isinstance(k, (int, float)) or not 0 < k < float("inf") for k in v)):
+        return "a list of at most 64 positive numbers [m2 kg-1]"
+    return None
+
+
 def _layers(v):
     if (not isinstance(v, list) or not v or len(v) > 4
             or any(isinstance(h, bool) or not isinstance(h, int) or h < 1 or h > 1024 for h in v)):
@@ -139,6 +146,8 @@ SCHEMA: dict[str, dict[str, Any]] = {
         "water_path": _bool,
         "water_path_components": _int(0),
         "water_path_floor": _float(0.0, strict_lo=True),
+        "line_kernels": _coefficients,
+        "continuum_kernels": _coefficients,
     },
     "linear": {"residual": _bool, "ridge_alpha": _float(0.0)},
     "network": {k: v for k, v in _NETWORK.items() if k != "ridge_alpha"},

@@ -27,6 +27,8 @@ temperature_components = 6
 humidity_components = 5
 water_path = true
 water_path_components = 4
+line_kernels = [0.03, 1.0, 30.0]
+continuum_kernels = [1.0, 100.0]
 [network]
 hidden_layers = [10, 7]
 max_iter = 60
@@ -82,7 +84,9 @@ def _layout(b):
     return _graph.GraphLayout(n_levels=g["n_levels"], n_channels=g["n_channels"], n_components=g["n_components"],
                               hidden=tuple(g["hidden"]), humidity=g["humidity"], zenith=g["zenith"],
                               n_reconstruction_blocks=g["n_reconstruction_blocks"],
-                              water_path=g.get("water_path", False))
+                              water_path=g.get("water_path", False),
+                              n_line_kernels=g.get("n_line_kernels", 0),
+                              n_continuum_kernels=g.get("n_continuum_kernels", 0))
 
 
 def test_flag_bits_match_rtemu_flags():
@@ -96,8 +100,8 @@ def test_graph_is_valid_onnx_and_lean(trained):
     assert model.opset_import[0].version == _graph.OPSET
     # nodes on initializers only are folded at session creation; what runs per call stays
     # small (each node costs ~1 us in a single-profile call); the water-path block (on in
-    # this recipe) adds 12 (95 without it)
-    assert len(_graph.runtime_nodes(model)) <= 107
+    # this recipe) adds 12 (95 without it), the opacity kernels 57
+    assert len(_graph.runtime_nodes(model)) <= 164
 
 
 def test_onnx_matches_in_memory_sklearn_model(trained):
