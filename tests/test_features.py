@@ -1,0 +1,146 @@
+"""The gray opacity kernels of rtemu.features against analytic cases.
+
+The graph's version of the same features and its exact Jacobians are checked in
+tests/test_export.py (float64 graph against finite differences, and against the in-memory
+scikit-learn model, with kernels switched on in its recipe).
+"""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+import scipy.constants
+
+from rtemu.atmosphere import default_pressure_grid
+from rtemu.features import (
+    KERNEL_REFERENCE_PRESSURE_HPA,
+    FeatureConfig,
+    kernel_path_matrices,
+    kernel_temperature_matrix,
+    opacity_kernel_features,
+    raw_features,
+)
+from rtemu.training import Recipe
+
+EPS = 0.622  # ratio of the gas constants of dry air and water vapour (textbook value)
+CONFIG = FeatureConfig(line_kernels=(0.01, 0.3, 10.0), continuum_kernels=(1.0, 100.0))
+
+
+def _profiles(n=6, seed=3):
+    p = default_pressure_grid()
+    rng = np.random.default_rng(seed)
+    T = 200.0 + 90.0 * rng.random((n, p.size))
+    q = 2e-2 * rng.random((n, p.size)) * (p / p[0]) ** 3
+    return p, T, q, 250.0 + 60.0 * rng.random(n), 65.0 * rng.random(n)
+
+
+def test_isothermal_atmosphere_and_surface_give_their_temperature():
+    # the weights of f (transmittance steps plus the surface transmittance) sum to one, so
+    # an isothermal column over a surface at the same temperature is seen at that temperature
+    # whatever the absorption (the textbook isothermal limit of Schwarzschild's equation)
+    p, _, q, _, zen = _profiles()
+    T = np.full((len(zen), p.size), 263.0)
+    out = opacity_kernel_features(T, q, np.full(len(zen), 263.0), zen, CONFIG, p)
+    np.testing.assert_allclose(out[:, :CONFIG.n_kernels], 263.0, rtol=1e-12)
+
+
+def test_dry_atmosphere_is_transparent():
+    p, T, _, ts, zen = _profiles()
+    out = opacity_kernel_features(T, np.zeros_like(T), ts, zen, CONFIG, p)
+    K = CONFIG.n_kernels
+    np.testing.assert_allclose(out[:, :K], ts[:, None], rtol=1e-12)  # f = Ts
+    np.testing.assert_allclose(out[:, K:], 1.0)  # column transmittance 1
+
+
+def test_uniform_humidity_column_transmittance_is_analytic():
+    # q uniform: the line path is the integral of q p / p_0 dp / g over the column, and the
+    # continuum path that of q^2 p / (epsilon p_0) dp / g (hydrostatic air mass dp / g;
+    # 100 Pa per hPa); both integrands are linear in p, so the layer-mean sums are exact:
+    # P = c (p_s^2 - p_top^2) / (2 p_0) * 100 / g. g = standard gravity (scipy.constants, CGPM 1901).
+    p, T, _, ts, zen = _profiles(n=4)
+    qv = np.array([1e-5, 1e-4, 3e-3, 1.5e-2])
+    q = np.repeat(qv[:, None], p.size, axis=1)
+    out = opacity_kernel_features(T, q, ts, zen, CONFIG, p)
+    column = (p.max() ** 2 - p.min() ** 2) / (2 * KERNEL_REFERENCE_PRESSURE_HPA) * 100.0 / scipy.constants.g
+    sec = 1.0 / np.cos(np.radians(zen))
+    line = qv * column
+    cont = qv**2 / EPS * column
+    expected = np.concatenate(
+        [np.exp(-np.outer(sec * line, CONFIG.line_kernels)), np.exp(-np.outer(sec * cont, CONFIG.continuum_kernels))],
+        axis=1)
+    np.testing.assert_allclose(out[:, CONFIG.n_kernels:], expected, rtol=1e-10)
+
+
+def test_single_gray_layer_over_a_black_surface():
+    # two levels = one layer: f = Tbar (1 - t) + Ts t, the emission of one isothermal gray
+    # layer of transmittance t over a black surface (textbook single-slab result, e.g.
+    # Petty 2006, A First Course in Atmospheric Radiation, ch. 6; from memory)
+    p = np.array([1000.0, 600.0])
+    T = np.array([[290.0, 250.0]])
+    q = np.array([[8e-3, 2e-3]])
+    ts, zen = np.array([295.0]), np.array([30.0])
+    cfg = FeatureConfig(line_kernels=(0.5,))
+    f, t = opacity_kernel_features(T, q, ts, zen, cfg, p)[0]
+    path = 0.5 * (q[0, 0] * p[0] + q[0, 1] * p[1]) / KERNEL_REFERENCE_PRESSURE_HPA * (p[0] - p[1]) * 100 / scipy.constants.g
+    t_expected = np.exp(-0.5 * path / np.cos(np.radians(30.0)))
+    assert t == pytest.approx(t_expected, rel=1e-12)
+    assert f == pytest.approx(270.0 * (1 - t_expected) + 295.0 * t_expected, rel=1e-12)
+
+
+def test_level_order_does_not_matter():
+    p, T, q, ts, zen = _profiles()
+    a = opacity_kernel_features(T, q, ts, zen, CONFIG, p)
+    b = opacity_kernel_features(T[:, ::-1], q[:, ::-1], ts, zen, CONFIG, p[::-1])
+    np.testing.assert_allclose(a, b, rtol=1e-12)
+    m1, m2 = kernel_path_matrices(p)
+    r1, r2 = kernel_path_matrices(p[::-1])
+    np.testing.assert_array_equal(m1[::-1, ::-1], r1)
+    np.testing.assert_array_equal(m2[::-1, ::-1], r2)
+    np.testing.assert_array_equal(kernel_temperature_matrix(p)[::-1, ::-1], kernel_temperature_matrix(p[::-1]))
+
+
+def test_temperature_derivative_matrix_against_finite_differences():
+    p, T, q, ts, zen = _profiles(n=1)
+    cfg = FeatureConfig(line_kernels=(0.3,))
+    sec = 1.0 / np.cos(np.radians(zen[0]))
+    t = np.exp(-0.3 * sec * (q @ kernel_path_matrices(p)[0]))[0]
+    analytic = t @ kernel_temperature_matrix(p)
+    step = 1e-3
+    for i in (0, 7, p.size - 1):
+        up, dn = T.copy(), T.copy()
+        up[0, i] += step
+        dn[0, i] -= step
+        fd = (opacity_kernel_features(up, q, ts, zen, cfg, p)[0, 0]
+              - opacity_kernel_features(dn, q, ts, zen, cfg, p)[0, 0]) / (2 * step)
+        assert fd == pytest.approx(analytic[i], rel=1e-7, abs=1e-9)  # f is linear in T: round-off only
+
+
+def test_kernel_block_sits_before_the_surface_temperature_and_zenith():
+    p, T, q, ts, zen = _profiles()
+    cfg = FeatureConfig(temperature_components=4, humidity_components=4, line_kernels=(1.0,),
+                        continuum_kernels=(10.0,))
+    x = raw_features(T, q, ts, zen, cfg, p)
+    assert x.shape[1] == cfg.n_features(p.size) == 3 * p.size + 2 * 2 + 2
+    np.testing.assert_array_equal(x[:, -2], ts)
+    np.testing.assert_allclose(x[:, 3 * p.size:3 * p.size + 4], opacity_kernel_features(T, q, ts, zen, cfg, p))
+    with pytest.raises(ValueError, match="pressure_hpa is required"):
+        raw_features(T, q, ts, zen, cfg)
+
+
+def test_config_round_trip_and_older_bundles():
+    assert FeatureConfig.from_json(CONFIG.to_json()) == CONFIG
+    # a format-2 bundle's features have no kernel keys: no kernels
+    old = json.loads(CONFIG.to_json())
+    del old["line_kernels"], old["continuum_kernels"]
+    assert FeatureConfig(**old).n_kernels == 0
+    for bad in ([0.0], [-1.0], [float("inf")], "1.0", [True]):
+        with pytest.raises(ValueError, match="line_kernels must be a list of positive numbers"):
+            FeatureConfig(line_kernels=bad)
+
+
+@pytest.mark.parametrize("value", ["[0.0]", "[-2.0]", '"many"', "[true]"])
+def test_recipe_refuses_bad_kernel_lists(value):
+    with pytest.raises(ValueError, match=r"features.continuum_kernels' must be a list of at most 64 positive"):
+        Recipe.from_toml(f'name = "x"\n[features]\ncontinuum_kernels = {value}\n', "bad.toml")
