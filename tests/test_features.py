@@ -50,7 +50,7 @@ def test_dry_atmosphere_is_transparent():
     p, T, _, ts, zen = _profiles()
     out = opacity_kernel_features(T, np.zeros_like(T), ts, zen, CONFIG, p)
     K = CONFIG.n_kernels
-    np.testing.assert_allclose(out[:, :K], ts[:, None], rtol=1e-12)  # f = Ts
+    np.testing.assert_allclose(out[:, :K], np.repeat(ts[:, None], K, axis=1), rtol=1e-12)  # f = Ts
     np.testing.assert_allclose(out[:, K:], 1.0)  # column transmittance 1
 
 
