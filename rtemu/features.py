@@ -64,7 +64,7 @@ from rtemu.constants import EPSILON, STANDARD_GRAVITY
 
 __all__ = ["FeatureConfig", "FeatureTransform", "raw_features", "humidity_transform", "zenith_transform",
            "water_path_matrix", "water_path_transform", "kernel_path_matrices", "kernel_temperature_matrix",
-           "opacity_kernel_features"]
+           "opacity_kernel_features", "kernel_columns"]
 
 #: p_0 of the kernel paths [hPa].
 KERNEL_REFERENCE_PRESSURE_HPA = 1013.25
@@ -404,6 +404,24 @@ def raw_features(air_temperature, specific_humidity, surface_temperature, sensor
     parts += [np.asarray(surface_temperature, dtype=float)[:, None],
               zenith_transform(sensor_zenith_angle, config)[:, None]]
     return np.concatenate(parts, axis=1)
+
+
+def kernel_columns(config: FeatureConfig, n_levels: int) -> np.ndarray:
+    """Columns of the compressed z holding the opacity-kernel scalars (after the profile blocks).
+
+    Parameters
+    ----------
+    config : FeatureConfig
+    n_levels : int
+        L [1].
+
+    Returns
+    -------
+    numpy.ndarray
+        int indices, 2 K of them (empty without kernels).
+    """
+    start = sum(min(k, n_levels) if k else n_levels for _, k in config.blocks())
+    return np.arange(start, start + 2 * config.n_kernels)
 
 
 class FeatureTransform:

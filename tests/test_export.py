@@ -35,6 +35,7 @@ max_iter = 60
 check_every = 30
 [channels."mw-t3"]
 hidden_layers = [6, 4]
+opacity_kernels = false
 """
 
 
@@ -102,6 +103,24 @@ def test_graph_is_valid_onnx_and_lean(trained):
     # small (each node costs ~1 us in a single-profile call); the water-path block (on in
     # this recipe) adds 12 (95 without it), the opacity kernels 57
     assert len(_graph.runtime_nodes(model)) <= 164
+
+
+def test_channel_without_kernels_has_zero_kernel_weights(trained):
+    from rtemu.features import kernel_columns
+
+    b = read_bundle(trained["path"])
+    arrays, emu = b.arrays(), trained["emu"]
+    cols = kernel_columns(emu.config, emu.pressure_hpa.size)
+    assert cols.size == 10
+    i = list(b.channel_ids).index("mw-t3")
+    for name in ("layer1_weight", "linear_weight", "linear_emissivity_weight", "linear_zenith_weight"):
+        a = arrays[name]
+        kernel_part = a[i][cols] if name == "layer1_weight" else a[cols, i]
+        assert np.all(kernel_part == 0), name
+        others = np.delete(a, i, axis=0 if name == "layer1_weight" else 1)
+        assert np.any((others[:, cols] if name == "layer1_weight" else others[cols]) != 0), name
+    assert b.channel_stats["mw-t3"]["opacity_kernels"] is False
+    assert b.channel_stats["mw-h2"]["opacity_kernels"] is True
 
 
 def test_onnx_matches_in_memory_sklearn_model(trained):
