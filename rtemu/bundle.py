@@ -384,12 +384,14 @@ def describe(path) -> str:
         lo, hi = np.asarray(item["lower"], float), np.asarray(item["upper"], float)
         lines.append(f"    {name:28s} {lo.min():.4g} .. {hi.max():.4g} [{item['units']}]"
                      + (f" (per {item['per']})" if item.get("per") else ""))
-    lines.append("  validation (K):   channel        rmse     bias    p99.9      max  hidden      iterations")
+    lines.append("  validation (K):   channel        rmse     bias    p99.9      max  hidden      iterations  kernels")
     for cid in b.channel_ids:
         s = b.channel_stats[cid]
+        kernels = "yes" if s.get("opacity_kernels") and b.features.get("line_kernels", []) + b.features.get(
+            "continuum_kernels", []) else "no"
         lines.append(
             f"    {cid:>20s} {s['validation_rmse_k']:8.4f} {s['validation_bias_k']:8.4f} "
             f"{s['validation_p999_abs_k']:8.4f} {s['validation_max_abs_k']:8.4f}  "
-            f"{str(s['hidden_layers']):12s} {s['iterations']}"
+            f"{str(s['hidden_layers']):12s} {s['iterations']:<11d} {kernels}"
         )
     return "\n".join(lines)
