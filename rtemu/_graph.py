@@ -206,7 +206,7 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     x_theta = sec if layout.zenith == "secant" else theta
     Ts1 = b.op("Unsqueeze", Ts, ax1)
     s1 = b.op("Unsqueeze", x_theta, ax1)  # [N, 1]
-    kern = _kernel_forward(b, layout, sec, Ts1) if layout.n_kernels else None
+    kern = _kernel_forward(b, sec, Ts1) if layout.n_kernels else None
     if kern is not None:
         profile.append(kern["features"])
     # centring first keeps float32 round-off of the following products at the size of the
@@ -338,7 +338,7 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     return model
 
 
-def _kernel_forward(b: _Builder, layout: GraphLayout, sec: str, Ts1: str) -> dict:
+def _kernel_forward(b: _Builder, sec: str, Ts1: str) -> dict:
     """Gray opacity kernels: features [N, 2K] = [f, g] and what their Jacobian reuses.
 
     Both paths come from one product: [q p/p_0, q q p/(epsilon p_0)] M (``kernel_path_scale``
