@@ -30,10 +30,12 @@ Liou, K. N. (2002), An Introduction to Atmospheric Radiation, 2nd ed., Academic 
 
 from __future__ import annotations
 
+import functools
 from typing import Literal
 
 import numpy as np
 import xarray as xr
+from xarray.indexes import PandasIndex
 
 from rtemu import flags as _flags
 from rtemu._checks import prepare_inputs
@@ -316,21 +318,73 @@ def output_attrs(name: str) -> dict:
     return dict(_OUTPUT_ATTRS[name])
 
 
-def label_outputs(arrays: dict, dataset: xr.Dataset, channel_ids, flag: np.ndarray) -> xr.Dataset:
+@functools.lru_cache(maxsize=64)
+def _channel_coordinate(channel_ids: tuple) -> xr.Coordinates:
+    """The ``channel`` coordinate (ids, object dtype) with its index, built once per id list.
+
+    Shared between calls: users get a shallow copy of the Variable (own attributes) and
+    the index, whose data are read-only.
+    """
+    return xr.Coordinates({"channel": np.array(list(channel_ids), dtype=object)})
+
+
+def _carried_coordinates(dataset: xr.Dataset, channel_ids=None) -> xr.Coordinates:
+    """The coordinates an output over (profile, level[, channel]) takes from ``dataset``.
+
+    For ``profile`` and ``level``, when ``dataset`` has such a coordinate: that one and
+    every coordinate the DataArray ``dataset.coords[dim]`` would carry (those along that
+    dim alone, and scalar ones), with their indexes. ``profile`` and ``level`` always get
+    xarray's default pandas index, as a Dataset built from those DataArrays did. With
+    ``channel_ids``, ``channel`` holds the ids (not the dataset's channel coordinate).
+
+    Built from Variables and existing indexes, without a DataArray or an index rebuild:
+    on a one-profile call the DataArray route cost more than the emulator itself.
+    """
+    coords = dataset.coords
+    names = []
+    for dim in ("profile", "level"):
+        if dim in coords:
+            carried = set(dataset.variables[dim].dims)
+            names += [k for k, v in coords.variables.items() if set(v.dims) <= carried and k not in names]
+    variables = {k: dataset.variables[k] for k in names}
+    xindexes = dataset.xindexes
+    indexes = {k: xindexes[k] for k in names if k in xindexes}
+    for dim in ("profile", "level"):
+        if dim in variables and variables[dim].dims == (dim,) and not isinstance(indexes.get(dim), PandasIndex):
+            # Unindexed, or another index type (e.g. a RangeIndex): xarray's default.
+            own = {dim: variables[dim]}
+            indexes[dim] = PandasIndex.from_variables(own, options={})
+            variables.update(indexes[dim].create_variables(own))
+    if channel_ids is not None:
+        channel = _channel_coordinate(tuple(channel_ids))
+        # A shallow copy: a caller editing the output's attributes must not edit the cache.
+        variables["channel"] = channel.variables["channel"].copy(deep=False)
+        indexes["channel"] = channel.xindexes["channel"]
+    return xr.Coordinates(variables, indexes=indexes)
+
+
+def label_outputs(arrays: dict, dataset: xr.Dataset, channel_ids, flag) -> xr.Dataset:
     """Wrap operator output arrays [N, C(, L)] into a labelled Dataset.
 
-    Profile and level coordinates of ``dataset`` are carried over; ``channel`` holds the ids.
+    Parameters
+    ----------
+    arrays : dict of str to ndarray
+        Output name to values, [N, C] or [N, C, L] (numpy or dask), in the units of
+        :func:`output_attrs` (K, K K-1, K (kg kg-1)-1).
+    dataset : xarray.Dataset
+        The inputs: its profile and level coordinates are carried over (see
+        :func:`_carried_coordinates`).
+    channel_ids : sequence of str
+        The ``channel`` coordinate, in the order of the arrays' channel axis.
+    flag : ndarray [N, C]
+        ``quality_flag`` bits (stored as int32).
     """
-    coords = {"channel": ("channel", np.array(list(channel_ids), dtype=object))}
-    for dim in ("profile", "level"):
-        if dim in dataset.coords:
-            coords[dim] = dataset.coords[dim]
-    data_vars = {}
+    data = {}
     for name, values in arrays.items():
         dims = ("profile", "channel", "level") if values.ndim == 3 else ("profile", "channel")
-        data_vars[name] = (dims, values, output_attrs(name))
-    data_vars["quality_flag"] = (("profile", "channel"), flag.astype(np.int32), _flags.flag_attrs())
-    return xr.Dataset(data_vars, coords=coords)
+        data[name] = xr.Variable(dims, values, output_attrs(name))
+    data["quality_flag"] = xr.Variable(("profile", "channel"), flag.astype(np.int32), _flags.flag_attrs())
+    return xr.Dataset(data, coords=_carried_coordinates(dataset, channel_ids))
 
 
 def _compute(instrument, dataset, jacobian, errors, block_size):

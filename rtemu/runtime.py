@@ -55,38 +55,6 @@ def _output_template(dataset: xr.Dataset, channel_ids, jacobian: bool) -> xr.Dat
     return _physics.label_outputs(arrays, dataset, channel_ids, flag)
 
 
-def _channel_coords(channel_ids) -> xr.Coordinates:
-    """The ``channel`` coordinate of an operator's outputs, with its index, built once."""
-    return xr.Coordinates({"channel": np.array(list(channel_ids), dtype=object)})
-
-
-def _label_outputs(arrays: dict, dataset: xr.Dataset, channel: xr.Coordinates, flag) -> xr.Dataset:
-    """The Dataset of :func:`rtemu.physics.label_outputs`, built from Variables.
-
-    Same variables, attributes and coordinates (the ``channel`` one from ``channel``, see
-    :func:`_channel_coords`; from ``dataset`` every coordinate that a
-    ``dataset.coords["profile"]`` or ``["level"]`` DataArray would bring along, with its
-    index), but no DataArray is made and no index is rebuilt: on a one-profile call
-    that labelling cost more than the emulator itself.
-    """
-    names = []
-    for dim in ("profile", "level"):
-        if dim in dataset.coords:
-            names += [k for k, v in dataset.coords.variables.items()
-                      if set(v.dims) <= {dim} and k not in names]
-    variables = {k: dataset.variables[k] for k in names}
-    indexes = {k: dataset.xindexes[k] for k in names if k in dataset.xindexes}
-    # A shallow copy: a caller editing the output's attributes must not edit the cache.
-    variables["channel"] = channel.variables["channel"].copy(deep=False)
-    indexes["channel"] = channel.xindexes["channel"]
-    data = {}
-    for name, values in arrays.items():
-        dims = ("profile", "channel", "level") if values.ndim == 3 else ("profile", "channel")
-        data[name] = xr.Variable(dims, values, _physics.output_attrs(name))
-    data["quality_flag"] = xr.Variable(("profile", "channel"), flag.astype(np.int32), _flags.flag_attrs())
-    return xr.Dataset(data, coords=xr.Coordinates(variables, indexes=indexes))
-
-
 class _OperatorBase:
     """Shared protocol: lazy dispatch, tangent linear and adjoint from the Jacobians."""
 
@@ -160,21 +128,14 @@ class PhysicalOperator(_OperatorBase):
         self.instrument = load_instrument(instrument)
         self.errors = errors
         self.block_size = block_size
-        self._channel_coords = _channel_coords(self.instrument.channel_ids)
 
     def __repr__(self):
         return f"PhysicalOperator({self.instrument.name!r}, {len(self.channels)} channels)"
 
     def _simulate_eager(self, dataset, jacobian):
-        # rtemu.physics.simulate with the cheaper labelling of the emulator's path, so that
-        # both operators pay the same per-call overhead (tests: identical outputs).
-        _, prep, arrays, flag = _physics._compute(
-            self.instrument, dataset, jacobian, self.errors, self.block_size
+        return _physics.simulate(
+            self.instrument, dataset, jacobian, errors=self.errors, block_size=self.block_size
         )
-        out = _label_outputs(arrays, dataset, self._channel_coords, flag)
-        if prep.problems:
-            out.attrs["invalid_input_summary"] = "; ".join(prep.problems)
-        return out
 
 
 # -- emulator -----------------------------------------------------------------------------
@@ -255,7 +216,6 @@ class EmulatedOperator(_OperatorBase):
         # None when the operator serves every channel of the bundle in its order: no
         # emissivity scatter and no output gather then.
         self._subset = None if self._columns.tolist() == list(range(len(model_ids))) else self._columns
-        self._channel_coords = _channel_coords(self.instrument.channel_ids)
         grid = np.asarray(self.bundle.pressure_hpa, dtype=float)
         self._top_first = grid[0] < grid[-1]
         self._grid_surface_first = grid[::-1] if self._top_first else grid
@@ -373,7 +333,7 @@ class EmulatedOperator(_OperatorBase):
             for values in arrays.values():
                 values[invalid] = np.nan
         flag[prep.supersaturated] |= _flags.SUPERSATURATED
-        out = _label_outputs(arrays, dataset, self._channel_coords, flag)
+        out = _physics.label_outputs(arrays, dataset, self.channels, flag)
         if prep.problems:
             out.attrs["invalid_input_summary"] = "; ".join(prep.problems)
         return out

@@ -219,26 +219,66 @@ def _with_coordinates(ds):
     return out
 
 
-def test_outputs_labelled_like_the_physics_function(operator_case):
-    """The operators label their outputs without DataArrays (speed); the result must be
-    the Dataset rtemu.physics.label_outputs builds from the same arrays, coordinates
-    included, and the physical operator must equal rtemu.physics.simulate."""
+def _labelled_through_dataarrays(out, ds, channels):
+    """``out`` relabelled the way xarray builds a Dataset from the DataArrays
+    ``ds.coords["profile"]`` and ``ds.coords["level"]`` (the coordinates they carry, default
+    indexes), independent of rtemu's labelling code."""
+    coords = {d: ds.coords[d] for d in ("profile", "level") if d in ds.coords}
+    coords["channel"] = ("channel", np.array(list(channels), dtype=object))
+    return xr.Dataset({k: (v.dims, v.values, v.attrs) for k, v in out.data_vars.items()},
+                      coords=coords, attrs=out.attrs)
+
+
+def _assert_labelled_like_physics(op, out, ds, jacobian):
+    """``out`` is labelled as rtemu.physics.simulate labels the same inputs (identical for
+    the physical operator; for the emulator with its own values put in)."""
     from rtemu import physics
 
+    reference = physics.simulate(op.instrument, ds, jacobian=jacobian, errors="mask")
+    if isinstance(op, PhysicalOperator):
+        xr.testing.assert_identical(out, reference)
+        return
+    assert {k: v.dtype for k, v in out.variables.items()} == {k: v.dtype for k, v in reference.variables.items()}
+    xr.testing.assert_identical(out, reference.copy(data={k: out[k].values for k in reference.data_vars}))
+
+
+def test_outputs_labelled_like_the_physics_function(operator_case):
+    """Both operators label their outputs with rtemu.physics.label_outputs (Variables, no
+    DataArray, for speed): the result must be what rtemu.physics.simulate returns for the
+    same inputs, and carry the coordinates xarray's own DataArray route gives."""
     op, ds = operator_case.operator, _with_coordinates(operator_case.profiles)
     for jacobian in (False, True):
         out = op.simulate(ds, jacobian=jacobian)
-        arrays = {k: out[k].values for k in out.data_vars if k != "quality_flag"}
-        reference = physics.label_outputs(arrays, ds, op.channels, out["quality_flag"].values)
-        xr.testing.assert_identical(out, reference)
+        _assert_labelled_like_physics(op, out, ds, jacobian)
+        xr.testing.assert_identical(out, _labelled_through_dataarrays(out, ds, op.channels))
         assert set(out.coords) == {"profile", "latitude", "level", "level_name", "scan_time", "channel"}
-    if isinstance(op, PhysicalOperator):
-        xr.testing.assert_identical(op.simulate(ds, jacobian=True),
-                                    physics.simulate(op.instrument, ds, jacobian=True, errors="mask"))
-    # The channel coordinate is cached per operator: editing one output must not leak.
+    # The channel coordinate is cached: editing one output must not leak into the next.
     first = op.simulate(ds)
     first["channel"].attrs["edited"] = 1
     assert "edited" not in op.simulate(ds)["channel"].attrs
+    # Nor into the caller's coordinates, which the outputs carry.
+    for name in ("profile", "latitude", "level", "level_name", "scan_time"):
+        first[name].attrs["edited"] = 1
+        assert "edited" not in ds[name].attrs, name
+
+
+def test_dimension_coordinates_get_default_indexes(operator_case):
+    """An unindexed ``profile`` coordinate or a non-pandas index on ``level`` comes out with
+    xarray's default pandas index, as through xarray's DataArray route, for every operator."""
+    from xarray.indexes import PandasIndex
+
+    op, ds = operator_case.operator, operator_case.profiles
+    n, nlev = ds.sizes["profile"], ds.sizes["level"]
+    ds = ds.assign_coords(profile=np.arange(n) + 7).drop_indexes("profile")
+    ds = ds.assign_coords(xr.Coordinates.from_xindex(
+        xr.indexes.RangeIndex.arange(0.0, float(nlev), 1.0, dim="level")))
+    assert "profile" not in ds.xindexes and not isinstance(ds.xindexes["level"], PandasIndex)
+    for jacobian in (False, True):
+        out = op.simulate(ds, jacobian=jacobian)
+        assert isinstance(out.xindexes["profile"], PandasIndex)
+        assert isinstance(out.xindexes["level"], PandasIndex)
+        _assert_labelled_like_physics(op, out, ds, jacobian)
+        xr.testing.assert_identical(out, _labelled_through_dataarrays(out, ds, op.channels))
 
 
 def test_repeated_emissivity_channel_refused(operator_case):
