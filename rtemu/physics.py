@@ -584,10 +584,9 @@ def _label_gradients(grads: dict, prep, dataset: xr.Dataset, channel_ids) -> xr.
     else:
         data_vars["surface_emissivity"] = (("profile",), em.sum(axis=1),
                                            {"long_name": "adjoint gradient with respect to surface_emissivity"})
-    coords = {d: dataset.coords[d] for d in ("profile", "level") if d in dataset.coords}
-    if prep.emissivity_per_channel:  # operator's channel order
-        coords["channel"] = ("channel", np.array(list(channel_ids), dtype=object))
-    return xr.Dataset(data_vars, coords=coords)
+    # The channel coordinate in the operator's order, as the emissivity gradient's columns.
+    channels = channel_ids if prep.emissivity_per_channel else None
+    return xr.Dataset(data_vars, coords=_carried_coordinates(dataset, channels))
 
 
 def weighting_functions(
