@@ -149,7 +149,9 @@ def main(argv=None):
     args = parser.parse_args(argv)
     print(f"load average {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores (quiet machine: < 0.5)")
     model = ensure_model(args)
-    emulated = EmulatedOperator.load(model, batch_size=100_000)
+    # the operator's default batch (4096 profiles per session run) bounds its memory; one run of
+    # 100,000 profiles with Jacobians needs ~7.5 GB of onnxruntime arena per session
+    emulated = EmulatedOperator.load(model)
     physical = PhysicalOperator(emulated.instrument)
     channels = emulated.channels
     states = draw_states(100_000, seed=777, channels=emulated.instrument)
