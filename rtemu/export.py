@@ -30,13 +30,7 @@ import onnx
 from rtemu import _graph, flags as _flags
 from rtemu import bundle as _bundle
 from rtemu._io import write_bytes_atomic
-from rtemu.constants import EPSILON
-from rtemu.features import (
-    KERNEL_REFERENCE_PRESSURE_HPA,
-    FeatureConfig,
-    kernel_temperature_matrix,
-    water_path_matrix,
-)
+from rtemu.features import FeatureConfig, kernel_path_scales, kernel_temperature_matrix, water_path_matrix
 from rtemu.training import (
     PHYSICAL_BOUNDS,
     Envelope,
@@ -221,10 +215,9 @@ def _kernel_arrays(config: FeatureConfig, pressure_hpa) -> dict:
     kappa[n_line:, 1] = config.continuum_kernels
     pick = np.zeros((p.size, 1))
     pick[int(np.argmax(p)), 0] = 1.0
-    ratio = p / KERNEL_REFERENCE_PRESSURE_HPA
     arrays = {
         "kernel_path_matrix": water_path_matrix(p),
-        "kernel_path_scale": np.stack([ratio, ratio / EPSILON]),
+        "kernel_path_scale": kernel_path_scales(p),
         "kernel_coefficients": kappa,
         "kernel_temperature_matrix": kernel_temperature_matrix(p),
         "kernel_surface_pick": pick,

@@ -64,7 +64,7 @@ from rtemu.constants import EPSILON, STANDARD_GRAVITY
 
 __all__ = ["FeatureConfig", "FeatureTransform", "raw_features", "humidity_transform", "zenith_transform",
            "water_path_matrix", "water_path_transform", "kernel_path_matrices", "kernel_temperature_matrix",
-           "opacity_kernel_features", "kernel_columns"]
+           "opacity_kernel_features", "kernel_columns", "kernel_path_scales"]
 
 #: p_0 of the kernel paths [hPa].
 KERNEL_REFERENCE_PRESSURE_HPA = 1013.25
@@ -231,10 +231,7 @@ def water_path_matrix(pressure_hpa) -> np.ndarray:
     layer[np.arange(L - 1), np.arange(L - 1)] = 0.5 * dm
     layer[np.arange(1, L), np.arange(L - 1)] += 0.5 * dm
     above = (np.arange(L - 1)[:, None] >= np.arange(L)[None, :]).astype(float)
-    ms = layer @ above  # surface-first M
-    out = np.empty_like(ms)
-    out[np.ix_(order, order)] = ms
-    return out
+    return _in_level_order(layer @ above, order)
 
 
 def water_path_transform(specific_humidity, matrix, config: FeatureConfig) -> np.ndarray:
@@ -263,6 +260,30 @@ def _surface_first_order(pressure_hpa) -> np.ndarray:
     return np.argsort(-p)
 
 
+def _in_level_order(surface_first: np.ndarray, order: np.ndarray) -> np.ndarray:
+    """A level-by-level matrix built surface first, rows and columns put in the grid's order."""
+    out = np.empty_like(surface_first)
+    out[np.ix_(order, order)] = surface_first
+    return out
+
+
+def kernel_path_scales(pressure_hpa) -> np.ndarray:
+    """[p / p_0, p / (epsilon p_0)] [2, L]: level factors of the line and continuum paths [1].
+
+    Parameters
+    ----------
+    pressure_hpa : array_like
+        Level pressures p [hPa], shape (L,).
+
+    Returns
+    -------
+    numpy.ndarray
+        Shape (2, L): row 0 multiplies q (line path), row 1 multiplies q^2 (continuum).
+    """
+    ratio = np.asarray(pressure_hpa, dtype=float) / KERNEL_REFERENCE_PRESSURE_HPA
+    return np.stack([ratio, ratio / EPSILON])
+
+
 def kernel_path_matrices(pressure_hpa) -> tuple[np.ndarray, np.ndarray]:
     """M_l, M_c [L, L]: the kernel paths above each level, P_l = q M_l and P_c = (q q) M_c.
 
@@ -282,10 +303,9 @@ def kernel_path_matrices(pressure_hpa) -> tuple[np.ndarray, np.ndarray]:
     (numpy.ndarray, numpy.ndarray)
         M_l [kg m-2 (kg kg-1)-1] and M_c [kg m-2 (kg kg-1)-2], shape (L, L).
     """
-    p = np.asarray(pressure_hpa, dtype=float)
-    base = water_path_matrix(p)
-    ratio = (p / KERNEL_REFERENCE_PRESSURE_HPA)[:, None]
-    return ratio * base, (ratio / EPSILON) * base
+    base = water_path_matrix(pressure_hpa)
+    line, continuum = kernel_path_scales(pressure_hpa)
+    return line[:, None] * base, continuum[:, None] * base
 
 
 def kernel_temperature_matrix(pressure_hpa) -> np.ndarray:
@@ -314,9 +334,7 @@ def kernel_temperature_matrix(pressure_hpa) -> np.ndarray:
     for level in (layers, layers + 1):
         g[layers + 1, level] += 0.5
         g[layers, level] -= 0.5
-    out = np.empty_like(g)
-    out[np.ix_(order, order)] = g
-    return out
+    return _in_level_order(g, order)
 
 
 def opacity_kernel_features(air_temperature, specific_humidity, surface_temperature, sensor_zenith_angle,
