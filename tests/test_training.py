@@ -31,12 +31,15 @@ validation_fraction = 0.2
 temperature_components = 5
 humidity_components = 5
 linear_humidity_components = 3
+line_kernels = [0.1, 3.0]
+continuum_kernels = [20.0]
 [network]
 hidden_layers = [8, 6]
 max_iter = 40
 check_every = 20
 [channels."mw-t4"]
 hidden_layers = [5, 6]
+opacity_kernels = false
 """
 
 
