@@ -387,8 +387,7 @@ def describe(path) -> str:
     lines.append("  validation (K):   channel        rmse     bias    p99.9      max  hidden      iterations  kernels")
     for cid in b.channel_ids:
         s = b.channel_stats[cid]
-        kernels = "yes" if s.get("opacity_kernels") and b.features.get("line_kernels", []) + b.features.get(
-            "continuum_kernels", []) else "no"
+        kernels = "yes" if s.get("opacity_kernels") else "no"
         lines.append(
             f"    {cid:>20s} {s['validation_rmse_k']:8.4f} {s['validation_bias_k']:8.4f} "
             f"{s['validation_p999_abs_k']:8.4f} {s['validation_max_abs_k']:8.4f}  "

@@ -644,7 +644,8 @@ def _fit_channel(job: dict) -> ChannelFit:
         return _fit_channel_inner(**job)
 
 
-def _fit_channel_inner(*, channel_id, s, z, e, y, train, val, net, seed, residual, z_columns=None):
+def _fit_channel_inner(*, channel_id, s, z, e, y, train, val, net, seed, residual, z_columns=None,
+                       uses_kernels=False):
     from sklearn.exceptions import ConvergenceWarning
     from sklearn.linear_model import Ridge
     from sklearn.neural_network import MLPRegressor
@@ -711,7 +712,7 @@ def _fit_channel_inner(*, channel_id, s, z, e, y, train, val, net, seed, residua
         "iterations": int(done),
         "best_iteration": int(best_state[2]),
         "hidden_layers": list(fit.hidden),
-        "opacity_kernels": z_columns is None,
+        "opacity_kernels": bool(uses_kernels),
         "seed": int(seed),
         **_error_stats(fit.predict(z[val], s[val], e[val]) - yv, "validation"),
         **({"linear_only_validation_rmse_k": float(np.sqrt(np.mean((lin_v - yv) ** 2)))} if residual else {}),
@@ -874,6 +875,7 @@ def fit_emulator(data, recipe, *, channels=None, transform=None, workers=None, p
             "net": net, "seed": channel_seed(recipe.seed, cid),
             "residual": recipe.settings["linear"]["residual"],
             "z_columns": None if net["opacity_kernels"] else without_kernels,
+            "uses_kernels": bool(config.n_kernels) and net["opacity_kernels"],
         })
     fits = dict(_run_jobs(jobs, workers, progress, log))
     return TrainedEmulator(
