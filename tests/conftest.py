@@ -151,6 +151,8 @@ humidity_floor = 1e-9
 zenith = "secant"
 temperature_components = 8
 humidity_components = 8
+line_kernels = [0.1, 3.0]
+continuum_kernels = [30.0]
 [linear]
 residual = true
 ridge_alpha = 1e-6
@@ -167,6 +169,8 @@ patience = 1
 [envelope]
 bounds_margin = 0.02
 novelty_margin = 1.0
+[channels."mw-t3"]
+opacity_kernels = false
 """
 
 
