@@ -150,6 +150,7 @@ SCHEMA: dict[str, dict[str, Any]] = {
         "water_path_floor": _float(0.0, strict_lo=True),
         "line_kernels": _coefficients,
         "continuum_kernels": _coefficients,
+        "humidity_top_hpa": _float(0.0),
     },
     "linear": {"residual": _bool, "ridge_alpha": _float(0.0)},
     "network": {k: v for k, v in _NETWORK.items() if k != "ridge_alpha"},
@@ -859,7 +860,7 @@ def fit_emulator(data, recipe, *, channels=None, transform=None, workers=None, p
     x = raw_features(data.air_temperature[rows], data.specific_humidity[rows],
                      data.surface_temperature[rows], data.sensor_zenith_angle[rows], config, data.pressure_hpa)
     if transform is None:
-        transform = FeatureTransform(config=config, n_levels=L).fit(x[train])
+        transform = FeatureTransform(config=config, n_levels=L, pressure_hpa=data.pressure_hpa).fit(x[train])
     elif transform.n_levels != L:
         raise ValueError(f"the shared transform has {transform.n_levels} levels, the data {L}")
     z = transform.project(x)

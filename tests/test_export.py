@@ -29,6 +29,7 @@ water_path = true
 water_path_components = 4
 line_kernels = [0.03, 1.0, 30.0]
 continuum_kernels = [1.0, 100.0]
+humidity_top_hpa = 100.0
 [network]
 hidden_layers = [10, 7]
 max_iter = 60

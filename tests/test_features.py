@@ -144,3 +144,45 @@ def test_config_round_trip_and_older_bundles():
 def test_recipe_refuses_bad_kernel_lists(value):
     with pytest.raises(ValueError, match=r"features.continuum_kernels' must be a list of at most 64 positive"):
         Recipe.from_toml(f'name = "x"\n[features]\ncontinuum_kernels = {value}\n', "bad.toml")
+
+
+def test_humidity_top_leaves_the_stratospheric_humidity_out_of_the_per_level_blocks():
+    from rtemu.features import HUMIDITY_TOP_BLOCKS, FeatureTransform
+
+    p, T, q, ts, zen = _profiles(n=400, seed=5)
+    T = T + np.random.default_rng(1).normal(0.0, 3.0, T.shape)
+    cfg = FeatureConfig(temperature_components=6, humidity_components=6, linear_humidity_components=4,
+                        water_path=True, water_path_components=4, line_kernels=(1.0,), humidity_top_hpa=100.0)
+    x = raw_features(T, q, ts, zen, cfg, p)
+    tr = FeatureTransform(config=cfg, n_levels=p.size, pressure_hpa=p).fit(x)
+    L = p.size
+    masked = np.zeros(x.shape[1], dtype=bool)
+    for i, (name, _) in enumerate(cfg.blocks()):
+        if name in HUMIDITY_TOP_BLOCKS:
+            masked[i * L:(i + 1) * L] = p < 100.0
+    assert masked.sum() == 3 * np.sum(p < 100.0) > 0
+    # no compressed coordinate and no reconstruction residual depends on a masked element
+    assert np.all(tr.projection_[masked] == 0) and np.all(tr.reconstruction_[masked] == 0)
+    # the tropospheric humidity elements still count
+    kept = np.flatnonzero(~masked[: 4 * L])
+    assert np.all(np.any(tr.projection_[kept] != 0, axis=1))
+    moved = x.copy()
+    moved[:, masked] += 5.0
+    np.testing.assert_allclose(tr.project(moved), tr.project(x), atol=1e-12)
+    np.testing.assert_allclose(tr.transform(moved), tr.transform(x), atol=1e-9)
+    # without the option every element counts
+    plain = FeatureTransform(config=FeatureConfig(**{**json.loads(cfg.to_json()), "humidity_top_hpa": 0.0}),
+                             n_levels=L, pressure_hpa=p).fit(x)
+    assert np.any(plain.projection_[masked] != 0)
+    with pytest.raises(ValueError, match="humidity_top_hpa needs pressure_hpa"):
+        FeatureTransform(config=cfg, n_levels=L).fit(x)
+    for bad in (-1.0, float("nan"), True):
+        with pytest.raises(ValueError, match="humidity_top_hpa must be a number >= 0"):
+            FeatureConfig(humidity_top_hpa=bad)
+
+
+def test_recipe_refuses_a_negative_humidity_top():
+    with pytest.raises(ValueError, match=r"features.humidity_top_hpa' must be a number >= 0"):
+        Recipe.from_toml('name = "x"\n[features]\nhumidity_top_hpa = -5.0\n', "bad.toml")
+    assert Recipe.from_toml('name = "x"\n[features]\nhumidity_top_hpa = 100\n', "ok.toml").feature_config(
+    ).humidity_top_hpa == 100.0
