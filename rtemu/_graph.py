@@ -274,10 +274,10 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     def back(r0, r1, out=None):
         return b.op("Reshape", b.op("MatMul", d_aug, back_matrix(r0, r1)), b.ints([-1, C, r1 - r0]), out=out)
 
-    K2 = 2 * layout.n_kernels
+    nk = layout.n_kernels
     k0 = layout.n_profile_blocks * L  # first kernel column of x
     if kern is not None:
-        d_f, d_g = back(k0, k0 + K2 // 2), back(k0 + K2 // 2, k0 + K2)  # [N, C, K] each
+        d_f, d_g = back(k0, k0 + nk), back(k0 + nk, k0 + 2 * nk)  # [N, C, K] each
         b.op("Add", back(0, L), b.op("MatMul", d_f, kern["dfdT"]), out="jacobian_air_temperature")
     else:
         back(0, L, out="jacobian_air_temperature")

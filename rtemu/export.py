@@ -30,7 +30,14 @@ import onnx
 from rtemu import _graph, flags as _flags
 from rtemu import bundle as _bundle
 from rtemu._io import write_bytes_atomic
-from rtemu.features import FeatureConfig, kernel_path_scales, kernel_temperature_matrix, water_path_matrix
+from rtemu.features import (
+    FeatureConfig,
+    kernel_coefficient_matrix,
+    kernel_path_scales,
+    kernel_temperature_matrix,
+    surface_level,
+    water_path_matrix,
+)
 from rtemu.training import (
     PHYSICAL_BOUNDS,
     Envelope,
@@ -209,16 +216,12 @@ def _kernel_arrays(config: FeatureConfig, pressure_hpa) -> dict:
     if not config.n_kernels:
         return {}
     p = np.asarray(pressure_hpa, dtype=float)
-    kappa = np.zeros((config.n_kernels, 2))
-    n_line = len(config.line_kernels)
-    kappa[:n_line, 0] = config.line_kernels
-    kappa[n_line:, 1] = config.continuum_kernels
     pick = np.zeros((p.size, 1))
-    pick[int(np.argmax(p)), 0] = 1.0
+    pick[surface_level(p), 0] = 1.0
     arrays = {
         "kernel_path_matrix": water_path_matrix(p),
         "kernel_path_scale": kernel_path_scales(p),
-        "kernel_coefficients": kappa,
+        "kernel_coefficients": kernel_coefficient_matrix(config),
         "kernel_temperature_matrix": kernel_temperature_matrix(p),
         "kernel_surface_pick": pick,
     }

@@ -64,7 +64,8 @@ from rtemu.constants import EPSILON, STANDARD_GRAVITY
 
 __all__ = ["FeatureConfig", "FeatureTransform", "raw_features", "humidity_transform", "zenith_transform",
            "water_path_matrix", "water_path_transform", "kernel_path_matrices", "kernel_temperature_matrix",
-           "opacity_kernel_features", "kernel_columns", "kernel_path_scales"]
+           "opacity_kernel_features", "kernel_columns", "kernel_path_scales", "kernel_coefficient_matrix",
+           "surface_level"]
 
 #: p_0 of the kernel paths [hPa].
 KERNEL_REFERENCE_PRESSURE_HPA = 1013.25
@@ -300,6 +301,33 @@ def kernel_path_scales(pressure_hpa) -> np.ndarray:
     return np.stack([ratio, ratio / EPSILON])
 
 
+def kernel_coefficient_matrix(config: FeatureConfig) -> np.ndarray:
+    """kappa [K, 2]: each kernel's coefficient in the column of its path (0: line, 1: continuum).
+
+    The kernel order of the features (line kernels, then continuum kernels, each in config
+    order); the depth of kernel k is (kappa @ [P_line, P_continuum])_k.
+
+    Parameters
+    ----------
+    config : FeatureConfig
+
+    Returns
+    -------
+    numpy.ndarray
+        [m2 kg-1], shape (K, 2).
+    """
+    kappa = np.zeros((config.n_kernels, 2))
+    n_line = len(config.line_kernels)
+    kappa[:n_line, 0] = config.line_kernels
+    kappa[n_line:, 1] = config.continuum_kernels
+    return kappa
+
+
+def surface_level(pressure_hpa) -> int:
+    """Index of the surface level: the one of highest pressure [1]."""
+    return int(np.argmax(np.asarray(pressure_hpa, dtype=float)))
+
+
 def kernel_path_matrices(pressure_hpa) -> tuple[np.ndarray, np.ndarray]:
     """M_l, M_c [L, L]: the kernel paths above each level, P_l = q M_l and P_c = (q q) M_c.
 
@@ -387,11 +415,9 @@ def opacity_kernel_features(air_temperature, specific_humidity, surface_temperat
     q = np.asarray(specific_humidity, dtype=float)
     m_line, m_cont = kernel_path_matrices(pressure_hpa)
     sec = 1.0 / np.cos(np.radians(np.asarray(sensor_zenith_angle, dtype=float)))
-    depth = [np.asarray(config.line_kernels)[None, :, None] * (q @ m_line)[:, None, :],
-             np.asarray(config.continuum_kernels)[None, :, None] * ((q * q) @ m_cont)[:, None, :]]
-    t = np.exp(-sec[:, None, None] * np.concatenate(depth, axis=1))  # [N, K, L]
-    surface = int(np.argmax(np.asarray(pressure_hpa, dtype=float)))
-    t_s = t[:, :, surface]
+    paths = np.stack([q @ m_line, (q * q) @ m_cont], axis=1)  # [N, 2, L]
+    t = np.exp(-sec[:, None, None] * (kernel_coefficient_matrix(config) @ paths))  # [N, K, L]
+    t_s = t[:, :, surface_level(pressure_hpa)]
     f = np.einsum("nkl,nl->nk", t @ kernel_temperature_matrix(pressure_hpa), T)
     f += np.asarray(surface_temperature, dtype=float)[:, None] * t_s
     return np.concatenate([f, t_s], axis=1)
