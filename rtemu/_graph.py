@@ -6,7 +6,7 @@ the graph evaluates, written out as nodes), and the quality-flag bitmask.
 
 Function evaluated (per profile n, channel c; all linear maps folded at export)::
 
-    x      = [T, h(q), (q), (u), (f, g), Ts, s(theta)] - x_ref
+    x      = [T, h(q), (q), (u), (f, g, (r)), Ts, s(theta)] - x_ref
                                                           shared raw features [F = B L + 2 K
                                                           + 2 for B profile blocks and K
                                                           kernels], centred (float32 accuracy)
@@ -20,6 +20,10 @@ Function evaluated (per profile n, channel c; all linear maps folded at export):
     f_k    = t_k G . T + Ts t_k,s ;  g_k = t_k,s          kernel temperature and surface
                                                           transmittance (G [L, L]: layer
                                                           means and transmittance steps)
+    r_k    = -t_k,s ((s_k G) . T + Ts)                    reflected sky minus surface
+                                                          (optional): s_k,i = t_k,s / t_k,i,
+                                                          computed as exp(-sec(theta)
+                                                          kappa_k (P_k,s - P_k,i))
     s      = sec(theta)  or  theta                        zenith transform
     z      = x A + a0                                     standardise + PCA + scale [K]
     a1     = tanh(z W1_c + e_c w1e_c + b1_c)              hidden layer 1 [H1]
@@ -39,6 +43,8 @@ Jacobian (chain rule, reverse order)::
     dy/dT += a (t G);  dy/dTs += a . t_s
     dy/dq += [(a r) h + ((a Ts + b) . r_s) 1_s] M_l^T  (sums over the line kernels)
            + 2 q [the same over the continuum kernels] M_c^T
+    reflection, with c = dy/dr: dy/dT += -c (t_s s G);  dy/dTs -= c . t_s;  in the
+    humidity terms a r h += c (r_s s) h and (a Ts + b) -= c (2 S + Ts), S = (s G) . T
 
 Per-channel tensors carry the channel as their leading axis ([C, ...]); hidden layers of
 different widths are zero-padded to a common width, which leaves the function and its
@@ -101,6 +107,7 @@ class GraphLayout:
     water_path: bool = False
     n_line_kernels: int = 0
     n_continuum_kernels: int = 0
+    reflection_kernels: bool = False
 
     @property
     def n_profile_blocks(self) -> int:
@@ -112,7 +119,12 @@ class GraphLayout:
 
     @property
     def n_features(self) -> int:
-        return self.n_profile_blocks * self.n_levels + 2 * self.n_kernels + 2
+        return self.n_profile_blocks * self.n_levels + self.n_kernel_features + 2
+
+    @property
+    def n_kernel_features(self) -> int:
+        """[f, g] or [f, g, r] per kernel [1]."""
+        return (3 if self.reflection_kernels else 2) * self.n_kernels
 
     @property
     def n_bounded(self) -> int:
@@ -206,7 +218,7 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     x_theta = sec if layout.zenith == "secant" else theta
     Ts1 = b.op("Unsqueeze", Ts, ax1)
     s1 = b.op("Unsqueeze", x_theta, ax1)  # [N, 1]
-    kern = _kernel_forward(b, sec, Ts1) if layout.n_kernels else None
+    kern = _kernel_forward(b, sec, Ts1, layout.reflection_kernels) if layout.n_kernels else None
     if kern is not None:
         profile.append(kern["features"])
     # centring first keeps float32 round-off of the following products at the size of the
@@ -276,9 +288,14 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
 
     nk = layout.n_kernels
     k0 = layout.n_profile_blocks * L  # first kernel column of x
+    d_r = None
     if kern is not None:
         d_f, d_g = back(k0, k0 + nk), back(k0 + nk, k0 + 2 * nk)  # [N, C, K] each
-        b.op("Add", back(0, L), b.op("MatMul", d_f, kern["dfdT"]), out="jacobian_air_temperature")
+        d_kT = b.op("MatMul", d_f, kern["dfdT"])
+        if layout.reflection_kernels:
+            d_r = back(k0 + 2 * nk, k0 + 3 * nk)
+            d_kT = b.op("Add", d_kT, b.op("MatMul", d_r, kern["drdT"]))
+        b.op("Add", back(0, L), d_kT, out="jacobian_air_temperature")
     else:
         back(0, L, out="jacobian_air_temperature")
     jq = "jacobian_specific_humidity"
@@ -301,7 +318,7 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
                    b.op("Transpose", "water_path_matrix", perm=[1, 0]))
         terms.append(b.op("Reshape", d_u, b.ints([-1, C, L])))
     if kern is not None:
-        terms += _kernel_humidity_terms(b, layout, kern, d_f, d_g, Ts)
+        terms += _kernel_humidity_terms(b, layout, kern, d_f, d_g, d_r, Ts)
     while len(terms) > 2:
         terms[:2] = [b.op("Add", terms[0], terms[1])]
     if len(terms) == 2:
@@ -312,7 +329,8 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     # small product per profile (measured 10x slower)
     F = layout.n_features
     if kern is not None:
-        d_ts = b.op("Add", back(F - 2, F - 1), b.op("MatMul", d_f, kern["t_surface"]))  # [N, C, 1]
+        d_fr = d_f if d_r is None else b.op("Sub", d_f, d_r)  # dr/dTs = -t_s
+        d_ts = b.op("Add", back(F - 2, F - 1), b.op("MatMul", d_fr, kern["t_surface"]))  # [N, C, 1]
         b.op("Squeeze", d_ts, ax2, out="jacobian_surface_temperature")
     else:
         b.op("Squeeze", back(F - 2, F - 1), ax2, out="jacobian_surface_temperature")
@@ -338,8 +356,9 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     return model
 
 
-def _kernel_forward(b: _Builder, sec: str, Ts1: str) -> dict:
-    """Gray opacity kernels: features [N, 2K] = [f, g] and what their Jacobian reuses.
+def _kernel_forward(b: _Builder, sec: str, Ts1: str, reflection: bool = False) -> dict:
+    """Gray opacity kernels: features [N, 2K] = [f, g] (or [N, 3K] = [f, g, r] with the
+    reflected-sky term) and what their Jacobian reuses.
 
     Both paths come from one product: [q p/p_0, q q p/(epsilon p_0)] M (``kernel_path_scale``
     [2, L] holds the two level factors, ``kernel_path_matrix`` is M of
@@ -358,13 +377,30 @@ def _kernel_forward(b: _Builder, sec: str, Ts1: str) -> dict:
     g = b.op("Squeeze", t_surface, ax2)  # [N, K]
     f = b.op("Squeeze", b.op("MatMul", dfdT, b.op("Unsqueeze", T, ax2)), ax2)  # [N, K]
     f = b.op("Add", f, b.op("Mul", g, Ts1))
-    return {"features": b.op("Concat", f, g, axis=1), "t": t, "dfdT": dfdT, "t_surface": t_surface,
-            "sec3": sec3}
+    out = {"features": b.op("Concat", f, g, axis=1), "t": t, "dfdT": dfdT, "t_surface": t_surface,
+           "sec3": sec3}
+    if reflection:
+        # s = exp(-sec (depth_s - depth)): transmittance from each level down to the surface;
+        # D = -(s G).T the downwelling sky temperature; r = t_s (D - Ts) = -t_s ((s G).T + Ts)
+        depth_s = b.op("MatMul", depth, "kernel_surface_pick")  # [N, K, 1]
+        s = b.op("Exp", b.op("Neg", b.op("Mul", b.op("Sub", depth_s, depth), sec3)))  # [N, K, L]
+        sG = b.op("MatMul", s, "kernel_temperature_matrix")  # [N, K, L]
+        minus_sky = b.op("Squeeze", b.op("MatMul", sG, b.op("Unsqueeze", T, ax2)), ax2)  # (s G).T = -D [N, K]
+        r = b.op("Neg", b.op("Mul", g, b.op("Add", minus_sky, Ts1)))
+        out["features"] = b.op("Concat", f, g, r, axis=1)
+        out.update(s=s, minus_sky=minus_sky, drdT=b.op("Neg", b.op("Mul", t_surface, sG)))
+    return out
 
 
-def _kernel_humidity_terms(b: _Builder, layout: GraphLayout, kern: dict, d_f: str, d_g: str, Ts: str) -> list:
-    """dy/dq [N, C, L] through the kernels (both paths in one product by M^T)."""
+def _kernel_humidity_terms(b: _Builder, layout: GraphLayout, kern: dict, d_f: str, d_g: str, d_r, Ts: str) -> list:
+    """dy/dq [N, C, L] through the kernels (both paths in one product by M^T).
+
+    With tau = kappa P (per kernel), sigma = sec(theta), h = T G^T and S = (s G).T:
+    df/dtau_i = -sigma t_i h_i - sigma t_s Ts 1_s,  dg/dtau_i = -sigma t_s 1_s,
+    dr/dtau_i = -sigma t_s s_i h_i + sigma t_s (2 S + Ts) 1_s   (r = -t_s (S + Ts)).
+    """
     T, q = INPUT_NAMES[0], INPUT_NAMES[1]
+    ax1 = b.ints([1])
     L, C, K = layout.n_levels, layout.n_channels, layout.n_kernels
     rho = b.op("Mul", kern["t"], b.op("Neg", kern["sec3"]))  # dt_k/d(kappa_k P) [N, K, L]
     h = b.op("Unsqueeze", b.op("MatMul", T, b.op("Transpose", "kernel_temperature_matrix", perm=[1, 0])),
@@ -376,9 +412,18 @@ def _kernel_humidity_terms(b: _Builder, layout: GraphLayout, kern: dict, d_f: st
                     b.ints([0, -1, K]))
 
     ts3 = b.op("Unsqueeze", Ts, b.ints([1, 2]))  # [N, 1, 1]
-    surface_weight = per_path(b.op("Add", b.op("Mul", d_f, ts3), d_g))
-    d_path = b.op("Mul", b.op("MatMul", per_path(d_f), rho), h)  # dy/dP [N, 2C, L]
-    at_surface = b.op("MatMul", surface_weight, b.op("MatMul", rho, "kernel_surface_pick"))  # [N, 2C, 1]
+    rho_s = b.op("MatMul", rho, "kernel_surface_pick")  # -sigma t_s [N, K, 1]
+    weight = b.op("Add", b.op("Mul", d_f, ts3), d_g)
+    if d_r is None:
+        d_path = b.op("Mul", b.op("MatMul", per_path(d_f), rho), h)  # dy/dP [N, 2C, L]
+    else:
+        # f and r in one product: [a, c] (per path) by [rho; rho_s s]
+        both = b.op("Concat", per_path(d_f), per_path(d_r), axis=2)  # [N, 2C, 2K]
+        d_path = b.op("Mul", b.op("MatMul", both, b.op("Concat", rho, b.op("Mul", rho_s, kern["s"]), axis=1)), h)
+        s2_ts = b.op("Add", b.op("Add", kern["minus_sky"], kern["minus_sky"]), b.op("Unsqueeze", Ts, ax1))  # 2S + Ts [N, K]
+        weight = b.op("Sub", weight, b.op("Mul", d_r, b.op("Unsqueeze", s2_ts, ax1)))
+    surface_weight = per_path(weight)
+    at_surface = b.op("MatMul", surface_weight, rho_s)  # [N, 2C, 1]
     d_path = b.op("Add", d_path, b.op("Mul", at_surface, b.op("Transpose", "kernel_surface_pick", perm=[1, 0])))
     d_q = b.op("MatMul", b.op("Reshape", d_path, b.ints([-1, L])),
                b.op("Transpose", "kernel_path_matrix", perm=[1, 0]))

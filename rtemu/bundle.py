@@ -26,7 +26,7 @@ __all__ = ["FORMAT_VERSION", "Bundle", "BundleError", "read_bundle", "describe",
            "weights_sha256"]
 
 #: Bundle format written by this rtemu; files with a larger number are refused.
-FORMAT_VERSION = 3
+FORMAT_VERSION = 4
 PREFIX = "rtemu."
 
 REQUIRED_KEYS = (

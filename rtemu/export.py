@@ -287,6 +287,7 @@ def _metadata(*, layout, config, instrument, channel_ids, grid, bounds, parts, l
             "n_reconstruction_blocks": layout.n_reconstruction_blocks, "opset": _graph.OPSET,
             "water_path": layout.water_path,
             "n_line_kernels": layout.n_line_kernels, "n_continuum_kernels": layout.n_continuum_kernels,
+            "reflection_kernels": layout.reflection_kernels,
             "level_order": "surface first" if grid[0] > grid[-1] else "top first",
         }, sort_keys=True),
         "rtemu.features": config.to_json(),
@@ -399,7 +400,8 @@ def build_bundle_model(emu: TrainedEmulator, *, base=None, dtype=np.float32):
                                 hidden=hidden, humidity=cfg.humidity, zenith=cfg.zenith,
                                 n_reconstruction_blocks=blocks, water_path=cfg.water_path,
                                 n_line_kernels=len(cfg.line_kernels),
-                                n_continuum_kernels=len(cfg.continuum_kernels))
+                                n_continuum_kernels=len(cfg.continuum_kernels),
+                                reflection_kernels=cfg.reflection_kernels)
     arrays = _assemble(shared, bounds, parts, layout)
     model = _graph.build_model(layout, arrays, dtype=dtype)
     meta = _metadata(layout=layout, config=cfg, instrument=instrument, channel_ids=ids,

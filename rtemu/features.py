@@ -114,6 +114,12 @@ class FeatureConfig:
         100 hPa: the demo recipe's median d ln q Jacobian error of mw-h2 fell from 14 % to
         9 %, but the full recipe's got worse (6.9 % to 8.2 %; DEVELOPERS.md), so the
         shipped recipes leave it at 0.
+    reflection_kernels : bool
+        Add, per kernel, the reflected-sky term r_k = t_k,s (D_k - Ts) [K]: D_k the
+        downwelling sky temperature at the surface seen through the same gray absorber
+        (see :func:`opacity_kernel_features`). With it a gray channel is linear in the
+        features, BT = f_k + (1 - e) r_k, and the linear part (affine in the emissivity e)
+        can carry the surface-reflection physics exactly.
     """
 
     humidity: str = "log+linear"
@@ -128,6 +134,7 @@ class FeatureConfig:
     line_kernels: tuple = ()
     continuum_kernels: tuple = ()
     humidity_top_hpa: float = 0.0
+    reflection_kernels: bool = False
 
     def __post_init__(self):
         top = self.humidity_top_hpa
@@ -145,6 +152,8 @@ class FeatureConfig:
             raise ValueError(f"zenith transform must be one of {ZENITH_TRANSFORMS}, got {self.zenith!r}")
         if not (self.humidity_floor > 0 and np.isfinite(self.humidity_floor)):
             raise ValueError(f"humidity_floor must be a positive number [kg kg-1], got {self.humidity_floor!r}")
+        if not isinstance(self.reflection_kernels, bool):
+            raise ValueError(f"reflection_kernels must be true or false, got {self.reflection_kernels!r}")
         if not isinstance(self.water_path, bool):
             raise ValueError(f"water_path must be true or false, got {self.water_path!r}")
         if not (self.water_path_floor > 0 and np.isfinite(self.water_path_floor)):
@@ -176,9 +185,14 @@ class FeatureConfig:
         """K_l + K_c: gray opacity kernels [1]."""
         return len(self.line_kernels) + len(self.continuum_kernels)
 
+    @property
+    def n_kernel_features(self) -> int:
+        """Kernel scalars in x: 2 K ([f, t_s]) or 3 K with ``reflection_kernels`` [1]."""
+        return (3 if self.reflection_kernels else 2) * self.n_kernels
+
     def n_features(self, n_levels: int) -> int:
-        """F = (number of profile blocks) L + 2 (kernels) + 2 [1]."""
-        return len(self.blocks()) * n_levels + 2 * self.n_kernels + 2
+        """F = (number of profile blocks) L + (kernel scalars) + 2 [1]."""
+        return len(self.blocks()) * n_levels + self.n_kernel_features + 2
 
 
 def humidity_transform(specific_humidity, config: FeatureConfig) -> np.ndarray:
@@ -383,13 +397,22 @@ def kernel_temperature_matrix(pressure_hpa) -> np.ndarray:
 
 def opacity_kernel_features(air_temperature, specific_humidity, surface_temperature, sensor_zenith_angle,
                             config: FeatureConfig, pressure_hpa) -> np.ndarray:
-    """Gray opacity kernels [f_1..f_K, t_s,1..t_s,K] (see the module docstring).
+    """Gray opacity kernels [f_1..f_K, t_s,1..t_s,K (, r_1..r_K)] (see the module docstring).
 
     For kernel k with coefficient kappa_k on path P (line or continuum, see
     :func:`kernel_path_matrices`): t_k,i = exp(-kappa_k sec(theta) P_i),
     f_k = sum_j Tbar_j (t_k,j+1 - t_k,j) + Ts t_k,s, t_k,s the transmittance of the whole
     column (s: the level of highest pressure). The weights of f sum to 1, so f is a
-    weighted mean of the air and surface temperatures.
+    weighted mean of the air and surface temperatures: the brightness temperature of a
+    gray, non-scattering column over a black surface (Schwarzschild's equation with the
+    Planck function linear in T).
+
+    With ``config.reflection_kernels``, also r_k = t_k,s (D_k - Ts), where
+    D_k = sum_j Tbar_j (s_k,j - s_k,j+1) is the downwelling sky temperature at the surface
+    (no cosmic background), s_k,i = exp(-kappa_k sec(theta) (P_s - P_i)) the transmittance
+    from level i down to the surface along the same (specularly reflected) slant path.
+    Over a surface of emissivity e the gray column's brightness temperature is then
+    f_k + (1 - e) r_k.
 
     Parameters
     ----------
@@ -409,18 +432,25 @@ def opacity_kernel_features(air_temperature, specific_humidity, surface_temperat
     Returns
     -------
     numpy.ndarray
-        Shape (N, 2K): f [K] then t_s [1], kernels in config order.
+        Shape (N, 2K): f [K] then t_s [1], kernels in config order; (N, 3K) with
+        ``reflection_kernels``, r [K] last.
     """
     T = np.asarray(air_temperature, dtype=float)
     q = np.asarray(specific_humidity, dtype=float)
     m_line, m_cont = kernel_path_matrices(pressure_hpa)
     sec = 1.0 / np.cos(np.radians(np.asarray(sensor_zenith_angle, dtype=float)))
     paths = np.stack([q @ m_line, (q * q) @ m_cont], axis=1)  # [N, 2, L]
-    t = np.exp(-sec[:, None, None] * (kernel_coefficient_matrix(config) @ paths))  # [N, K, L]
+    depth = sec[:, None, None] * (kernel_coefficient_matrix(config) @ paths)  # kappa sec P [N, K, L]
+    t = np.exp(-depth)
     t_s = t[:, :, surface_level(pressure_hpa)]
     f = np.einsum("nkl,nl->nk", t @ kernel_temperature_matrix(pressure_hpa), T)
-    f += np.asarray(surface_temperature, dtype=float)[:, None] * t_s
-    return np.concatenate([f, t_s], axis=1)
+    Ts = np.asarray(surface_temperature, dtype=float)[:, None]
+    f += Ts * t_s
+    if not config.reflection_kernels:
+        return np.concatenate([f, t_s], axis=1)
+    down = np.exp(-(depth[:, :, [surface_level(pressure_hpa)]] - depth))  # s [N, K, L]
+    sky = -np.einsum("nkl,nl->nk", down @ kernel_temperature_matrix(pressure_hpa), T)  # D
+    return np.concatenate([f, t_s, t_s * (sky - Ts)], axis=1)
 
 
 def raw_features(air_temperature, specific_humidity, surface_temperature, sensor_zenith_angle,
@@ -445,7 +475,7 @@ def raw_features(air_temperature, specific_humidity, surface_temperature, sensor
     Returns
     -------
     numpy.ndarray
-        x, shape (N, F) with F = B L + 2 K + 2 for B profile blocks and K kernels [mixed
+        x, shape (N, F) with F = B L + 2 K + 2 (3 K with reflection) for B profile blocks and K kernels [mixed
         units: K, ln(kg kg-1), kg kg-1, ln(kg m-2), K, 1, K, 1].
     """
     T = np.asarray(air_temperature, dtype=float)
@@ -478,10 +508,10 @@ def kernel_columns(config: FeatureConfig, n_levels: int) -> np.ndarray:
     Returns
     -------
     numpy.ndarray
-        int indices, 2 K of them (empty without kernels).
+        int indices, 2 K of them (3 K with reflection; empty without kernels).
     """
     start = sum(min(k, n_levels) if k else n_levels for _, k in config.blocks())
-    return np.arange(start, start + 2 * config.n_kernels)
+    return np.arange(start, start + config.n_kernel_features)
 
 
 class FeatureTransform:

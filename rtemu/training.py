@@ -151,6 +151,7 @@ SCHEMA: dict[str, dict[str, Any]] = {
         "line_kernels": _coefficients,
         "continuum_kernels": _coefficients,
         "humidity_top_hpa": _float(0.0),
+        "reflection_kernels": _bool,
     },
     "linear": {"residual": _bool, "ridge_alpha": _float(0.0)},
     "network": {k: v for k, v in _NETWORK.items() if k != "ridge_alpha"},

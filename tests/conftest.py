@@ -153,6 +153,7 @@ temperature_components = 8
 humidity_components = 8
 line_kernels = [0.1, 3.0]
 continuum_kernels = [30.0]
+reflection_kernels = true
 [linear]
 residual = true
 ridge_alpha = 1e-6

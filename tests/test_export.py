@@ -30,6 +30,7 @@ water_path_components = 4
 line_kernels = [0.03, 1.0, 30.0]
 continuum_kernels = [1.0, 100.0]
 humidity_top_hpa = 100.0
+reflection_kernels = true
 [network]
 hidden_layers = [10, 7]
 max_iter = 60
@@ -88,7 +89,8 @@ def _layout(b):
                               n_reconstruction_blocks=g["n_reconstruction_blocks"],
                               water_path=g.get("water_path", False),
                               n_line_kernels=g.get("n_line_kernels", 0),
-                              n_continuum_kernels=g.get("n_continuum_kernels", 0))
+                              n_continuum_kernels=g.get("n_continuum_kernels", 0),
+                              reflection_kernels=g.get("reflection_kernels", False))
 
 
 def test_flag_bits_match_rtemu_flags():
@@ -102,8 +104,8 @@ def test_graph_is_valid_onnx_and_lean(trained):
     assert model.opset_import[0].version == _graph.OPSET
     # nodes on initializers only are folded at session creation; what runs per call stays
     # small (each node costs ~1 us in a single-profile call); the water-path block (on in
-    # this recipe) adds 12 (95 without it), the opacity kernels 57
-    assert len(_graph.runtime_nodes(model)) <= 164
+    # this recipe) adds 12 (95 without it), the opacity kernels 57, their reflection term 32
+    assert len(_graph.runtime_nodes(model)) <= 196
 
 
 def test_channel_without_kernels_has_zero_kernel_weights(trained):
@@ -112,7 +114,7 @@ def test_channel_without_kernels_has_zero_kernel_weights(trained):
     b = read_bundle(trained["path"])
     arrays, emu = b.arrays(), trained["emu"]
     cols = kernel_columns(emu.config, emu.pressure_hpa.size)
-    assert cols.size == 10
+    assert cols.size == 15  # 5 kernels x [f, t_s, r]
     i = list(b.channel_ids).index("mw-t3")
     for name in ("layer1_weight", "linear_weight", "linear_emissivity_weight", "linear_zenith_weight"):
         a = arrays[name]

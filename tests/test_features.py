@@ -89,6 +89,48 @@ def test_single_gray_layer_over_a_black_surface():
     assert f == pytest.approx(270.0 * (1 - t_expected) + 295.0 * t_expected, rel=1e-12)
 
 
+REFLECTING = FeatureConfig(line_kernels=(0.01, 0.3, 10.0), continuum_kernels=(1.0, 100.0), reflection_kernels=True)
+
+
+def test_single_gray_layer_over_a_reflecting_surface():
+    # one isothermal gray layer (transmittance t, temperature Tbar) over a surface of
+    # emissivity e, specular: BT = e Ts t + Tbar (1 - t) + (1 - e) t Tbar (1 - t), the
+    # layer's own emission, the surface's, and the layer's downward emission reflected and
+    # transmitted (textbook single-slab result with the Planck function linear in T; from
+    # memory). The features give it as f + (1 - e) r.
+    p = np.array([1000.0, 600.0])
+    T = np.array([[290.0, 250.0]])
+    q = np.array([[8e-3, 2e-3]])
+    ts, zen = np.array([295.0]), np.array([30.0])
+    cfg = FeatureConfig(line_kernels=(0.5,), reflection_kernels=True)
+    f, t, r = opacity_kernel_features(T, q, ts, zen, cfg, p)[0]
+    for e in (0.4, 0.75, 1.0):
+        expected = e * 295.0 * t + 270.0 * (1 - t) + (1 - e) * t * 270.0 * (1 - t)
+        assert f + (1 - e) * r == pytest.approx(expected, rel=1e-12)
+
+
+def test_isothermal_downwelling_is_analytic():
+    # an isothermal column at Ta sends Ta (1 - t_s) down to the surface (no cosmic
+    # background): r = t_s (Ta (1 - t_s) - Ts)
+    p, _, q, ts, zen = _profiles()
+    T = np.full((len(zen), p.size), 241.0)
+    out = opacity_kernel_features(T, q, ts, zen, REFLECTING, p)
+    K = REFLECTING.n_kernels
+    t_s, r = out[:, K:2 * K], out[:, 2 * K:]
+    np.testing.assert_allclose(r, t_s * (241.0 * (1 - t_s) - ts[:, None]), rtol=1e-10, atol=1e-9)
+    # the first 2 K columns are those of the configuration without reflection
+    plain = opacity_kernel_features(T, q, ts, zen, CONFIG, p)
+    np.testing.assert_array_equal(out[:, :2 * K], plain)
+
+
+def test_reflection_level_order_does_not_matter():
+    p, T, q, ts, zen = _profiles()
+    a = opacity_kernel_features(T, q, ts, zen, REFLECTING, p)
+    b = opacity_kernel_features(T[:, ::-1], q[:, ::-1], ts, zen, REFLECTING, p[::-1])
+    np.testing.assert_allclose(a, b, rtol=1e-12)
+    assert a.shape[1] == 3 * REFLECTING.n_kernels == REFLECTING.n_kernel_features
+
+
 def test_level_order_does_not_matter():
     p, T, q, ts, zen = _profiles()
     a = opacity_kernel_features(T, q, ts, zen, CONFIG, p)
