@@ -108,6 +108,8 @@ class GraphLayout:
     n_line_kernels: int = 0
     n_continuum_kernels: int = 0
     reflection_kernels: bool = False
+    n_band_kernels: int = 0
+    n_channel_kernels: int = 0
 
     @property
     def n_profile_blocks(self) -> int:
@@ -115,7 +117,13 @@ class GraphLayout:
 
     @property
     def n_kernels(self) -> int:
-        return self.n_line_kernels + self.n_continuum_kernels
+        """Kernel feature groups: bank kernels plus channel kernels."""
+        return self.n_line_kernels + self.n_continuum_kernels + self.n_channel_kernels
+
+    @property
+    def n_kernel_terms(self) -> int:
+        """Gray absorbers computed: bank kernels plus the channel kernels' sub-bands."""
+        return self.n_line_kernels + self.n_continuum_kernels + self.n_band_kernels
 
     @property
     def n_features(self) -> int:
@@ -218,7 +226,7 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     x_theta = sec if layout.zenith == "secant" else theta
     Ts1 = b.op("Unsqueeze", Ts, ax1)
     s1 = b.op("Unsqueeze", x_theta, ax1)  # [N, 1]
-    kern = _kernel_forward(b, sec, Ts1, layout.reflection_kernels) if layout.n_kernels else None
+    kern = _kernel_forward(b, layout, sec, Ts1) if layout.n_kernels else None
     if kern is not None:
         profile.append(kern["features"])
     # centring first keeps float32 round-off of the following products at the size of the
@@ -291,9 +299,15 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     d_r = None
     if kern is not None:
         d_f, d_g = back(k0, k0 + nk), back(k0 + nk, k0 + 2 * nk)  # [N, C, K] each
-        d_kT = b.op("MatMul", d_f, kern["dfdT"])
         if layout.reflection_kernels:
             d_r = back(k0 + 2 * nk, k0 + 3 * nk)
+        if layout.n_channel_kernels:
+            # from the kernel features back to the kernel terms (sub-bands): [N, C, K_t]
+            spread = b.op("Transpose", "kernel_combination", perm=[1, 0])
+            d_f, d_g = b.op("MatMul", d_f, spread), b.op("MatMul", d_g, spread)
+            d_r = None if d_r is None else b.op("MatMul", d_r, spread)
+        d_kT = b.op("MatMul", d_f, kern["dfdT"])
+        if d_r is not None:
             d_kT = b.op("Add", d_kT, b.op("MatMul", d_r, kern["drdT"]))
         b.op("Add", back(0, L), d_kT, out="jacobian_air_temperature")
     else:
@@ -356,9 +370,13 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     return model
 
 
-def _kernel_forward(b: _Builder, sec: str, Ts1: str, reflection: bool = False) -> dict:
+def _kernel_forward(b: _Builder, layout: GraphLayout, sec: str, Ts1: str) -> dict:
     """Gray opacity kernels: features [N, 2K] = [f, g] (or [N, 3K] = [f, g, r] with the
     reflected-sky term) and what their Jacobian reuses.
+
+    Computed per kernel term [N, K_t, ...]; with channel kernels, the sub-band terms add a
+    constant dry-air depth (``kernel_dry_depth`` [K_t, L]) and the features are the
+    weighted sums ``kernel_combination`` [K_t, K] of the terms.
 
     Both paths come from one product: [q p/p_0, q q p/(epsilon p_0)] M (``kernel_path_scale``
     [2, L] holds the two level factors, ``kernel_path_matrix`` is M of
@@ -370,7 +388,9 @@ def _kernel_forward(b: _Builder, sec: str, Ts1: str, reflection: bool = False) -
     q_powers = b.op("Concat", b.op("Unsqueeze", q, ax1), b.op("Unsqueeze", b.op("Mul", q, q), ax1), axis=1)
     paths = b.op("MatMul", b.op("Mul", q_powers, "kernel_path_scale"), "kernel_path_matrix")  # [N, 2, L]
     sec3 = b.op("Unsqueeze", sec, b.ints([1, 2]))  # [N, 1, 1]
-    depth = b.op("MatMul", "kernel_coefficients", paths)  # [N, K, L]
+    depth = b.op("MatMul", "kernel_coefficients", paths)  # [N, K_t, L]
+    if layout.n_band_kernels:
+        depth = b.op("Add", depth, "kernel_dry_depth")
     t = b.op("Exp", b.op("Neg", b.op("Mul", depth, sec3)))  # [N, K, L]
     dfdT = b.op("MatMul", t, "kernel_temperature_matrix")  # df_k/dT [N, K, L]
     t_surface = b.op("MatMul", t, "kernel_surface_pick")  # [N, K, 1]
@@ -379,7 +399,7 @@ def _kernel_forward(b: _Builder, sec: str, Ts1: str, reflection: bool = False) -
     f = b.op("Add", f, b.op("Mul", g, Ts1))
     out = {"features": b.op("Concat", f, g, axis=1), "t": t, "dfdT": dfdT, "t_surface": t_surface,
            "sec3": sec3}
-    if reflection:
+    if layout.reflection_kernels:
         # s = exp(-sec (depth_s - depth)): transmittance from each level down to the surface;
         # D = -(s G).T the downwelling sky temperature; r = t_s (D - Ts) = -t_s ((s G).T + Ts)
         depth_s = b.op("MatMul", depth, "kernel_surface_pick")  # [N, K, 1]
@@ -387,8 +407,11 @@ def _kernel_forward(b: _Builder, sec: str, Ts1: str, reflection: bool = False) -
         sG = b.op("MatMul", s, "kernel_temperature_matrix")  # [N, K, L]
         minus_sky = b.op("Squeeze", b.op("MatMul", sG, b.op("Unsqueeze", T, ax2)), ax2)  # (s G).T = -D [N, K]
         r = b.op("Neg", b.op("Mul", g, b.op("Add", minus_sky, Ts1)))
-        out["features"] = b.op("Concat", f, g, r, axis=1)
         out.update(s=s, minus_sky=minus_sky, drdT=b.op("Neg", b.op("Mul", t_surface, sG)))
+    parts = [f, g, r] if layout.reflection_kernels else [f, g]
+    if layout.n_channel_kernels:
+        parts = [b.op("MatMul", part, "kernel_combination") for part in parts]
+    out["features"] = b.op("Concat", *parts, axis=1)
     return out
 
 
@@ -401,7 +424,7 @@ def _kernel_humidity_terms(b: _Builder, layout: GraphLayout, kern: dict, d_f: st
     """
     T, q = INPUT_NAMES[0], INPUT_NAMES[1]
     ax1 = b.ints([1])
-    L, C, K = layout.n_levels, layout.n_channels, layout.n_kernels
+    L, C, K = layout.n_levels, layout.n_channels, layout.n_kernel_terms
     rho = b.op("Mul", kern["t"], b.op("Neg", kern["sec3"]))  # dt_k/d(kappa_k P) [N, K, L]
     h = b.op("Unsqueeze", b.op("MatMul", T, b.op("Transpose", "kernel_temperature_matrix", perm=[1, 0])),
              b.ints([1]))  # df/dt without the surface term [N, 1, L]
@@ -519,7 +542,11 @@ def primary_shapes(layout: GraphLayout) -> dict[str, tuple[int, ...]]:
     if layout.n_kernels:
         shapes["kernel_path_matrix"] = (L, L)
         shapes["kernel_path_scale"] = (2, L)
-        shapes["kernel_coefficients"] = (layout.n_kernels, 2)
+        shapes["kernel_coefficients"] = (layout.n_kernel_terms, 2)
+        if layout.n_band_kernels:
+            shapes["kernel_dry_depth"] = (layout.n_kernel_terms, L)
+        if layout.n_channel_kernels:
+            shapes["kernel_combination"] = (layout.n_kernel_terms, layout.n_kernels)
         shapes["kernel_temperature_matrix"] = (L, L)
         shapes["kernel_surface_pick"] = (L, 1)
     for k in range(2, len(h) + 1):

@@ -33,6 +33,8 @@ from rtemu._io import write_bytes_atomic
 from rtemu.features import (
     FeatureConfig,
     kernel_coefficient_matrix,
+    kernel_combination_matrix,
+    kernel_dry_depth,
     kernel_path_scales,
     kernel_temperature_matrix,
     surface_level,
@@ -225,6 +227,9 @@ def _kernel_arrays(config: FeatureConfig, pressure_hpa) -> dict:
         "kernel_temperature_matrix": kernel_temperature_matrix(p),
         "kernel_surface_pick": pick,
     }
+    if config.channel_kernels:
+        arrays["kernel_dry_depth"] = kernel_dry_depth(config, p)
+        arrays["kernel_combination"] = kernel_combination_matrix(config)
     return {k: v.astype(np.float32) for k, v in arrays.items()}
 
 
@@ -288,6 +293,7 @@ def _metadata(*, layout, config, instrument, channel_ids, grid, bounds, parts, l
             "water_path": layout.water_path,
             "n_line_kernels": layout.n_line_kernels, "n_continuum_kernels": layout.n_continuum_kernels,
             "reflection_kernels": layout.reflection_kernels,
+            "n_band_kernels": layout.n_band_kernels, "n_channel_kernels": layout.n_channel_kernels,
             "level_order": "surface first" if grid[0] > grid[-1] else "top first",
         }, sort_keys=True),
         "rtemu.features": config.to_json(),
@@ -401,7 +407,9 @@ def build_bundle_model(emu: TrainedEmulator, *, base=None, dtype=np.float32):
                                 n_reconstruction_blocks=blocks, water_path=cfg.water_path,
                                 n_line_kernels=len(cfg.line_kernels),
                                 n_continuum_kernels=len(cfg.continuum_kernels),
-                                reflection_kernels=cfg.reflection_kernels)
+                                reflection_kernels=cfg.reflection_kernels,
+                                n_band_kernels=cfg.n_kernel_terms - len(cfg.line_kernels) - len(cfg.continuum_kernels),
+                                n_channel_kernels=len(cfg.channel_kernels))
     arrays = _assemble(shared, bounds, parts, layout)
     model = _graph.build_model(layout, arrays, dtype=dtype)
     meta = _metadata(layout=layout, config=cfg, instrument=instrument, channel_ids=ids,
@@ -472,8 +480,9 @@ def _check_update(base, training, recipe) -> None:
         raise ValueError(f"update: the training data's pressure grid ({training.pressure_hpa.size} levels) is not "
                          f"the bundle's ({grid.size} levels) (rule: retrain channels on the bundle's grid)")
     bundle_features = FeatureConfig(**base.features)
-    if recipe.feature_config() != bundle_features:
-        raise ValueError(f"update: recipe {recipe.source} [features] {recipe.feature_config()} differ from the "
+    recipe_features = recipe.feature_config(training.instrument)
+    if recipe_features != bundle_features:
+        raise ValueError(f"update: recipe {recipe.source} [features] {recipe_features} differ from the "
                          f"bundle's {bundle_features} (rule: the shared transform is fixed by the first training)")
     data_inst = training.instrument
     missing = [c for c in base.channel_ids if c not in data_inst.channel_ids]

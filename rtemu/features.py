@@ -65,7 +65,7 @@ from rtemu.constants import EPSILON, STANDARD_GRAVITY
 __all__ = ["FeatureConfig", "FeatureTransform", "raw_features", "humidity_transform", "zenith_transform",
            "water_path_matrix", "water_path_transform", "kernel_path_matrices", "kernel_temperature_matrix",
            "opacity_kernel_features", "kernel_columns", "kernel_path_scales", "kernel_coefficient_matrix",
-           "surface_level"]
+           "surface_level", "kernel_dry_depth", "kernel_combination_matrix", "channel_kernels_of"]
 
 #: p_0 of the kernel paths [hPa].
 KERNEL_REFERENCE_PRESSURE_HPA = 1013.25
@@ -120,6 +120,15 @@ class FeatureConfig:
         (see :func:`opacity_kernel_features`). With it a gray channel is linear in the
         features, BT = f_k + (1 - e) r_k, and the linear part (affine in the emissivity e)
         can carry the surface-reflection physics exactly.
+    channel_kernels : tuple of tuple of (weight, dry, line, continuum)
+        Kernels made from an instrument's channels (recipe ``instrument_kernels = true``
+        fills them from the training data's instrument): one per channel, the
+        weight-averaged [f, t_s, (r)] of its sub-bands, each sub-band a gray absorber of
+        depth sec(theta) (k_dry P_d + k_line P_l + k_cont P_c) [m2 kg-1 coefficients; P_d
+        the dry-air path sum (p/p_0) dm, constant]. For a channel whose sub-bands have
+        pressure exponent 1 and no temperature dependence, with the Planck function linear
+        in T, its own kernel is its brightness temperature; the networks learn what is
+        left (Planck curvature, temperature-dependent absorption).
     """
 
     humidity: str = "log+linear"
@@ -135,6 +144,7 @@ class FeatureConfig:
     continuum_kernels: tuple = ()
     humidity_top_hpa: float = 0.0
     reflection_kernels: bool = False
+    channel_kernels: tuple = ()
 
     def __post_init__(self):
         top = self.humidity_top_hpa
@@ -152,6 +162,7 @@ class FeatureConfig:
             raise ValueError(f"zenith transform must be one of {ZENITH_TRANSFORMS}, got {self.zenith!r}")
         if not (self.humidity_floor > 0 and np.isfinite(self.humidity_floor)):
             raise ValueError(f"humidity_floor must be a positive number [kg kg-1], got {self.humidity_floor!r}")
+        object.__setattr__(self, "channel_kernels", _checked_channel_kernels(self.channel_kernels))
         if not isinstance(self.reflection_kernels, bool):
             raise ValueError(f"reflection_kernels must be true or false, got {self.reflection_kernels!r}")
         if not isinstance(self.water_path, bool):
@@ -182,8 +193,13 @@ class FeatureConfig:
 
     @property
     def n_kernels(self) -> int:
-        """K_l + K_c: gray opacity kernels [1]."""
-        return len(self.line_kernels) + len(self.continuum_kernels)
+        """K_l + K_c + K_ch: kernel feature groups [f, t_s, (r)] (bank and channel kernels) [1]."""
+        return len(self.line_kernels) + len(self.continuum_kernels) + len(self.channel_kernels)
+
+    @property
+    def n_kernel_terms(self) -> int:
+        """Gray absorbers computed: bank kernels plus every sub-band of the channel kernels [1]."""
+        return len(self.line_kernels) + len(self.continuum_kernels) + sum(len(c) for c in self.channel_kernels)
 
     @property
     def n_kernel_features(self) -> int:
@@ -315,11 +331,56 @@ def kernel_path_scales(pressure_hpa) -> np.ndarray:
     return np.stack([ratio, ratio / EPSILON])
 
 
-def kernel_coefficient_matrix(config: FeatureConfig) -> np.ndarray:
-    """kappa [K, 2]: each kernel's coefficient in the column of its path (0: line, 1: continuum).
+def _checked_channel_kernels(value) -> tuple:
+    rule = ("channel_kernels must be a list of channels, each a non-empty list of "
+            "[weight, dry, line, continuum] sub-bands (weight > 0, coefficients >= 0 [m2 kg-1])")
+    if not isinstance(value, (list, tuple)):
+        raise ValueError(f"{rule}, got {value!r}")
+    out = []
+    for channel in value:
+        if not isinstance(channel, (list, tuple)) or not channel:
+            raise ValueError(f"{rule}, got {channel!r}")
+        bands = []
+        for band in channel:
+            if (not isinstance(band, (list, tuple)) or len(band) != 4
+                    or any(isinstance(v, bool) or not isinstance(v, (int, float)) or not 0 <= v < np.inf
+                           for v in band) or not band[0] > 0):
+                raise ValueError(f"{rule}, got {band!r}")
+            bands.append(tuple(float(v) for v in band))
+        out.append(tuple(bands))
+    return tuple(out)
 
-    The kernel order of the features (line kernels, then continuum kernels, each in config
-    order); the depth of kernel k is (kappa @ [P_line, P_continuum])_k.
+
+def channel_kernels_of(instrument) -> tuple:
+    """Channel kernels [(weight, dry, line, continuum) per sub-band] of an instrument's channels.
+
+    Parameters
+    ----------
+    instrument : rtemu.instrument.Instrument
+
+    Returns
+    -------
+    tuple
+        One tuple of sub-bands per channel, in channel order (weights [1], coefficients
+        [m2 kg-1]), the coefficients rescaled from the instrument's reference pressure to
+        the kernels' p_0, which is exact for the pressure exponent 1 of the kernel paths
+        (other exponents and the temperature dependence are left to the networks).
+    """
+    scale = KERNEL_REFERENCE_PRESSURE_HPA / float(instrument.reference_pressure_hpa)
+    return tuple(tuple((b.weight, b.dry * scale, b.h2o * scale, b.continuum * scale) for b in ch.bands)
+                 for ch in instrument.channels)
+
+
+def _band_terms(config: FeatureConfig) -> list:
+    return [band for channel in config.channel_kernels for band in channel]
+
+
+def kernel_coefficient_matrix(config: FeatureConfig) -> np.ndarray:
+    """kappa [K_t, 2]: each kernel term's coefficients on the line (0) and continuum (1) paths.
+
+    Kernel terms in order: line kernels, continuum kernels (one path each), then the
+    sub-bands of the channel kernels (both paths, plus a dry-air depth, see
+    :func:`kernel_dry_depth`); the water depth of term k is (kappa @ [P_line, P_continuum])_k.
 
     Parameters
     ----------
@@ -328,13 +389,56 @@ def kernel_coefficient_matrix(config: FeatureConfig) -> np.ndarray:
     Returns
     -------
     numpy.ndarray
-        [m2 kg-1], shape (K, 2).
+        [m2 kg-1], shape (K_t, 2).
     """
-    kappa = np.zeros((config.n_kernels, 2))
-    n_line = len(config.line_kernels)
+    kappa = np.zeros((config.n_kernel_terms, 2))
+    n_line, n_cont = len(config.line_kernels), len(config.continuum_kernels)
     kappa[:n_line, 0] = config.line_kernels
-    kappa[n_line:, 1] = config.continuum_kernels
+    kappa[n_line:n_line + n_cont, 1] = config.continuum_kernels
+    bands = _band_terms(config)
+    if bands:
+        kappa[n_line + n_cont:] = np.array(bands)[:, 2:4]
     return kappa
+
+
+def kernel_dry_depth(config: FeatureConfig, pressure_hpa) -> np.ndarray:
+    """Nadir dry-air optical depth above each level of each kernel term, k_dry P_d [K_t, L] [1].
+
+    P_d,i = sum over the layers above level i of the layer mean of (p / p_0) times the air
+    mass dp / g [kg m-2] (the line path of q = 1); zero rows for the bank kernels.
+
+    Parameters
+    ----------
+    config : FeatureConfig
+    pressure_hpa : array_like
+        p [hPa], shape (L,).
+
+    Returns
+    -------
+    numpy.ndarray
+        Shape (K_t, L).
+    """
+    p = np.asarray(pressure_hpa, dtype=float)
+    dry = np.zeros(config.n_kernel_terms)
+    bands = _band_terms(config)
+    if bands:
+        dry[-len(bands):] = np.array(bands)[:, 1]
+    path = np.ones(p.size) @ kernel_path_matrices(p)[0]
+    return dry[:, None] * path[None, :]
+
+
+def kernel_combination_matrix(config: FeatureConfig) -> np.ndarray:
+    """[K_t, K]: kernel terms to kernel features (identity for the bank; the normalised sub-band
+    weights of each channel kernel) [1]."""
+    n_bank = len(config.line_kernels) + len(config.continuum_kernels)
+    out = np.zeros((config.n_kernel_terms, config.n_kernels))
+    out[:n_bank, :n_bank] = np.eye(n_bank)
+    row = n_bank
+    for c, channel in enumerate(config.channel_kernels):
+        w = np.array([band[0] for band in channel])
+        out[row:row + w.size, n_bank + c] = w / w.sum()
+        row += w.size
+    return out
 
 
 def surface_level(pressure_hpa) -> int:
@@ -440,17 +544,22 @@ def opacity_kernel_features(air_temperature, specific_humidity, surface_temperat
     m_line, m_cont = kernel_path_matrices(pressure_hpa)
     sec = 1.0 / np.cos(np.radians(np.asarray(sensor_zenith_angle, dtype=float)))
     paths = np.stack([q @ m_line, (q * q) @ m_cont], axis=1)  # [N, 2, L]
-    depth = sec[:, None, None] * (kernel_coefficient_matrix(config) @ paths)  # kappa sec P [N, K, L]
+    nadir = kernel_coefficient_matrix(config) @ paths + kernel_dry_depth(config, pressure_hpa)
+    depth = sec[:, None, None] * nadir  # kappa sec P [N, K_t, L]
     t = np.exp(-depth)
     t_s = t[:, :, surface_level(pressure_hpa)]
     f = np.einsum("nkl,nl->nk", t @ kernel_temperature_matrix(pressure_hpa), T)
     Ts = np.asarray(surface_temperature, dtype=float)[:, None]
     f += Ts * t_s
-    if not config.reflection_kernels:
-        return np.concatenate([f, t_s], axis=1)
-    down = np.exp(-(depth[:, :, [surface_level(pressure_hpa)]] - depth))  # s [N, K, L]
-    sky = -np.einsum("nkl,nl->nk", down @ kernel_temperature_matrix(pressure_hpa), T)  # D
-    return np.concatenate([f, t_s, t_s * (sky - Ts)], axis=1)
+    parts = [f, t_s]
+    if config.reflection_kernels:
+        down = np.exp(-(depth[:, :, [surface_level(pressure_hpa)]] - depth))  # s [N, K_t, L]
+        sky = -np.einsum("nkl,nl->nk", down @ kernel_temperature_matrix(pressure_hpa), T)  # D
+        parts.append(t_s * (sky - Ts))
+    if config.channel_kernels:
+        combine = kernel_combination_matrix(config)
+        parts = [part @ combine for part in parts]
+    return np.concatenate(parts, axis=1)
 
 
 def raw_features(air_temperature, specific_humidity, surface_temperature, sensor_zenith_angle,

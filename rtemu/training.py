@@ -48,6 +48,7 @@ from rtemu.features import (
     ZENITH_TRANSFORMS,
     FeatureConfig,
     FeatureTransform,
+    channel_kernels_of,
     kernel_columns,
     raw_features,
 )
@@ -152,6 +153,7 @@ SCHEMA: dict[str, dict[str, Any]] = {
         "continuum_kernels": _coefficients,
         "humidity_top_hpa": _float(0.0),
         "reflection_kernels": _bool,
+        "instrument_kernels": _bool,
     },
     "linear": {"residual": _bool, "ridge_alpha": _float(0.0)},
     "network": {k: v for k, v in _NETWORK.items() if k != "ridge_alpha"},
@@ -162,7 +164,7 @@ CHANNEL_KEYS = {k: v for k, v in _NETWORK.items() if k != "activation"}
 
 DEFAULTS = {
     "training": {"seed": 0, "validation_fraction": 0.15, "max_profiles": 0},
-    "features": dataclasses.asdict(FeatureConfig()),
+    "features": {**dataclasses.asdict(FeatureConfig()), "instrument_kernels": False},
     "linear": {"residual": True, "ridge_alpha": 1e-3},
     "network": {
         "hidden_layers": [32, 32], "activation": "tanh", "solver": "lbfgs", "alpha": 1e-6,
@@ -206,8 +208,16 @@ class Recipe:
     def seed(self) -> int:
         return self.settings["training"]["seed"]
 
-    def feature_config(self) -> FeatureConfig:
-        return FeatureConfig(**self.settings["features"])
+    def feature_config(self, instrument: Instrument | None = None) -> FeatureConfig:
+        """The shared transform's settings; ``instrument`` fills the channel kernels when
+        the recipe has ``instrument_kernels = true`` (from all its channels)."""
+        settings = dict(self.settings["features"])
+        if settings.pop("instrument_kernels"):
+            if instrument is None:
+                raise ValueError(f"recipe {self.source}: instrument_kernels = true needs the instrument "
+                                 "(the training data's) to build its kernels")
+            settings["channel_kernels"] = channel_kernels_of(instrument)
+        return FeatureConfig(**settings)
 
     def network_for(self, channel_id: str) -> dict:
         """Network settings for one channel (recipe ``[network]`` + its overrides)."""
@@ -253,7 +263,7 @@ class Recipe:
                     "channels of a bundle share the number of hidden layers)"
                 )
         try:
-            FeatureConfig(**settings["features"])
+            FeatureConfig(**{k: v for k, v in settings["features"].items() if k != "instrument_kernels"})
         except ValueError as exc:
             raise ValueError(f"recipe {source}: [features]: {exc}") from None
         return cls(name=top["name"], description=top.get("description", ""), source=source,
@@ -856,7 +866,7 @@ def fit_emulator(data, recipe, *, channels=None, transform=None, workers=None, p
     val = np.sort(perm[:n_val])
     train = np.sort(perm[n_val:])
 
-    config = recipe.feature_config()
+    config = recipe.feature_config(inst)
     L = data.pressure_hpa.size
     x = raw_features(data.air_temperature[rows], data.specific_humidity[rows],
                      data.surface_temperature[rows], data.sensor_zenith_angle[rows], config, data.pressure_hpa)

@@ -31,6 +31,7 @@ line_kernels = [0.03, 1.0, 30.0]
 continuum_kernels = [1.0, 100.0]
 humidity_top_hpa = 100.0
 reflection_kernels = true
+instrument_kernels = true
 [network]
 hidden_layers = [10, 7]
 max_iter = 60
@@ -90,7 +91,9 @@ def _layout(b):
                               water_path=g.get("water_path", False),
                               n_line_kernels=g.get("n_line_kernels", 0),
                               n_continuum_kernels=g.get("n_continuum_kernels", 0),
-                              reflection_kernels=g.get("reflection_kernels", False))
+                              reflection_kernels=g.get("reflection_kernels", False),
+                              n_band_kernels=g.get("n_band_kernels", 0),
+                              n_channel_kernels=g.get("n_channel_kernels", 0))
 
 
 def test_flag_bits_match_rtemu_flags():
@@ -104,8 +107,9 @@ def test_graph_is_valid_onnx_and_lean(trained):
     assert model.opset_import[0].version == _graph.OPSET
     # nodes on initializers only are folded at session creation; what runs per call stays
     # small (each node costs ~1 us in a single-profile call); the water-path block (on in
-    # this recipe) adds 12 (95 without it), the opacity kernels 57, their reflection term 32
-    assert len(_graph.runtime_nodes(model)) <= 196
+    # this recipe) adds 12 (95 without it), the opacity kernels 57, their reflection term 32,
+    # the channel kernels 7
+    assert len(_graph.runtime_nodes(model)) <= 203
 
 
 def test_channel_without_kernels_has_zero_kernel_weights(trained):
@@ -114,7 +118,9 @@ def test_channel_without_kernels_has_zero_kernel_weights(trained):
     b = read_bundle(trained["path"])
     arrays, emu = b.arrays(), trained["emu"]
     cols = kernel_columns(emu.config, emu.pressure_hpa.size)
-    assert cols.size == 15  # 5 kernels x [f, t_s, r]
+    # 5 bank kernels and one per channel of the data's instrument, each [f, t_s, r]
+    assert len(emu.config.channel_kernels) == len(emu.instrument.channel_ids)
+    assert cols.size == 3 * (5 + len(emu.instrument.channel_ids))
     i = list(b.channel_ids).index("mw-t3")
     for name in ("layer1_weight", "linear_weight", "linear_emissivity_weight", "linear_zenith_weight"):
         a = arrays[name]

@@ -131,6 +131,81 @@ def test_reflection_level_order_does_not_matter():
     assert a.shape[1] == 3 * REFLECTING.n_kernels == REFLECTING.n_kernel_features
 
 
+_GRAY_TOML = """name = "invented-gray-check"
+description = "INVENTED single-band channels for a test: not any real sensor"
+[reference]
+pressure_hpa = 1013.25
+temperature_k = 273.15
+[absorbers.dry]
+pressure_exponent = 1.0
+temperature_exponent = 0.0
+[absorbers.h2o]
+pressure_exponent = 1.0
+temperature_exponent = 0.0
+[absorbers.continuum]
+temperature_exponent = 0.0
+[[channels]]
+id = "thin"
+frequency_ghz = 10.0
+noise_k = 0.3
+bands = [ { weight = 1, dry = 2e-05, h2o = 0.003, continuum = 0.3 } ]
+[[channels]]
+id = "thick"
+frequency_ghz = 10.0
+noise_k = 0.3
+bands = [ { weight = 1, dry = 3e-04, h2o = 0.0, continuum = 0.0 } ]
+[[channels]]
+id = "two-band"
+frequency_ghz = 10.0
+noise_k = 0.3
+bands = [ { weight = 0.3, dry = 1e-4, h2o = 0.0, continuum = 0.0 }, { weight = 0.7, dry = 1e-6, h2o = 0.3, continuum = 0.0 } ]
+"""
+
+
+def test_channel_kernels_reproduce_the_physical_model_of_a_dry_gray_channel():
+    # A channel kernel is the brightness temperature of its own gray channel when the
+    # Planck function is linear in T (10 GHz: h nu / k = 0.48 K) and the absorption does
+    # not depend on temperature: f + (1 - e) (r + t_s^2 T_c'), T_c' the cosmic background
+    # (2.725 K, Fixsen 2009) as the linearised Planck function sees it,
+    # x / (exp(x / T_c) - 1) + x / 2 with x = h nu / k (scipy.constants). In the dry limit
+    # (q at the 1e-7 floor) the physics has no other difference from the kernels.
+    from rtemu import physics
+    from rtemu.features import channel_kernels_of
+    from rtemu.instrument import Instrument
+    from rtemu.sampling import draw_states
+
+    inst = Instrument.from_toml(_GRAY_TOML)
+    states = draw_states(64, seed=5, channels=inst)
+    p = states.air_pressure.values
+    T, Ts, e, zen = (states[k].values for k in ("air_temperature", "surface_temperature", "surface_emissivity",
+                                                 "sensor_zenith_angle"))
+    q = np.full_like(T, 1e-7)
+    bt = physics.transfer(inst, p, T, q, Ts, e, zen)["brightness_temperature"]
+    x_over_t = scipy.constants.h * 10e9 / scipy.constants.k
+    cosmic = x_over_t / np.expm1(x_over_t / 2.725) + x_over_t / 2
+    cfg = FeatureConfig(channel_kernels=channel_kernels_of(inst), reflection_kernels=True)
+    out = opacity_kernel_features(T, q, Ts, zen, cfg, p)
+    f, t_s, r = out[:, 0:3], out[:, 3:6], out[:, 6:9]
+    for c in (0, 1):  # single sub-band channels
+        approx = f[:, c] + (1 - e[:, c]) * (r[:, c] + t_s[:, c] ** 2 * cosmic)
+        np.testing.assert_allclose(approx, bt[:, c], atol=2e-3, rtol=0)  # Planck curvature ~1e-4 K
+    # a two-band channel's kernel is the weighted mean of its sub-bands' kernels
+    parts = [FeatureConfig(channel_kernels=((band,),), reflection_kernels=True) for band in cfg.channel_kernels[2]]
+    sub = [opacity_kernel_features(T, q, Ts, zen, c, p) for c in parts]
+    np.testing.assert_allclose(out[:, 2::3], 0.3 * sub[0] + 0.7 * sub[1], rtol=1e-12)
+
+
+def test_channel_kernels_scale_to_the_kernel_reference_pressure():
+    from rtemu.features import channel_kernels_of
+    from rtemu.instrument import Instrument
+
+    inst = Instrument.from_toml(_GRAY_TOML.replace("pressure_hpa = 1013.25", "pressure_hpa = 500.0"))
+    (band,), = channel_kernels_of(inst)[:1]
+    assert band == pytest.approx((1.0, 2e-05 * 1013.25 / 500, 0.003 * 1013.25 / 500, 0.3 * 1013.25 / 500))
+    with pytest.raises(ValueError, match="channel_kernels must be a list of channels"):
+        FeatureConfig(channel_kernels=(((0.0, 1.0, 0.0, 0.0),),))
+
+
 def test_level_order_does_not_matter():
     p, T, q, ts, zen = _profiles()
     a = opacity_kernel_features(T, q, ts, zen, CONFIG, p)
