@@ -351,6 +351,26 @@ def make_session(path, *, outputs=None, threads: int | None = None, check: bool 
 
 
 # ---- description --------------------------------------------------------------------------
+def _features_summary(features: dict) -> str:
+    skip = ("line_kernels", "continuum_kernels", "channel_kernels", "reflection_kernels")
+    return ", ".join(f"{k} {v}" for k, v in sorted(features.items()) if k not in skip)
+
+
+def _kernels_summary(features: dict) -> str:
+    line, cont = features.get("line_kernels", []), features.get("continuum_kernels", [])
+    channels = features.get("channel_kernels", [])
+    parts = []
+    if line:
+        parts.append(f"line path {line} m2 kg-1")
+    if cont:
+        parts.append(f"continuum path {cont} m2 kg-1")
+    if channels:
+        parts.append(f"{len(channels)} from the instrument's channels ({sum(len(c) for c in channels)} sub-bands)")
+    if not parts:
+        return "none"
+    return "; ".join(parts) + ("; with the reflected-sky term" if features.get("reflection_kernels") else "")
+
+
 def describe(path) -> str:
     """Human-readable summary of a bundle's metadata (for ``rtemu info``)."""
     b = read_bundle(path)
@@ -366,7 +386,8 @@ def describe(path) -> str:
         f"  recipe             {b.recipe_name} (sha256 {hashlib.sha256(b.recipe_toml.encode()).hexdigest()[:16]}...)",
         f"  training data      sha256 {b.training_data_sha256}",
         f"  weights            sha256 {b.weights_sha256}",
-        f"  compression        {b.graph['n_components']} components ({b.features})",
+        f"  compression        {b.graph['n_components']} components ({_features_summary(b.features)})",
+        f"  opacity kernels    {_kernels_summary(b.features)}",
         f"  hidden layers      {b.graph['hidden']} (padded)",
         "  inputs:",
     ]

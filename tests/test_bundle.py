@@ -82,6 +82,9 @@ def test_describe_is_readable(good):
     for piece in ("mw-t2", "ir-w1", "format version", "tiny-bundle", "brightness_temperature",
                   "jacobian_specific_humidity", "novel_state", "60 levels"):
         assert piece in text
+    # the kernel settings of the tiny recipe (tests/conftest.py), summarised on one line
+    assert ("opacity kernels    line path [0.1, 3.0] m2 kg-1; continuum path [30.0] m2 kg-1; "
+            "with the reflected-sky term") in text
 
 
 def test_bundle_error_is_a_value_error():
