@@ -82,9 +82,11 @@ def test_describe_is_readable(good):
     for piece in ("mw-t2", "ir-w1", "format version", "tiny-bundle", "brightness_temperature",
                   "jacobian_specific_humidity", "novel_state", "60 levels"):
         assert piece in text
-    # the kernel settings of the tiny recipe (tests/conftest.py), summarised on one line
-    assert ("opacity kernels    line path [0.1, 3.0] m2 kg-1; continuum path [30.0] m2 kg-1; "
-            "with the reflected-sky term") in text
+    assert "opacity kernels    none" in text  # this bundle's recipe has none
+    summary = rb._kernels_summary({"line_kernels": [0.1, 3.0], "continuum_kernels": [30.0], "reflection_kernels": True,
+                                   "channel_kernels": [[[1.0, 0.0, 1.0, 0.0]], [[0.5, 1.0, 0.0, 0.0], [0.5, 2.0, 0.0, 0.0]]]})
+    assert summary == ("line path [0.1, 3.0] m2 kg-1; continuum path [30.0] m2 kg-1; 2 from the instrument's "
+                       "channels (3 sub-bands); with the reflected-sky term")
 
 
 def test_bundle_error_is_a_value_error():
