@@ -121,8 +121,8 @@ class FeatureConfig:
         features, BT = f_k + (1 - e) r_k, and the linear part (affine in the emissivity e)
         can carry the surface-reflection physics exactly.
     channel_kernels : tuple of tuple of (weight, dry, line, continuum)
-        Kernels made from an instrument's channels (recipe ``instrument_kernels = true``
-        fills them from the training data's instrument): one per channel, the
+        Kernels made from an instrument's channels (recipe ``instrument_kernels = "bands"``
+        or ``"channels"`` fills them from the training data's instrument): one per channel, the
         weight-averaged [f, t_s, (r)] of its sub-bands, each sub-band a gray absorber of
         depth sec(theta) (k_dry P_d + k_line P_l + k_cont P_c) [m2 kg-1 coefficients; P_d
         the dry-air path sum (p/p_0) dm, constant]. For a channel whose sub-bands have
@@ -351,12 +351,17 @@ def _checked_channel_kernels(value) -> tuple:
     return tuple(out)
 
 
-def channel_kernels_of(instrument) -> tuple:
+def channel_kernels_of(instrument, one_per_channel: bool = False) -> tuple:
     """Channel kernels [(weight, dry, line, continuum) per sub-band] of an instrument's channels.
 
     Parameters
     ----------
     instrument : rtemu.instrument.Instrument
+    one_per_channel : bool
+        Collapse each channel's sub-bands into one term whose coefficients are the
+        weight-averaged geometric means of the sub-bands' (a coefficient zero in any
+        sub-band stays zero): a third of the kernel work for the demo sounder's
+        three-band channels, at the price of the sub-band spread.
 
     Returns
     -------
@@ -367,8 +372,21 @@ def channel_kernels_of(instrument) -> tuple:
         (other exponents and the temperature dependence are left to the networks).
     """
     scale = KERNEL_REFERENCE_PRESSURE_HPA / float(instrument.reference_pressure_hpa)
-    return tuple(tuple((b.weight, b.dry * scale, b.h2o * scale, b.continuum * scale) for b in ch.bands)
-                 for ch in instrument.channels)
+    out = tuple(tuple((b.weight, b.dry * scale, b.h2o * scale, b.continuum * scale) for b in ch.bands)
+                for ch in instrument.channels)
+    if not one_per_channel:
+        return out
+    collapsed = []
+    for bands in out:
+        if len(bands) == 1:
+            collapsed.append(((1.0, *bands[0][1:]),))
+            continue
+        b = np.array(bands)
+        w = b[:, 0] / b[:, 0].sum()
+        with np.errstate(divide="ignore"):
+            mean = np.where((b[:, 1:] > 0).all(axis=0), np.exp(w @ np.log(b[:, 1:])), 0.0)
+        collapsed.append(((1.0, *(float(v) for v in mean)),))
+    return tuple(collapsed)
 
 
 def _band_terms(config: FeatureConfig) -> list:

@@ -54,6 +54,10 @@ from rtemu.features import (
 )
 from rtemu.instrument import Instrument
 
+#: Recipe ``[features] instrument_kernels``: none, one kernel term per sub-band of every
+#: channel, or one per channel (its sub-bands' weighted geometric-mean coefficients).
+INSTRUMENT_KERNELS = ("none", "bands", "channels")
+
 __all__ = [
     "Recipe",
     "load_recipe",
@@ -153,7 +157,7 @@ SCHEMA: dict[str, dict[str, Any]] = {
         "continuum_kernels": _coefficients,
         "humidity_top_hpa": _float(0.0),
         "reflection_kernels": _bool,
-        "instrument_kernels": _bool,
+        "instrument_kernels": _choice(INSTRUMENT_KERNELS),
     },
     "linear": {"residual": _bool, "ridge_alpha": _float(0.0)},
     "network": {k: v for k, v in _NETWORK.items() if k != "ridge_alpha"},
@@ -164,7 +168,7 @@ CHANNEL_KEYS = {k: v for k, v in _NETWORK.items() if k != "activation"}
 
 DEFAULTS = {
     "training": {"seed": 0, "validation_fraction": 0.15, "max_profiles": 0},
-    "features": {**dataclasses.asdict(FeatureConfig()), "instrument_kernels": False},
+    "features": {**dataclasses.asdict(FeatureConfig()), "instrument_kernels": "none"},
     "linear": {"residual": True, "ridge_alpha": 1e-3},
     "network": {
         "hidden_layers": [32, 32], "activation": "tanh", "solver": "lbfgs", "alpha": 1e-6,
@@ -210,13 +214,15 @@ class Recipe:
 
     def feature_config(self, instrument: Instrument | None = None) -> FeatureConfig:
         """The shared transform's settings; ``instrument`` fills the channel kernels when
-        the recipe has ``instrument_kernels = true`` (from all its channels)."""
+        the recipe has ``instrument_kernels = "bands"`` or ``"channels"`` (from all its
+        channels; see :func:`rtemu.features.channel_kernels_of`)."""
         settings = dict(self.settings["features"])
-        if settings.pop("instrument_kernels"):
+        kind = settings.pop("instrument_kernels")
+        if kind != "none":
             if instrument is None:
-                raise ValueError(f"recipe {self.source}: instrument_kernels = true needs the instrument "
+                raise ValueError(f"recipe {self.source}: instrument_kernels = {kind!r} needs the instrument "
                                  "(the training data's) to build its kernels")
-            settings["channel_kernels"] = channel_kernels_of(instrument)
+            settings["channel_kernels"] = channel_kernels_of(instrument, one_per_channel=kind == "channels")
         return FeatureConfig(**settings)
 
     def network_for(self, channel_id: str) -> dict:

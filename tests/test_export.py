@@ -31,7 +31,7 @@ line_kernels = [0.03, 1.0, 30.0]
 continuum_kernels = [1.0, 100.0]
 humidity_top_hpa = 100.0
 reflection_kernels = true
-instrument_kernels = true
+instrument_kernels = "bands"
 [network]
 hidden_layers = [10, 7]
 max_iter = 60

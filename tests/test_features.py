@@ -303,3 +303,20 @@ def test_recipe_refuses_a_negative_humidity_top():
         Recipe.from_toml('name = "x"\n[features]\nhumidity_top_hpa = -5.0\n', "bad.toml")
     assert Recipe.from_toml('name = "x"\n[features]\nhumidity_top_hpa = 100\n', "ok.toml").feature_config(
     ).humidity_top_hpa == 100.0
+
+
+def test_one_kernel_per_channel_uses_geometric_mean_coefficients():
+    from rtemu.features import channel_kernels_of
+    from rtemu.instrument import Instrument
+
+    inst = Instrument.from_toml(_GRAY_TOML)
+    collapsed = channel_kernels_of(inst, one_per_channel=True)
+    assert [len(c) for c in collapsed] == [1, 1, 1]
+    assert collapsed[0] == channel_kernels_of(inst)[0]  # one sub-band: unchanged
+    # two sub-bands (weights 0.3, 0.7): dry 1e-4 and 1e-6 -> 1e-4**0.3 * 1e-6**0.7; the line
+    # coefficient is zero in one sub-band, so zero
+    (w, dry, line, cont), = collapsed[2]
+    assert (w, line, cont) == (1.0, 0.0, 0.0)
+    assert dry == pytest.approx(1e-4**0.3 * 1e-6**0.7, rel=1e-12)
+    with pytest.raises(ValueError, match=r"instrument_kernels' must be one of \['none', 'bands', 'channels'\]"):
+        Recipe.from_toml('name = "x"\n[features]\ninstrument_kernels = true\n', "bad.toml")
