@@ -11,6 +11,7 @@ from onnx import numpy_helper
 from rtemu import bundle as rb
 from rtemu.export import train_to_onnx
 from rtemu.features import FeatureConfig, raw_features
+from rtemu.instrument import load_instrument
 from rtemu.sampling import sample_to_netcdf
 from rtemu.training import (
     Recipe,
@@ -63,7 +64,11 @@ def test_shipped_recipes_load():
         r = load_recipe(name)
         assert r.name == name and r.text.strip()
         assert r.settings["network"]["solver"] == "lbfgs"
-        r.feature_config()  # valid transform settings
+        # valid transform settings; the shipped recipes build their kernels from the instrument
+        with pytest.raises(ValueError, match="needs the instrument"):
+            r.feature_config()
+        config = r.feature_config(load_instrument("demo-sounder"))
+        assert len(config.channel_kernels) == 16 and config.reflection_kernels
 
 
 def test_recipe_unknown_key_names_file_and_key(tmp_path):
