@@ -391,23 +391,24 @@ def _kernel_forward(b: _Builder, layout: GraphLayout, sec: str, Ts1: str) -> dic
     depth = b.op("MatMul", "kernel_coefficients", paths)  # [N, K_t, L]
     if layout.n_band_kernels:
         depth = b.op("Add", depth, "kernel_dry_depth")
-    t = b.op("Exp", b.op("Neg", b.op("Mul", depth, sec3)))  # [N, K, L]
+    neg_sec3 = b.op("Neg", sec3)  # the sign on [N, 1, 1], not on [N, K, L]
+    t = b.op("Exp", b.op("Mul", depth, neg_sec3))  # [N, K, L]
     dfdT = b.op("MatMul", t, "kernel_temperature_matrix")  # df_k/dT [N, K, L]
     t_surface = b.op("MatMul", t, "kernel_surface_pick")  # [N, K, 1]
     g = b.op("Squeeze", t_surface, ax2)  # [N, K]
     f = b.op("Squeeze", b.op("MatMul", dfdT, b.op("Unsqueeze", T, ax2)), ax2)  # [N, K]
     f = b.op("Add", f, b.op("Mul", g, Ts1))
     out = {"features": b.op("Concat", f, g, axis=1), "t": t, "dfdT": dfdT, "t_surface": t_surface,
-           "sec3": sec3}
+           "sec3": sec3, "neg_sec3": neg_sec3}
     if layout.reflection_kernels:
         # s = exp(-sec (depth_s - depth)): transmittance from each level down to the surface;
         # D = -(s G).T the downwelling sky temperature; r = t_s (D - Ts) = -t_s ((s G).T + Ts)
         depth_s = b.op("MatMul", depth, "kernel_surface_pick")  # [N, K, 1]
-        s = b.op("Exp", b.op("Neg", b.op("Mul", b.op("Sub", depth_s, depth), sec3)))  # [N, K, L]
+        s = b.op("Exp", b.op("Mul", b.op("Sub", depth, depth_s), sec3))  # [N, K, L]
         sG = b.op("MatMul", s, "kernel_temperature_matrix")  # [N, K, L]
         minus_sky = b.op("Squeeze", b.op("MatMul", sG, b.op("Unsqueeze", T, ax2)), ax2)  # (s G).T = -D [N, K]
         r = b.op("Neg", b.op("Mul", g, b.op("Add", minus_sky, Ts1)))
-        out.update(s=s, minus_sky=minus_sky, drdT=b.op("Neg", b.op("Mul", t_surface, sG)))
+        out.update(s=s, minus_sky=minus_sky, drdT=b.op("Mul", b.op("Neg", t_surface), sG))
     parts = [f, g, r] if layout.reflection_kernels else [f, g]
     if layout.n_channel_kernels:
         parts = [b.op("MatMul", part, "kernel_combination") for part in parts]
@@ -425,7 +426,7 @@ def _kernel_humidity_terms(b: _Builder, layout: GraphLayout, kern: dict, d_f: st
     T, q = INPUT_NAMES[0], INPUT_NAMES[1]
     ax1 = b.ints([1])
     L, C, K = layout.n_levels, layout.n_channels, layout.n_kernel_terms
-    rho = b.op("Mul", kern["t"], b.op("Neg", kern["sec3"]))  # dt_k/d(kappa_k P) [N, K, L]
+    rho = b.op("Mul", kern["t"], kern["neg_sec3"])  # dt_k/d(kappa_k P) [N, K, L]
     h = b.op("Unsqueeze", b.op("MatMul", T, b.op("Transpose", "kernel_temperature_matrix", perm=[1, 0])),
              b.ints([1]))  # df/dt without the surface term [N, 1, L]
     kappa_by_path = b.op("Transpose", "kernel_coefficients", perm=[1, 0])  # [2, K]
