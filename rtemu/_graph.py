@@ -393,20 +393,25 @@ def _kernel_forward(b: _Builder, layout: GraphLayout, sec: str, Ts1: str) -> dic
         depth = b.op("Add", depth, "kernel_dry_depth")
     neg_sec3 = b.op("Neg", sec3)  # the sign on [N, 1, 1], not on [N, K, L]
     t = b.op("Exp", b.op("Mul", depth, neg_sec3))  # [N, K, L]
+    # f = (t G).T = t . h with h = T G^T [N, L]: the brightness temperatures need no
+    # [K, L] x [L, L] product; df/dT = t G is formed for the Jacobians only (a session
+    # without Jacobian outputs prunes it)
+    h = b.op("MatMul", T, b.op("Transpose", "kernel_temperature_matrix", perm=[1, 0]))  # [N, L]
+    h3 = b.op("Unsqueeze", h, ax2)  # [N, L, 1]
     dfdT = b.op("MatMul", t, "kernel_temperature_matrix")  # df_k/dT [N, K, L]
     t_surface = b.op("MatMul", t, "kernel_surface_pick")  # [N, K, 1]
     g = b.op("Squeeze", t_surface, ax2)  # [N, K]
-    f = b.op("Squeeze", b.op("MatMul", dfdT, b.op("Unsqueeze", T, ax2)), ax2)  # [N, K]
+    f = b.op("Squeeze", b.op("MatMul", t, h3), ax2)  # [N, K]
     f = b.op("Add", f, b.op("Mul", g, Ts1))
     out = {"features": b.op("Concat", f, g, axis=1), "t": t, "dfdT": dfdT, "t_surface": t_surface,
-           "sec3": sec3, "neg_sec3": neg_sec3}
+           "sec3": sec3, "neg_sec3": neg_sec3, "h": b.op("Unsqueeze", h, ax1)}
     if layout.reflection_kernels:
         # s = exp(-sec (depth_s - depth)): transmittance from each level down to the surface;
         # D = -(s G).T the downwelling sky temperature; r = t_s (D - Ts) = -t_s ((s G).T + Ts)
         depth_s = b.op("MatMul", depth, "kernel_surface_pick")  # [N, K, 1]
         s = b.op("Exp", b.op("Mul", b.op("Sub", depth, depth_s), sec3))  # [N, K, L]
-        sG = b.op("MatMul", s, "kernel_temperature_matrix")  # [N, K, L]
-        minus_sky = b.op("Squeeze", b.op("MatMul", sG, b.op("Unsqueeze", T, ax2)), ax2)  # (s G).T = -D [N, K]
+        sG = b.op("MatMul", s, "kernel_temperature_matrix")  # [N, K, L] (Jacobians only)
+        minus_sky = b.op("Squeeze", b.op("MatMul", s, h3), ax2)  # (s G).T = s . h = -D [N, K]
         r = b.op("Neg", b.op("Mul", g, b.op("Add", minus_sky, Ts1)))
         out.update(s=s, minus_sky=minus_sky, drdT=b.op("Mul", b.op("Neg", t_surface), sG))
     parts = [f, g, r] if layout.reflection_kernels else [f, g]
@@ -427,8 +432,7 @@ def _kernel_humidity_terms(b: _Builder, layout: GraphLayout, kern: dict, d_f: st
     ax1 = b.ints([1])
     L, C, K = layout.n_levels, layout.n_channels, layout.n_kernel_terms
     rho = b.op("Mul", kern["t"], kern["neg_sec3"])  # dt_k/d(kappa_k P) [N, K, L]
-    h = b.op("Unsqueeze", b.op("MatMul", T, b.op("Transpose", "kernel_temperature_matrix", perm=[1, 0])),
-             b.ints([1]))  # df/dt without the surface term [N, 1, L]
+    h = kern["h"]  # df/dt without the surface term [N, 1, L]
     kappa_by_path = b.op("Transpose", "kernel_coefficients", perm=[1, 0])  # [2, K]
 
     def per_path(weights):  # [N, C, K] -> [N, 2C, K]: kappa_k where k acts on that path
