@@ -408,7 +408,7 @@ def build_bundle_model(emu: TrainedEmulator, *, base=None, dtype=np.float32):
                                 n_line_kernels=len(cfg.line_kernels),
                                 n_continuum_kernels=len(cfg.continuum_kernels),
                                 reflection_kernels=cfg.reflection_kernels,
-                                n_band_kernels=cfg.n_kernel_terms - len(cfg.line_kernels) - len(cfg.continuum_kernels),
+                                n_band_kernels=cfg.n_band_kernels,
                                 n_channel_kernels=len(cfg.channel_kernels))
     arrays = _assemble(shared, bounds, parts, layout)
     model = _graph.build_model(layout, arrays, dtype=dtype)

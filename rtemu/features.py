@@ -197,9 +197,14 @@ class FeatureConfig:
         return len(self.line_kernels) + len(self.continuum_kernels) + len(self.channel_kernels)
 
     @property
+    def n_band_kernels(self) -> int:
+        """Sub-bands of the channel kernels, each a gray absorber computed [1]."""
+        return sum(len(c) for c in self.channel_kernels)
+
+    @property
     def n_kernel_terms(self) -> int:
         """Gray absorbers computed: bank kernels plus every sub-band of the channel kernels [1]."""
-        return len(self.line_kernels) + len(self.continuum_kernels) + sum(len(c) for c in self.channel_kernels)
+        return len(self.line_kernels) + len(self.continuum_kernels) + self.n_band_kernels
 
     @property
     def n_kernel_features(self) -> int:
@@ -565,14 +570,17 @@ def opacity_kernel_features(air_temperature, specific_humidity, surface_temperat
     nadir = kernel_coefficient_matrix(config) @ paths + kernel_dry_depth(config, pressure_hpa)
     depth = sec[:, None, None] * nadir  # kappa sec P [N, K_t, L]
     t = np.exp(-depth)
-    t_s = t[:, :, surface_level(pressure_hpa)]
-    f = np.einsum("nkl,nl->nk", t @ kernel_temperature_matrix(pressure_hpa), T)
+    surface = surface_level(pressure_hpa)
+    t_s = t[:, :, surface]
+    # (t G) . T = t . h with h = T G^T: one [N, L] x [L, L] product, not one per kernel
+    h = T @ kernel_temperature_matrix(pressure_hpa).T
+    f = np.einsum("nkl,nl->nk", t, h)
     Ts = np.asarray(surface_temperature, dtype=float)[:, None]
     f += Ts * t_s
     parts = [f, t_s]
     if config.reflection_kernels:
-        down = np.exp(-(depth[:, :, [surface_level(pressure_hpa)]] - depth))  # s [N, K_t, L]
-        sky = -np.einsum("nkl,nl->nk", down @ kernel_temperature_matrix(pressure_hpa), T)  # D
+        down = np.exp(-(depth[:, :, [surface]] - depth))  # s [N, K_t, L]
+        sky = -np.einsum("nkl,nl->nk", down, h)  # D
         parts.append(t_s * (sky - Ts))
     if config.channel_kernels:
         combine = kernel_combination_matrix(config)
