@@ -133,6 +133,9 @@ _NETWORK = {
     "check_every": _int(1),
     "patience": _int(1),
     "opacity_kernels": _bool,
+    "jacobian_weight": _float(0.0),
+    "jacobian_max_iter": _int(1),
+    "jacobian_check_every": _int(1),
     "ridge_alpha": _float(0.0),
 }
 
@@ -142,6 +145,10 @@ SCHEMA: dict[str, dict[str, Any]] = {
         "seed": _int(0),
         "validation_fraction": _float(0.0, 0.9, strict_lo=True),
         "max_profiles": _int(0),
+        "jacobian_profiles": _int(1),
+        "jacobian_validation_profiles": _int(1),
+        "jacobian_probes": _int(1),
+        "jacobian_floor": _float(0.0, strict_lo=True),
     },
     "features": {
         "humidity": _choice(HUMIDITY_TRANSFORMS),
@@ -167,13 +174,15 @@ SCHEMA: dict[str, dict[str, Any]] = {
 CHANNEL_KEYS = {k: v for k, v in _NETWORK.items() if k != "activation"}
 
 DEFAULTS = {
-    "training": {"seed": 0, "validation_fraction": 0.15, "max_profiles": 0},
+    "training": {"seed": 0, "validation_fraction": 0.15, "max_profiles": 0, "jacobian_profiles": 4000,
+                 "jacobian_validation_profiles": 1000, "jacobian_probes": 16, "jacobian_floor": 1e-3},
     "features": {**dataclasses.asdict(FeatureConfig()), "instrument_kernels": "none"},
     "linear": {"residual": True, "ridge_alpha": 1e-3},
     "network": {
         "hidden_layers": [32, 32], "activation": "tanh", "solver": "lbfgs", "alpha": 1e-6,
         "max_iter": 2000, "tol": 0.0, "learning_rate_init": 1e-3, "batch_size": 256,
         "early_stopping": True, "check_every": 250, "patience": 3, "opacity_kernels": True,
+        "jacobian_weight": 0.0, "jacobian_max_iter": 600, "jacobian_check_every": 200,
     },
     "envelope": {"bounds_margin": 0.02, "novelty_margin": 1.0},
 }
@@ -224,6 +233,15 @@ class Recipe:
                                  "(the training data's) to build its kernels")
             settings["channel_kernels"] = channel_kernels_of(instrument, one_per_channel=kind == "channels")
         return FeatureConfig(**settings)
+
+    def uses_jacobians(self, channel_ids=None) -> bool:
+        """Whether any of these channels (None: any channel) has a Jacobian term
+        (``jacobian_weight`` > 0), so that training needs the physical Jacobians."""
+        if self.settings["network"]["jacobian_weight"] > 0 and (
+                channel_ids is None or any("jacobian_weight" not in self.channels.get(c, {}) for c in channel_ids)):
+            return True
+        return any(v.get("jacobian_weight", 0.0) > 0 for c, v in self.channels.items()
+                   if channel_ids is None or c in channel_ids)
 
     def network_for(self, channel_id: str) -> dict:
         """Network settings for one channel (recipe ``[network]`` + its overrides)."""
@@ -389,6 +407,10 @@ class TrainingData:
     sha256 : str
         SHA-256 of the training file (or of the arrays, for an in-memory dataset).
     source : str
+    jacobian_air_temperature, jacobian_specific_humidity : numpy.ndarray or None
+        Physical Jacobians dBT/dT [K K-1] and dBT/dq [K (kg kg-1)-1], float32, shape
+        (N, C, L), levels surface-first; read only on request (``load_training_data(...,
+        jacobians=True)``), for recipes with a Jacobian term (``jacobian_weight`` > 0).
     """
 
     instrument: Instrument
@@ -402,6 +424,8 @@ class TrainingData:
     usable: np.ndarray
     sha256: str
     source: str
+    jacobian_air_temperature: Any = None
+    jacobian_specific_humidity: Any = None
 
     @property
     def n_profiles(self) -> int:
@@ -426,12 +450,14 @@ def _arrays_sha256(ds: xr.Dataset) -> str:
     return digest.hexdigest()
 
 
-def load_training_data(data) -> TrainingData:
+def load_training_data(data, jacobians: bool = False) -> TrainingData:
     """Read a training set (netCDF path or xarray.Dataset in the operator schema).
 
     The file must hold the inputs, ``brightness_temperature`` (profile, channel), the
     instrument TOML in the global attribute ``rtemu_instrument_toml`` (written by
     :func:`rtemu.sampling.sample_to_netcdf`) and one pressure grid for all profiles.
+    With ``jacobians`` it must also hold ``jacobian_air_temperature`` and
+    ``jacobian_specific_humidity`` (profile, channel, level) (``rtemu sample --jacobian``).
     """
     if isinstance(data, xr.Dataset):
         ds, source, sha = data, "<in-memory dataset>", None
@@ -441,13 +467,13 @@ def load_training_data(data) -> TrainingData:
             raise ValueError(f"training data {path} does not exist")
         ds, source, sha = open_dataset(path), str(path), _file_sha256(path)
     try:
-        return _read_training(ds, source, sha)
+        return _read_training(ds, source, sha, jacobians)
     finally:
         if not isinstance(data, xr.Dataset):
             ds.close()
 
 
-def _read_training(ds: xr.Dataset, source: str, sha: str | None) -> TrainingData:
+def _read_training(ds: xr.Dataset, source: str, sha: str | None, jacobians: bool = False) -> TrainingData:
     toml = ds.attrs.get("rtemu_instrument_toml")
     if not toml:
         raise ValueError(f"training data {source}: no 'rtemu_instrument_toml' attribute (rule: make "
@@ -492,12 +518,23 @@ def _read_training(ds: xr.Dataset, source: str, sha: str | None) -> TrainingData
     state_ok = (np.isfinite(T).all(1) & np.isfinite(q).all(1) & np.isfinite(ts) & np.isfinite(zen)
                 & np.isfinite(em).all(1))
     usable &= state_ok[:, None]
+    jac = {}
+    if jacobians:
+        names = ("jacobian_air_temperature", "jacobian_specific_humidity")
+        missing = [n for n in names if n not in ds]
+        if missing:
+            raise ValueError(f"training data {source}: missing {missing} (rule: a recipe with a Jacobian term, "
+                             "jacobian_weight > 0, needs a training set sampled with --jacobian)")
+        for name in names:
+            jac[name] = np.asarray(ds[name].transpose("profile", "channel", "level").values,
+                                   dtype=np.float32)[:, :, order]
+            usable &= np.isfinite(jac[name]).all(axis=2)
     return TrainingData(
         instrument=inst, pressure_hpa=p[order].copy(), air_temperature=T, specific_humidity=q,
         surface_temperature=ts, surface_emissivity=em, sensor_zenith_angle=zen,
         brightness_temperature=bt, usable=usable,
         sha256=sha or _arrays_sha256(ds[[n for n in ("air_pressure", *_STATE, "brightness_temperature")]]),
-        source=source,
+        source=source, **jac,
     )
 
 
@@ -663,7 +700,7 @@ def _fit_channel(job: dict) -> ChannelFit:
 
 
 def _fit_channel_inner(*, channel_id, s, z, e, y, train, val, net, seed, residual, z_columns=None,
-                       uses_kernels=False):
+                       uses_kernels=False, jacobian=None):
     from sklearn.exceptions import ConvergenceWarning
     from sklearn.linear_model import Ridge
     from sklearn.neural_network import MLPRegressor
@@ -724,6 +761,10 @@ def _fit_channel_inner(*, channel_id, s, z, e, y, train, val, net, seed, residua
             if stale >= net["patience"] or mlp.n_iter_ < mlp.max_iter:
                 break
     mlp.coefs_, mlp.intercepts_ = best_state[0], best_state[1]
+    refined = {}
+    if jacobian is not None and net["jacobian_weight"] > 0:
+        refined = _refine_with_jacobians(fit, net, jacobian, ut, target, uv,
+                                         (yv - lin_v - fit.target_mean) / fit.target_scale, s, e, train, val)
     fit.stats = {
         "n_train": int(len(train)),
         "n_validation": int(len(val)),
@@ -732,12 +773,65 @@ def _fit_channel_inner(*, channel_id, s, z, e, y, train, val, net, seed, residua
         "hidden_layers": list(fit.hidden),
         "opacity_kernels": bool(uses_kernels),
         "seed": int(seed),
+        **refined,
         **_error_stats(fit.predict(z[val], s[val], e[val]) - yv, "validation"),
         **({"linear_only_validation_rmse_k": float(np.sqrt(np.mean((lin_v - yv) ** 2)))} if residual else {}),
         "train_rmse_k": float(np.sqrt(np.mean((fit.predict(zt, st, et) - yt) ** 2))),
     }
     fit.seconds = time.perf_counter() - start
     return fit
+
+
+def _refine_with_jacobians(fit: ChannelFit, net: dict, jac: dict, ut, tt, uv, tv, s, e, train, val) -> dict:
+    """Continue the channel's network fit with the Jacobian term (:mod:`rtemu.jacobian_fit`).
+
+    ``jac``: ``train_rows``/``val_rows`` (positions in train/val), ``directions`` [M, P, K]
+    and ``target`` [M, P] for each (prefix ``val_`` for validation). The linear part's
+    directional derivatives are taken off the targets, so the network fits what the
+    linear part misses. Returns the statistics to store.
+    """
+    from rtemu.jacobian_fit import probe_relative_error, refine_network, refinement_loss
+
+    K = fit.z_mean.size
+    if fit.ridge is not None:
+        coef = np.asarray(fit.ridge.coef_, dtype=float).ravel()
+        b1, b3, b4 = coef[:K], coef[K + 1:2 * K + 1], coef[2 * K + 1:]
+    else:
+        b1 = b3 = b4 = np.zeros(K)
+
+    def prepare(prefix, index):
+        d = jac[prefix + "directions"]
+        d = d if fit.z_columns is None else d[:, :, fit.z_columns]
+        eps = ((e[index] - fit.e_mean) / fit.e_scale)[:, None]
+        sig = ((s[index] - fit.s_mean) / fit.s_scale)[:, None]
+        grad_lin = (b1[None, :] + eps * b3[None, :] + sig * b4[None, :]) / fit.z_scale  # d lin / d z [M, K]
+        r = jac[prefix + "target"] - np.einsum("mpk,mk->mp", d, grad_lin)
+        u_dot = np.concatenate([d, np.zeros(d.shape[:2] + (1,))], axis=2)  # emissivity input: fixed
+        return u_dot, r
+
+    rows_t, rows_v = jac["train_rows"], jac["val_rows"]
+    ud_t, r_t = prepare("", train[rows_t])
+    ud_v, r_v = prepare("val_", val[rows_v])
+    weight, scale = net["jacobian_weight"], fit.target_scale
+
+    def score(coefs, intercepts):
+        from rtemu.jacobian_fit import pack
+        return refinement_loss(pack(coefs, intercepts), [w.shape for w in coefs], uv, tv, rows_v, ud_v, r_v,
+                               weight=weight, alpha=0.0, scale=scale)[0]
+
+    before = probe_relative_error(fit.mlp.coefs_, fit.mlp.intercepts_, uv[rows_v], ud_v, r_v, scale)
+    coefs, intercepts, info = refine_network(
+        fit.mlp.coefs_, fit.mlp.intercepts_, ut, tt, rows_t, ud_t, r_t, weight=weight, alpha=net["alpha"],
+        max_iter=net["jacobian_max_iter"], scale=scale, check_every=net["jacobian_check_every"], score=score)
+    fit.mlp.coefs_, fit.mlp.intercepts_ = coefs, intercepts
+    after = probe_relative_error(coefs, intercepts, uv[rows_v], ud_v, r_v, scale)
+    return {
+        "jacobian_iterations": int(info["iterations"]),
+        "jacobian_best_iteration": int(info["best_iteration"]),
+        "jacobian_profiles": int(rows_t.size),
+        "validation_jacobian_error_median_before": float(np.median(before)),
+        "validation_jacobian_error_median": float(np.median(after)),
+    }
 
 
 # ---- the whole emulator -------------------------------------------------------------------
@@ -848,7 +942,8 @@ def fit_emulator(data, recipe, *, channels=None, transform=None, workers=None, p
     """
     recipe = load_recipe(recipe)
     if not isinstance(data, TrainingData):
-        data = load_training_data(data)
+        data = load_training_data(data, jacobians=recipe.uses_jacobians(
+            None if channels is None else [str(c) for c in channels]))
     inst = data.instrument
     ids = list(inst.channel_ids) if channels is None else [str(c) for c in channels]
     unknown = [c for c in ids if c not in inst.channel_ids]
@@ -882,6 +977,13 @@ def fit_emulator(data, recipe, *, channels=None, transform=None, workers=None, p
         raise ValueError(f"the shared transform has {transform.n_levels} levels, the data {L}")
     z = transform.project(x)
     envelope = _envelope(_subset(data, rows), columns, transform, x, recipe)
+    jacobians = None
+    if recipe.uses_jacobians(ids):
+        if data.jacobian_air_temperature is None:
+            raise ValueError(f"training data {data.source}: no Jacobians loaded (rule: a recipe with "
+                             "jacobian_weight > 0 needs load_training_data(..., jacobians=True) on a set "
+                             "sampled with --jacobian)")
+        jacobians = _jacobian_sets(data, rows, train, val, transform, config, recipe)
 
     jobs = []
     without_kernels = np.setdiff1d(np.arange(z.shape[1]), kernel_columns(config, L)) if config.n_kernels else None
@@ -894,6 +996,7 @@ def fit_emulator(data, recipe, *, channels=None, transform=None, workers=None, p
             "residual": recipe.settings["linear"]["residual"],
             "z_columns": None if net["opacity_kernels"] else without_kernels,
             "uses_kernels": bool(config.n_kernels) and net["opacity_kernels"],
+            "jacobian": None if jacobians is None or net["jacobian_weight"] <= 0 else jacobians(col),
         })
     fits = dict(_run_jobs(jobs, workers, progress, log))
     return TrainedEmulator(
@@ -901,6 +1004,37 @@ def fit_emulator(data, recipe, *, channels=None, transform=None, workers=None, p
         transform=transform, envelope=envelope, channels={c: fits[c] for c in ids}, recipe=recipe,
         data_sha256=data.sha256, data_source=data.source,
     )
+
+
+def _jacobian_sets(data: TrainingData, rows, train, val, transform, config, recipe: Recipe):
+    """Per-channel inputs of the Jacobian term: returns ``channel column -> job dict``.
+
+    Draws (seeded) up to ``jacobian_profiles`` training and ``jacobian_validation_profiles``
+    validation profiles, computes dz/d(T, ln q) for them once (shared by all channels) and
+    fixed probe vectors; each channel's directions and targets are made on request.
+    """
+    from rtemu.jacobian_fit import probe_directions, state_jacobian
+
+    tr = recipe.settings["training"]
+    rng = np.random.default_rng(np.random.SeedSequence([recipe.seed, 0x1AC0B]))
+    rows_t = np.sort(rng.permutation(train.size)[:min(tr["jacobian_profiles"], train.size)])
+    rows_v = np.sort(rng.permutation(val.size)[:min(tr["jacobian_validation_profiles"], val.size)])
+    picked = rows[np.concatenate([train[rows_t], val[rows_v]])]
+    q = data.specific_humidity[picked]
+    G = state_jacobian(transform.project, config, data.air_temperature[picked], q,
+                       data.surface_temperature[picked], data.sensor_zenith_angle[picked], data.pressure_hpa)
+    n_probes = tr["jacobian_probes"]
+    probes = rng.standard_normal((picked.size, G.shape[1], n_probes)) / np.sqrt(n_probes)
+    m = rows_t.size
+
+    def for_channel(col: int) -> dict:
+        jt = data.jacobian_air_temperature[picked, col].astype(float)
+        jq = data.jacobian_specific_humidity[picked, col].astype(float) * q  # per ln q [K]
+        d, target, _ = probe_directions(G, jt, jq, probes, tr["jacobian_floor"])
+        return {"train_rows": rows_t, "val_rows": rows_v, "directions": d[:m], "target": target[:m],
+                "val_directions": d[m:], "val_target": target[m:]}
+
+    return for_channel
 
 
 def _subset(data: TrainingData, rows: np.ndarray) -> TrainingData:
@@ -911,6 +1045,7 @@ def _subset(data: TrainingData, rows: np.ndarray) -> TrainingData:
         surface_emissivity=data.surface_emissivity[rows],
         sensor_zenith_angle=data.sensor_zenith_angle[rows],
         brightness_temperature=data.brightness_temperature[rows], usable=data.usable[rows],
+        jacobian_air_temperature=None, jacobian_specific_humidity=None,
     )
 
 
