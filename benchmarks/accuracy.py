@@ -35,6 +35,7 @@ from rtemu.atmosphere import saturation_specific_humidity  # noqa: E402
 from rtemu.bundle import make_session, read_bundle  # noqa: E402
 from rtemu.export import train_to_onnx  # noqa: E402
 from rtemu.sampling import sample_to_netcdf  # noqa: E402
+from rtemu.training import load_recipe  # noqa: E402
 
 
 def feeds_from(ds: xr.Dataset, channel_ids, rows=slice(None)) -> dict:
@@ -234,10 +235,13 @@ def main(argv=None) -> int:
     if bundle_path is None:
         train_path = args.train_data or args.workdir / f"train-{args.train}.nc"
         if not train_path.exists():
-            print(f"drawing {args.train} training profiles (seed 11) -> {train_path}")
+            # a recipe with a Jacobian term (the full one) trains on physical Jacobians too
+            jac = load_recipe(args.recipe).uses_jacobians()
+            print(f"drawing {args.train} training profiles (seed 11{', with Jacobians' if jac else ''}) "
+                  f"-> {train_path}")
             t = time.perf_counter()
             sample_to_netcdf("demo-sounder", train_path, count=args.train, seed=11, progress=False,
-                             workers=args.workers)
+                             workers=args.workers, jacobian=jac)
             print(f"  {time.perf_counter() - t:.0f} s")
         bundle_path = args.workdir / f"{Path(str(args.recipe)).stem}.onnx"
         print(f"training recipe {args.recipe} on {train_path} ...")

@@ -90,11 +90,14 @@ def refinement_loss(theta: np.ndarray, shapes, u: np.ndarray, t: np.ndarray, jac
     shapes : sequence of (int, int)
         Layer shapes.
     u : numpy.ndarray
-        Network inputs [N, n_in]; t [N] the standardised targets.
+        Network inputs [N, n_in]; t [N] the standardised targets. The forward and backward
+        passes run in u's dtype (float32 in training), losses and gradients are summed in
+        float64.
     jac_rows : numpy.ndarray
         Distinct indices (into u) of the M profiles with Jacobian targets.
     u_dot : numpy.ndarray
-        Probe directions in input space [M, P, n_in].
+        Probe directions in input space [M, P, n_in]; the tangent pass runs in its dtype
+        (training uses float32: half the time, same fit).
     r : numpy.ndarray
         Target directional derivatives [M, P] (relative units: physical Jacobian minus the
         linear part's, over the physical norm, along the probes).
@@ -114,45 +117,52 @@ def refinement_loss(theta: np.ndarray, shapes, u: np.ndarray, t: np.ndarray, jac
     coefs, intercepts = unpack(theta, shapes)
     n, m = u.shape[0], jac_rows.size
     depth = len(coefs)
-    # ---- primal forward on all profiles
+    # ---- primal forward on all profiles, in u's precision (sums in float64)
+    pt = u.dtype
+    pw = [w.astype(pt, copy=False) for w in coefs]
+    pb = [b.astype(pt, copy=False) for b in intercepts]
     acts = [u]
     for k in range(depth - 1):
-        acts.append(np.tanh(acts[-1] @ coefs[k] + intercepts[k]))
-    y = (acts[-1] @ coefs[-1] + intercepts[-1])[:, 0]
-    res = y - t
+        acts.append(np.tanh(acts[-1] @ pw[k] + pb[k]))
+    y = (acts[-1] @ pw[-1] + pb[-1])[:, 0]
+    res = y.astype(float) - t
     loss = 0.5 * float(res @ res) / n + 0.5 * alpha * sum(float(np.sum(w * w)) for w in coefs) / n
     g_act = [None] * depth  # gradient with respect to each hidden activation (primal path)
     g_coefs = [None] * depth
     g_ints = [None] * depth
-    gy = res / n
-    g_coefs[-1] = acts[-1].T @ gy[:, None]
-    g_ints[-1] = np.array([gy.sum()])
-    g_a = gy[:, None] * coefs[-1][:, 0][None, :]
+    gy = (res / n).astype(pt)
+    g_coefs[-1] = (acts[-1].T @ gy[:, None]).astype(float)
+    g_ints[-1] = np.array([gy.sum(dtype=float)])
+    g_a = gy[:, None] * pw[-1][:, 0][None, :]
     # ---- tangent forward on the Jacobian profiles
     if weight > 0 and m:
-        sub = [a[jac_rows] for a in acts]
+        # in u_dot's precision (float32 halves the cost of this, the expensive part; the
+        # sums below are accumulated in float64)
+        ft = u_dot.dtype
+        cw = [w.astype(ft, copy=False) for w in coefs]
+        sub = [a[jac_rows].astype(ft, copy=False) for a in acts]
         dots = [u_dot]  # adot_k [M, P, n_k]
         hdots = [None]
         for k in range(depth - 1):
-            hd = dots[-1] @ coefs[k]
+            hd = dots[-1] @ cw[k]
             d = 1.0 - sub[k + 1] ** 2
             hdots.append(hd)
             dots.append(d[:, None, :] * hd)
-        ydot = dots[-1] @ coefs[-1][:, 0]  # [M, P]
-        e = scale * ydot - r
+        ydot = dots[-1] @ cw[-1][:, 0]  # [M, P]
+        e = scale * ydot.astype(float) - r
         loss += 0.5 * weight * float(np.sum(e * e)) / m
-        g_ydot = (weight / m) * scale * e  # [M, P]
-        g_coefs[-1] = g_coefs[-1] + _flat(dots[-1]).T @ g_ydot.reshape(-1, 1)
-        g_dot = g_ydot[..., None] * coefs[-1][:, 0][None, None, :]  # d/d adot_{depth-1}
+        g_ydot = ((weight / m) * scale * e).astype(ft)  # [M, P]
+        g_coefs[-1] = g_coefs[-1] + (_flat(dots[-1]).T @ g_ydot.reshape(-1, 1)).astype(float)
+        g_dot = g_ydot[..., None] * cw[-1][:, 0][None, None, :]  # d/d adot_{depth-1}
         g_sub = [np.zeros_like(s) for s in sub]  # extra gradient on the primal activations
         for k in range(depth - 1, 0, -1):
             d = 1.0 - sub[k] ** 2
             g_hd = g_dot * d[:, None, :]
             g_d = np.einsum("mpk,mpk->mk", g_dot, hdots[k])
             g_sub[k] += -2.0 * sub[k] * g_d
-            g_w = _flat(dots[k - 1]).T @ _flat(g_hd)  # one BLAS product over all (m, p)
+            g_w = (_flat(dots[k - 1]).T @ _flat(g_hd)).astype(float)  # one BLAS product over all (m, p)
             g_coefs[k - 1] = g_w if g_coefs[k - 1] is None else g_coefs[k - 1] + g_w
-            g_dot = g_hd @ coefs[k - 1].T
+            g_dot = g_hd @ cw[k - 1].T
         for k in range(1, depth):
             extra = np.zeros_like(acts[k])
             extra[jac_rows] = g_sub[k]  # jac_rows are distinct
@@ -162,10 +172,10 @@ def refinement_loss(theta: np.ndarray, shapes, u: np.ndarray, t: np.ndarray, jac
         if g_act[k] is not None:
             g_a = g_a + g_act[k]
         g_h = g_a * (1.0 - acts[k] ** 2)
-        g_w = acts[k - 1].T @ g_h
+        g_w = (acts[k - 1].T @ g_h).astype(float)
         g_coefs[k - 1] = g_w if g_coefs[k - 1] is None else g_coefs[k - 1] + g_w
-        g_ints[k - 1] = g_h.sum(axis=0)
-        g_a = g_h @ coefs[k - 1].T
+        g_ints[k - 1] = g_h.sum(axis=0, dtype=float)
+        g_a = g_h @ pw[k - 1].T
     for k in range(depth):
         g_coefs[k] = g_coefs[k] + alpha * coefs[k] / n
     return loss, pack(g_coefs, g_ints)

@@ -69,6 +69,18 @@ def test_shipped_recipes_load():
             r.feature_config()
         config = r.feature_config(load_instrument("demo-sounder"))
         assert len(config.channel_kernels) == 16 and config.reflection_kernels
+    # the full recipe's Jacobian term (humidity and window channels only) needs Jacobians
+    full, demo = load_recipe("full"), load_recipe("demo")
+    assert full.uses_jacobians() and full.uses_jacobians(["mw-t1", "mw-win"])
+    assert not full.uses_jacobians(["mw-t1", "ir-t2"]) and not demo.uses_jacobians()
+
+
+def test_uses_jacobians_follows_channel_overrides():
+    base = 'name = "x"\n[network]\njacobian_weight = 1.0\n[channels.a]\njacobian_weight = 0.0\n'
+    r = Recipe.from_toml(base)
+    assert r.uses_jacobians() and r.uses_jacobians(["b"]) and not r.uses_jacobians(["a"])
+    r = Recipe.from_toml('name = "x"\n[channels.a]\njacobian_weight = 2.0\n')
+    assert r.uses_jacobians() and r.uses_jacobians(["a", "b"]) and not r.uses_jacobians(["b"])
 
 
 def test_recipe_unknown_key_names_file_and_key(tmp_path):
@@ -92,6 +104,8 @@ def test_recipe_unknown_key_names_file_and_key(tmp_path):
     ('[network]\nmax_iter = 3\n', "missing key 'name'"),
     ('name = "x"\n[network]\nhidden_layers = [4, 4]\n[channels.a]\nhidden_layers = [4]\n', "share the number of hidden layers"),
     ('name = "x"\n[network\n', "not valid TOML"),
+    ('name = "x"\n[network]\njacobian_weight = -1.0\n', "jacobian_weight' must be a number >="),
+    ('name = "x"\n[training]\njacobian_floor = 0.0\n', "jacobian_floor' must be a number >"),
 ])
 def test_recipe_validation(text, message):
     with pytest.raises(ValueError, match=message):
