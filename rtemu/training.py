@@ -1071,6 +1071,10 @@ def _run_jobs(jobs: list[dict], workers, progress: bool, log):
             line = (f"{fit.channel_id}: validation RMSE {fit.stats['validation_rmse_k']:.4f} K, "
                     f"max {fit.stats['validation_max_abs_k']:.3f} K, {fit.stats['iterations']} iterations, "
                     f"{fit.seconds:.1f} s")
+            if "jacobian_iterations" in fit.stats:
+                line += (f"; Jacobian term: {fit.stats['jacobian_iterations']} iterations, median relative "
+                         f"Jacobian error (validation probes) {fit.stats['validation_jacobian_error_median_before']:.3f}"
+                         f" -> {fit.stats['validation_jacobian_error_median']:.3f}")
             bar.set_postfix_str(f"{fit.channel_id} val RMSE {fit.stats['validation_rmse_k']:.4f} K")
             bar.update(1)
             if log is not None:
