@@ -22,7 +22,8 @@ Loss of one channel (parameters theta: the network's weights and biases)::
   squared *relative* error that the accuracy benchmark reports, and dry or insensitive
   profiles count as much as the rest. The squared Frobenius norm over the 2L state
   directions is estimated with P fixed random probe vectors per profile
-  (E ||E v||^2 = ||E||_F^2 for v ~ N(0, I / P) summed over P probes): the directions
+  (for an error matrix D, the sum over P probes v ~ N(0, I / P) of ||D v||^2 has mean
+  ||D||_F^2): the directions
   u_dot_jp = G_j v_jp and the targets r_jp are computed once, before the fit, so one loss
   evaluation costs about P forward-and-back passes per Jacobian profile.
 * ydot_jp = g_j . u_dot_jp is evaluated by forward tangent propagation through the
@@ -214,10 +215,11 @@ def refine_network(coefs, intercepts, u, t, jac_rows, u_dot, r, *, weight, alpha
     best_theta, best_it, done = theta.copy(), 0, 0
     chunk = check_every or max_iter
     while done < max_iter:
+        asked = min(chunk, max_iter - done)
         result = minimize(lambda th: refinement_loss(th, shapes, u, t, jac_rows, u_dot, r, weight=weight,
                                                      alpha=alpha, scale=scale),
                           theta, jac=True, method="L-BFGS-B",
-                          options={"maxiter": min(chunk, max_iter - done), "maxcor": 20, "ftol": 0.0,
+                          options={"maxiter": asked, "maxcor": 20, "ftol": 0.0,
                                    "gtol": 0.0})
         theta = result.x
         done += max(int(result.nit), 1)
@@ -227,8 +229,8 @@ def refine_network(coefs, intercepts, u, t, jac_rows, u_dot, r, *, weight, alpha
             s = score(*unpack(theta, shapes))
             if s < best:
                 best, best_theta, best_it = s, theta.copy(), done
-        if result.nit < min(chunk, max_iter - done + result.nit):
-            break  # converged or stalled
+        if result.nit < asked:
+            break  # converged or the line search stalled
     c, b = unpack(best_theta, shapes)
     return ([w.copy() for w in c], [v.copy() for v in b],
             {"iterations": done, "best_iteration": best_it, "start_score": start, "best_score": best})
