@@ -405,13 +405,18 @@ def describe(path) -> str:
         lo, hi = np.asarray(item["lower"], float), np.asarray(item["upper"], float)
         lines.append(f"    {name:28s} {lo.min():.4g} .. {hi.max():.4g} [{item['units']}]"
                      + (f" (per {item['per']})" if item.get("per") else ""))
-    lines.append("  validation (K):   channel        rmse     bias    p99.9      max  hidden      iterations  kernels")
+    lines.append("  validation (K):   channel        rmse     bias    p99.9      max  hidden      iterations  kernels"
+                 "  Jacobian term")
     for cid in b.channel_ids:
         s = b.channel_stats[cid]
         kernels = "yes" if s.get("opacity_kernels") else "no"
+        # channels fitted with the Jacobian term: its iterations and the median relative
+        # Jacobian error on the validation probes before -> after
+        jterm = (f"{s['jacobian_iterations']} it, {s['validation_jacobian_error_median_before']:.3f} -> "
+                 f"{s['validation_jacobian_error_median']:.3f}" if "jacobian_iterations" in s else "-")
         lines.append(
             f"    {cid:>20s} {s['validation_rmse_k']:8.4f} {s['validation_bias_k']:8.4f} "
             f"{s['validation_p999_abs_k']:8.4f} {s['validation_max_abs_k']:8.4f}  "
-            f"{str(s['hidden_layers']):12s} {s['iterations']:<11d} {kernels}"
+            f"{str(s['hidden_layers']):12s} {s['iterations']:<11d} {kernels:7s}  {jterm}"
         )
     return "\n".join(lines)

@@ -213,7 +213,7 @@ def _median_jacobian_errors(bundle_path, test_path, channel):
 def test_training_with_the_jacobian_term_improves_the_bundle_jacobians(jacobian_data):
     """Same data, seed and network; the Jacobian term lowers the exported graph's Jacobian
     errors against the physical model on an independent test set."""
-    from rtemu.bundle import read_bundle
+    from rtemu.bundle import describe, read_bundle
     from rtemu.export import train_to_onnx
 
     root, train, test = jacobian_data
@@ -228,6 +228,8 @@ def test_training_with_the_jacobian_term_improves_the_bundle_jacobians(jacobian_
     stats = read_bundle(root / "w1.0.onnx").channel_stats[channel]
     assert stats["jacobian_iterations"] > 0 and stats["jacobian_profiles"] == 500
     assert "jacobian_iterations" not in read_bundle(root / "w0.0.onnx").channel_stats[channel]
+    line = [ln for ln in describe(root / "w1.0.onnx").splitlines() if ln.strip().startswith(channel)]
+    assert line and "150 it," in line[0] and "->" in line[0]
     (t0, q0), (t1, q1) = errors[0.0], errors[1.0]
     assert t1 < 0.8 * t0 and q1 < 0.8 * q0, errors
 
