@@ -403,8 +403,8 @@ def _kernel_forward(b: _Builder, layout: GraphLayout, sec: str, Ts1: str) -> dic
     g = b.op("Squeeze", t_surface, ax2)  # [N, K]
     f = b.op("Squeeze", b.op("MatMul", t, h3), ax2)  # [N, K]
     f = b.op("Add", f, b.op("Mul", g, Ts1))
-    out = {"features": b.op("Concat", f, g, axis=1), "t": t, "dfdT": dfdT, "t_surface": t_surface,
-           "sec3": sec3, "neg_sec3": neg_sec3, "h": b.op("Unsqueeze", h, ax1)}
+    out = {"t": t, "dfdT": dfdT, "t_surface": t_surface, "sec3": sec3, "neg_sec3": neg_sec3,
+           "h": b.op("Unsqueeze", h, ax1)}
     if layout.reflection_kernels:
         # s = exp(-sec (depth_s - depth)): transmittance from each level down to the surface;
         # D = -(s G).T the downwelling sky temperature; r = t_s (D - Ts) = -t_s ((s G).T + Ts)
