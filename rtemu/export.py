@@ -461,8 +461,7 @@ def train_to_onnx(data, recipe, output, *, channels=None, update=None, workers=N
         The written bundle, read back and checked.
     """
     recipe = load_recipe(recipe)
-    training = load_training_data(data, jacobians=recipe.uses_jacobians(
-        None if channels is None else [str(c) for c in channels]))
+    training = load_training_data(data, jacobians=recipe.uses_jacobians(channels))
     base = None
     transform = None
     if update is not None:

@@ -237,6 +237,7 @@ class Recipe:
     def uses_jacobians(self, channel_ids=None) -> bool:
         """Whether any of these channels (None: any channel) has a Jacobian term
         (``jacobian_weight`` > 0), so that training needs the physical Jacobians."""
+        channel_ids = None if channel_ids is None else [str(c) for c in channel_ids]
         if self.settings["network"]["jacobian_weight"] > 0 and (
                 channel_ids is None or any("jacobian_weight" not in self.channels.get(c, {}) for c in channel_ids)):
             return True
@@ -626,6 +627,16 @@ class ChannelFit:
         net = self.mlp.predict(self.network_input(z, e))
         return self.linear(z, s, e) + self.target_mean + self.target_scale * net
 
+    def ridge_coefficients(self) -> tuple:
+        """(b0, b1, b2, b3, b4): the ridge intercept and its coefficients on [zs, eps, eps zs,
+        sig zs] (see :meth:`design`); zeros without a linear part."""
+        K = self.z_mean.size
+        if self.ridge is None:
+            return 0.0, np.zeros(K), 0.0, np.zeros(K), np.zeros(K)
+        coef = np.asarray(self.ridge.coef_, dtype=float).ravel()
+        return (float(np.ravel(self.ridge.intercept_)[0]), coef[:K], coef[K], coef[K + 1:2 * K + 1],
+                coef[2 * K + 1:])
+
     def folded(self) -> dict[str, np.ndarray]:
         """The channel's parameters in the bundle's form (float64), on z1 = [z, 1].
 
@@ -640,13 +651,7 @@ class ChannelFit:
         + (ms/ws) c4 (+ the network's output constant);  m = v3/w, m_1 = (b2 - c3)/w;
         n = v4/ws, n_1 = -c4/ws.
         """
-        K = self.z_mean.size
-        if self.ridge is not None:
-            coef = np.asarray(self.ridge.coef_, dtype=float).ravel()
-            b0 = float(np.ravel(self.ridge.intercept_)[0])
-            b1, b2, b3, b4 = coef[:K], coef[K], coef[K + 1:2 * K + 1], coef[2 * K + 1:]
-        else:
-            b0, b1, b2, b3, b4 = 0.0, np.zeros(K), 0.0, np.zeros(K), np.zeros(K)
+        b0, b1, b2, b3, b4 = self.ridge_coefficients()
         mu, sigma, m, w, ms, ws = self.z_mean, self.z_scale, self.e_mean, self.e_scale, self.s_mean, self.s_scale
         v3, v4 = b3 / sigma, b4 / sigma
         c3, c4 = float(mu @ v3), float(mu @ v4)
@@ -790,14 +795,9 @@ def _refine_with_jacobians(fit: ChannelFit, net: dict, jac: dict, ut, tt, uv, tv
     directional derivatives are taken off the targets, so the network fits what the
     linear part misses. Returns the statistics to store.
     """
-    from rtemu.jacobian_fit import probe_relative_error, refine_network, refinement_loss
+    from rtemu.jacobian_fit import pack, probe_relative_error, refine_network, refinement_loss
 
-    K = fit.z_mean.size
-    if fit.ridge is not None:
-        coef = np.asarray(fit.ridge.coef_, dtype=float).ravel()
-        b1, b3, b4 = coef[:K], coef[K + 1:2 * K + 1], coef[2 * K + 1:]
-    else:
-        b1 = b3 = b4 = np.zeros(K)
+    _, b1, _, b3, b4 = fit.ridge_coefficients()
 
     def prepare(prefix, index):
         d = jac[prefix + "directions"]
@@ -815,7 +815,6 @@ def _refine_with_jacobians(fit: ChannelFit, net: dict, jac: dict, ut, tt, uv, tv
     weight, scale = net["jacobian_weight"], fit.target_scale
 
     def score(coefs, intercepts):
-        from rtemu.jacobian_fit import pack
         return refinement_loss(pack(coefs, intercepts), [w.shape for w in coefs], uv, tv, rows_v, ud_v, r_v,
                                weight=weight, alpha=0.0, scale=scale)[0]
 
@@ -943,8 +942,7 @@ def fit_emulator(data, recipe, *, channels=None, transform=None, workers=None, p
     """
     recipe = load_recipe(recipe)
     if not isinstance(data, TrainingData):
-        data = load_training_data(data, jacobians=recipe.uses_jacobians(
-            None if channels is None else [str(c) for c in channels]))
+        data = load_training_data(data, jacobians=recipe.uses_jacobians(channels))
     inst = data.instrument
     ids = list(inst.channel_ids) if channels is None else [str(c) for c in channels]
     unknown = [c for c in ids if c not in inst.channel_ids]
