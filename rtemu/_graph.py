@@ -14,9 +14,12 @@ Function evaluated (per profile n, channel c; all linear maps folded at export):
                                                           both ln q and q blocks)
     u      = ln(q M + W_0)                                log water-vapour path above each
                                                           level (optional block; M [L, L])
-    t_k    = exp(-kappa_k sec(theta) P_k)                 gray opacity kernels (optional,
-                                                          [K, L]): P_k = q M_l (line) or
-                                                          (q q) M_c (continuum)
+    t_k    = exp(-sec(theta) kappa_k . P)                 gray opacity kernels (optional,
+                                                          [K, L]): paths P_p = v_p M with
+                                                          v = [q, q q] c(p) (line,
+                                                          continuum), or with temperature
+                                                          laws also [1, q, q q] (T_ref/T)^n
+                                                          c(p) (dry, line, continuum)
     f_k    = t_k G . T + Ts t_k,s ;  g_k = t_k,s          kernel temperature and surface
                                                           transmittance (G [L, L]: layer
                                                           means and transmittance steps)
@@ -43,6 +46,8 @@ Jacobian (chain rule, reverse order)::
     dy/dT += a (t G);  dy/dTs += a . t_s
     dy/dq += [(a r) h + ((a Ts + b) . r_s) 1_s] M_l^T  (sums over the line kernels)
            + 2 q [the same over the continuum kernels] M_c^T
+             (with temperature laws each path's term also times (T_ref/T)^n, and
+             dy/dT += -n v / T times the same bracket M^T, summed over the paths)
     reflection, with c = dy/dr: dy/dT += -c (t_s s G);  dy/dTs -= c . t_s;  in the
     humidity terms a r h += c (r_s s) h and (a Ts + b) -= c (2 S + Ts), S = (s G) . T
 
@@ -110,6 +115,12 @@ class GraphLayout:
     reflection_kernels: bool = False
     n_band_kernels: int = 0
     n_channel_kernels: int = 0
+    kernel_temperature_laws: bool = False
+
+    @property
+    def n_kernel_paths(self) -> int:
+        """Kernel paths: [line, continuum] (+ [dry, line, continuum] in (T_ref / T)^n) [1]."""
+        return 5 if self.kernel_temperature_laws else 2
 
     @property
     def n_profile_blocks(self) -> int:
@@ -309,6 +320,9 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
         d_kT = b.op("MatMul", d_f, kern["dfdT"])
         if d_r is not None:
             d_kT = b.op("Add", d_kT, b.op("MatMul", d_r, kern["drdT"]))
+        kernel_dq, kernel_dT = _kernel_humidity_terms(b, layout, kern, d_f, d_g, d_r, Ts)
+        if kernel_dT is not None:  # through the opacities' temperature laws
+            d_kT = b.op("Add", d_kT, kernel_dT)
         b.op("Add", back(0, L), d_kT, out="jacobian_air_temperature")
     else:
         back(0, L, out="jacobian_air_temperature")
@@ -332,7 +346,7 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
                    b.op("Transpose", "water_path_matrix", perm=[1, 0]))
         terms.append(b.op("Reshape", d_u, b.ints([-1, C, L])))
     if kern is not None:
-        terms += _kernel_humidity_terms(b, layout, kern, d_f, d_g, d_r, Ts)
+        terms += kernel_dq
     while len(terms) > 2:
         terms[:2] = [b.op("Add", terms[0], terms[1])]
     if len(terms) == 2:
@@ -374,22 +388,40 @@ def _kernel_forward(b: _Builder, layout: GraphLayout, sec: str, Ts1: str) -> dic
     """Gray opacity kernels: features [N, 2K] = [f, g] (or [N, 3K] = [f, g, r] with the
     reflected-sky term) and what their Jacobian reuses.
 
-    Computed per kernel term [N, K_t, ...]; with channel kernels, the sub-band terms add a
-    constant dry-air depth (``kernel_dry_depth`` [K_t, L]) and the features are the
-    weighted sums ``kernel_combination`` [K_t, K] of the terms.
+    Computed per kernel term [N, K_t, ...]; with channel kernels the features are the
+    weighted sums ``kernel_combination`` [K_t, K] of the terms, and the sub-band terms add
+    a constant dry-air depth (``kernel_dry_depth`` [K_t, L]) unless the layout has the
+    temperature laws (then the dry path is one of the paths below).
 
-    Both paths come from one product: [q p/p_0, q q p/(epsilon p_0)] M (``kernel_path_scale``
-    [2, L] holds the two level factors, ``kernel_path_matrix`` is M of
-    :func:`rtemu.features.water_path_matrix`); ``kernel_coefficients`` [K, 2] holds kappa_k
-    in the column of its path.
+    All paths come from one product, P = v M (``kernel_path_matrix`` is M of
+    :func:`rtemu.features.water_path_matrix`): v = [q p/p_0, q q p/(epsilon p_0)]
+    (``kernel_path_scale`` [2, L] holds the level factors), or with the temperature laws
+    v_p = q^a_p (T_ref / T)^n_p c_p for a = [1, 2, 0, 1, 2] (``kernel_path_scale`` [5, L],
+    ``kernel_temperature_exponent`` [5, 1], ``kernel_reference_temperature``; see
+    :func:`rtemu.features.kernel_path_inputs`). ``kernel_coefficients`` [K_t, P] holds
+    each term's kappa on the paths.
     """
     T, q = INPUT_NAMES[0], INPUT_NAMES[1]
     ax1, ax2 = b.ints([1]), b.ints([2])
-    q_powers = b.op("Concat", b.op("Unsqueeze", q, ax1), b.op("Unsqueeze", b.op("Mul", q, q), ax1), axis=1)
-    paths = b.op("MatMul", b.op("Mul", q_powers, "kernel_path_scale"), "kernel_path_matrix")  # [N, 2, L]
+    out = {}
+    if layout.kernel_temperature_laws:
+        # v = q^a (T_ref / T)^n c(p) per path [N, 5, L]; a = 1, 2, 0, 1, 2
+        first, second = _path_power_rows(b, layout)
+        q3, qq3 = b.op("Unsqueeze", q, ax1), b.op("Unsqueeze", b.op("Mul", q, q), ax1)
+        powers = b.op("Add", b.op("Add", b.op("Mul", q3, first), b.op("Mul", qq3, second)),
+                      b.const("path_power_0", [[0.0], [0.0], [1.0], [0.0], [0.0]]))
+        log_ratio = b.op("Unsqueeze", b.op("Sub", b.op("Log", "kernel_reference_temperature"), b.op("Log", T)), ax1)
+        law_scale = b.op("Mul", b.op("Exp", b.op("Mul", log_ratio, "kernel_temperature_exponent")),
+                         "kernel_path_scale")  # (T_ref / T)^n c(p) [N, 5, L]
+        v = b.op("Mul", powers, law_scale)
+        out.update(path_values=v, law_scale=law_scale)
+    else:
+        q_powers = b.op("Concat", b.op("Unsqueeze", q, ax1), b.op("Unsqueeze", b.op("Mul", q, q), ax1), axis=1)
+        v = b.op("Mul", q_powers, "kernel_path_scale")  # [N, 2, L]
+    paths = b.op("MatMul", v, "kernel_path_matrix")  # [N, P, L]
     sec3 = b.op("Unsqueeze", sec, b.ints([1, 2]))  # [N, 1, 1]
     depth = b.op("MatMul", "kernel_coefficients", paths)  # [N, K_t, L]
-    if layout.n_band_kernels:
+    if layout.n_band_kernels and not layout.kernel_temperature_laws:
         depth = b.op("Add", depth, "kernel_dry_depth")
     neg_sec3 = b.op("Neg", sec3)  # the sign on [N, 1, 1], not on [N, K, L]
     t = b.op("Exp", b.op("Mul", depth, neg_sec3))  # [N, K, L]
@@ -403,8 +435,7 @@ def _kernel_forward(b: _Builder, layout: GraphLayout, sec: str, Ts1: str) -> dic
     g = b.op("Squeeze", t_surface, ax2)  # [N, K]
     f = b.op("Squeeze", b.op("MatMul", t, h3), ax2)  # [N, K]
     f = b.op("Add", f, b.op("Mul", g, Ts1))
-    out = {"t": t, "dfdT": dfdT, "t_surface": t_surface, "sec3": sec3, "neg_sec3": neg_sec3,
-           "h": b.op("Unsqueeze", h, ax1)}
+    out.update(t=t, dfdT=dfdT, t_surface=t_surface, sec3=sec3, neg_sec3=neg_sec3, h=b.op("Unsqueeze", h, ax1))
     if layout.reflection_kernels:
         # s = exp(-sec (depth_s - depth)): transmittance from each level down to the surface;
         # D = -(s G).T the downwelling sky temperature; r = t_s (D - Ts) = -t_s ((s G).T + Ts)
@@ -421,21 +452,25 @@ def _kernel_forward(b: _Builder, layout: GraphLayout, sec: str, Ts1: str) -> dic
     return out
 
 
-def _kernel_humidity_terms(b: _Builder, layout: GraphLayout, kern: dict, d_f: str, d_g: str, d_r, Ts: str) -> list:
-    """dy/dq [N, C, L] through the kernels (both paths in one product by M^T).
+def _kernel_humidity_terms(b: _Builder, layout: GraphLayout, kern: dict, d_f: str, d_g: str, d_r,
+                           Ts: str) -> tuple[list, str | None]:
+    """dy/dq [N, C, L] through the kernels (all paths in one product by M^T), and with the
+    temperature laws the part of dy/dT [N, C, L] that goes through the opacities.
 
     With tau = kappa P (per kernel), sigma = sec(theta), h = T G^T and S = (s G).T:
     df/dtau_i = -sigma t_i h_i - sigma t_s Ts 1_s,  dg/dtau_i = -sigma t_s 1_s,
     dr/dtau_i = -sigma t_s s_i h_i + sigma t_s (2 S + Ts) 1_s   (r = -t_s (S + Ts)).
+    dy/dP_p = sum_k kappa_k,p dy/dtau_k, dy/dv_p = dy/dP_p M^T (paths P_p = v_p M), then
+    dv_p/dq = a_p q^(a_p - 1) (T_ref / T)^n_p c_p and dv_p/dT = -n_p v_p / T.
     """
     T, q = INPUT_NAMES[0], INPUT_NAMES[1]
     ax1 = b.ints([1])
     L, C, K = layout.n_levels, layout.n_channels, layout.n_kernel_terms
     rho = b.op("Mul", kern["t"], kern["neg_sec3"])  # dt_k/d(kappa_k P) [N, K, L]
     h = kern["h"]  # df/dt without the surface term [N, 1, L]
-    kappa_by_path = b.op("Transpose", "kernel_coefficients", perm=[1, 0])  # [2, K]
+    kappa_by_path = b.op("Transpose", "kernel_coefficients", perm=[1, 0])  # [P, K]
 
-    def per_path(weights):  # [N, C, K] -> [N, 2C, K]: kappa_k where k acts on that path
+    def per_path(weights):  # [N, C, K] -> [N, C P, K]: kappa_k where k acts on that path
         return b.op("Reshape", b.op("Mul", b.op("Unsqueeze", weights, b.ints([2])), kappa_by_path),
                     b.ints([0, -1, K]))
 
@@ -443,24 +478,41 @@ def _kernel_humidity_terms(b: _Builder, layout: GraphLayout, kern: dict, d_f: st
     rho_s = b.op("MatMul", rho, "kernel_surface_pick")  # -sigma t_s [N, K, 1]
     weight = b.op("Add", b.op("Mul", d_f, ts3), d_g)
     if d_r is None:
-        d_path = b.op("Mul", b.op("MatMul", per_path(d_f), rho), h)  # dy/dP [N, 2C, L]
+        d_path = b.op("Mul", b.op("MatMul", per_path(d_f), rho), h)  # dy/dP [N, C P, L]
     else:
         # f and r in one product: [a, c] (per path) by [rho; rho_s s]
-        both = b.op("Concat", per_path(d_f), per_path(d_r), axis=2)  # [N, 2C, 2K]
+        both = b.op("Concat", per_path(d_f), per_path(d_r), axis=2)  # [N, C P, 2K]
         d_path = b.op("Mul", b.op("MatMul", both, b.op("Concat", rho, b.op("Mul", rho_s, kern["s"]), axis=1)), h)
         s2_ts = b.op("Add", b.op("Add", kern["minus_sky"], kern["minus_sky"]), b.op("Unsqueeze", Ts, ax1))  # 2S + Ts [N, K]
         weight = b.op("Sub", weight, b.op("Mul", d_r, b.op("Unsqueeze", s2_ts, ax1)))
     surface_weight = per_path(weight)
-    at_surface = b.op("MatMul", surface_weight, rho_s)  # [N, 2C, 1]
+    at_surface = b.op("MatMul", surface_weight, rho_s)  # [N, C P, 1]
     d_path = b.op("Add", d_path, b.op("Mul", at_surface, b.op("Transpose", "kernel_surface_pick", perm=[1, 0])))
-    d_q = b.op("MatMul", b.op("Reshape", d_path, b.ints([-1, L])),
+    d_v = b.op("MatMul", b.op("Reshape", d_path, b.ints([-1, L])),
                b.op("Transpose", "kernel_path_matrix", perm=[1, 0]))
-    d_q = b.op("Reshape", d_q, b.ints([-1, C, 2, L]))
-    # d[q, q q]/dq = [1, 2 q], times the level factors
-    chain = b.op("Add", b.op("Mul", b.op("Unsqueeze", b.op("Add", q, q), b.ints([1])), b.const("second_path", [[0.0], [1.0]])),
-                 b.const("first_path", [[1.0], [0.0]]))  # [N, 2, L]
-    chain = b.op("Unsqueeze", b.op("Mul", chain, "kernel_path_scale"), b.ints([1]))  # [N, 1, 2, L]
-    return [b.op("ReduceSum", b.op("Mul", d_q, chain), b.ints([2]), keepdims=0)]
+    d_v = b.op("Reshape", d_v, b.ints([-1, C, layout.n_kernel_paths, L]))  # dy/dv [N, C, P, L]
+    # dv/dq = a q^(a-1) times the level factors (and the laws): [1, 2 q] for a = 1, 2
+    first, second = _path_power_rows(b, layout)
+    chain = b.op("Add", b.op("Mul", b.op("Unsqueeze", b.op("Add", q, q), b.ints([1])), second), first)  # [N, P, L]
+    scale = kern["law_scale"] if layout.kernel_temperature_laws else "kernel_path_scale"
+    chain = b.op("Unsqueeze", b.op("Mul", chain, scale), b.ints([1]))  # [N, 1, P, L]
+    d_q = b.op("ReduceSum", b.op("Mul", d_v, chain), b.ints([2]), keepdims=0)
+    if not layout.kernel_temperature_laws:
+        return [d_q], None
+    # dv/dT = -n v / T
+    chain_t = b.op("Div", b.op("Mul", kern["path_values"], b.op("Neg", "kernel_temperature_exponent")),
+                   b.op("Unsqueeze", T, ax1))
+    d_t = b.op("ReduceSum", b.op("Mul", d_v, b.op("Unsqueeze", chain_t, b.ints([1]))), b.ints([2]), keepdims=0)
+    return [d_q], d_t
+
+
+def _path_power_rows(b: _Builder, layout: GraphLayout) -> tuple[str, str]:
+    """Constants [P, 1] picking the paths in q (a = 1) and in q^2 (a = 2), made once."""
+    if "first_path" not in b.initializers:
+        a = np.array([1, 2, 0, 1, 2][:layout.n_kernel_paths])[:, None]
+        b.const("first_path", (a == 1).astype(float))
+        b.const("second_path", (a == 2).astype(float))
+    return "first_path", "second_path"
 
 
 def _flags(b: _Builder, layout: GraphLayout, X: str, z1: str, Ts1: str, cols, ln_q=None) -> None:
@@ -546,9 +598,13 @@ def primary_shapes(layout: GraphLayout) -> dict[str, tuple[int, ...]]:
         shapes["water_path_floor"] = ()
     if layout.n_kernels:
         shapes["kernel_path_matrix"] = (L, L)
-        shapes["kernel_path_scale"] = (2, L)
-        shapes["kernel_coefficients"] = (layout.n_kernel_terms, 2)
-        if layout.n_band_kernels:
+        P = layout.n_kernel_paths
+        shapes["kernel_path_scale"] = (P, L)
+        shapes["kernel_coefficients"] = (layout.n_kernel_terms, P)
+        if layout.kernel_temperature_laws:
+            shapes["kernel_temperature_exponent"] = (P, 1)
+            shapes["kernel_reference_temperature"] = ()
+        elif layout.n_band_kernels:
             shapes["kernel_dry_depth"] = (layout.n_kernel_terms, L)
         if layout.n_channel_kernels:
             shapes["kernel_combination"] = (layout.n_kernel_terms, layout.n_kernels)

@@ -26,7 +26,7 @@ __all__ = ["FORMAT_VERSION", "Bundle", "BundleError", "read_bundle", "describe",
            "weights_sha256"]
 
 #: Bundle format written by this rtemu; files with a larger number are refused.
-FORMAT_VERSION = 4
+FORMAT_VERSION = 5
 PREFIX = "rtemu."
 
 REQUIRED_KEYS = (
@@ -352,7 +352,7 @@ def make_session(path, *, outputs=None, threads: int | None = None, check: bool 
 
 # ---- description --------------------------------------------------------------------------
 def _features_summary(features: dict) -> str:
-    skip = ("line_kernels", "continuum_kernels", "channel_kernels", "reflection_kernels")
+    skip = ("line_kernels", "continuum_kernels", "channel_kernels", "reflection_kernels", "kernel_temperature_laws")
     return ", ".join(f"{k} {v}" for k, v in sorted(features.items()) if k not in skip)
 
 
@@ -368,6 +368,9 @@ def _kernels_summary(features: dict) -> str:
         parts.append(f"{len(channels)} from the instrument's channels ({sum(len(c) for c in channels)} sub-bands)")
     if not parts:
         return "none"
+    laws = features.get("kernel_temperature_laws") or []
+    if laws:
+        parts.append("absorption in (T_ref / T)^n, T_ref {:g} K, n dry/line/continuum {:g}/{:g}/{:g}".format(*laws))
     return "; ".join(parts) + ("; with the reflected-sky term" if features.get("reflection_kernels") else "")
 
 

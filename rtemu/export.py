@@ -35,6 +35,7 @@ from rtemu.features import (
     kernel_coefficient_matrix,
     kernel_combination_matrix,
     kernel_dry_depth,
+    kernel_temperature_exponents,
     kernel_path_scales,
     kernel_temperature_matrix,
     surface_level,
@@ -85,7 +86,8 @@ _SHAPES = {
 _LINEAR_COLUMNS = ("linear_weight", "linear_emissivity_weight", "linear_zenith_weight")
 _SHARED = ("feature_center", "projection_weight", "projection_offset", "novelty_scale", "humidity_floor",
            "log_pressure_minus_bolton_a", "water_path_matrix", "water_path_floor", "kernel_path_matrix",
-           "kernel_path_scale", "kernel_coefficients", "kernel_temperature_matrix", "kernel_surface_pick")
+           "kernel_path_scale", "kernel_coefficients", "kernel_temperature_matrix", "kernel_surface_pick",
+           "kernel_dry_depth", "kernel_combination", "kernel_temperature_exponent", "kernel_reference_temperature")
 
 
 class FrozenTransform:
@@ -222,13 +224,17 @@ def _kernel_arrays(config: FeatureConfig, pressure_hpa) -> dict:
     pick[surface_level(p), 0] = 1.0
     arrays = {
         "kernel_path_matrix": water_path_matrix(p),
-        "kernel_path_scale": kernel_path_scales(p),
+        "kernel_path_scale": kernel_path_scales(p, config.n_kernel_paths),
         "kernel_coefficients": kernel_coefficient_matrix(config),
         "kernel_temperature_matrix": kernel_temperature_matrix(p),
         "kernel_surface_pick": pick,
     }
-    if config.channel_kernels:
+    if config.kernel_temperature_laws:
+        arrays["kernel_temperature_exponent"] = kernel_temperature_exponents(config)[:, None]
+        arrays["kernel_reference_temperature"] = np.asarray(config.kernel_temperature_laws[0])
+    elif config.channel_kernels:
         arrays["kernel_dry_depth"] = kernel_dry_depth(config, p)
+    if config.channel_kernels:
         arrays["kernel_combination"] = kernel_combination_matrix(config)
     return {k: v.astype(np.float32) for k, v in arrays.items()}
 
@@ -294,6 +300,7 @@ def _metadata(*, layout, config, instrument, channel_ids, grid, bounds, parts, l
             "n_line_kernels": layout.n_line_kernels, "n_continuum_kernels": layout.n_continuum_kernels,
             "reflection_kernels": layout.reflection_kernels,
             "n_band_kernels": layout.n_band_kernels, "n_channel_kernels": layout.n_channel_kernels,
+            "kernel_temperature_laws": layout.kernel_temperature_laws,
             "level_order": "surface first" if grid[0] > grid[-1] else "top first",
         }, sort_keys=True),
         "rtemu.features": config.to_json(),
@@ -409,7 +416,8 @@ def build_bundle_model(emu: TrainedEmulator, *, base=None, dtype=np.float32):
                                 n_continuum_kernels=len(cfg.continuum_kernels),
                                 reflection_kernels=cfg.reflection_kernels,
                                 n_band_kernels=cfg.n_band_kernels,
-                                n_channel_kernels=len(cfg.channel_kernels))
+                                n_channel_kernels=len(cfg.channel_kernels),
+                                kernel_temperature_laws=bool(cfg.kernel_temperature_laws))
     arrays = _assemble(shared, bounds, parts, layout)
     model = _graph.build_model(layout, arrays, dtype=dtype)
     meta = _metadata(layout=layout, config=cfg, instrument=instrument, channel_ids=ids,

@@ -65,7 +65,8 @@ from rtemu.constants import EPSILON, STANDARD_GRAVITY
 __all__ = ["FeatureConfig", "FeatureTransform", "raw_features", "humidity_transform", "zenith_transform",
            "water_path_matrix", "water_path_transform", "kernel_path_matrices", "kernel_temperature_matrix",
            "opacity_kernel_features", "kernel_columns", "kernel_path_scales", "kernel_coefficient_matrix",
-           "surface_level", "kernel_dry_depth", "kernel_combination_matrix", "channel_kernels_of"]
+           "surface_level", "kernel_dry_depth", "kernel_combination_matrix", "channel_kernels_of",
+           "kernel_path_inputs", "kernel_temperature_exponents", "temperature_laws_of"]
 
 #: p_0 of the kernel paths [hPa].
 KERNEL_REFERENCE_PRESSURE_HPA = 1013.25
@@ -129,6 +130,16 @@ class FeatureConfig:
         pressure exponent 1 and no temperature dependence, with the Planck function linear
         in T, its own kernel is its brightness temperature; the networks learn what is
         left (Planck curvature, temperature-dependent absorption).
+    kernel_temperature_laws : tuple of float
+        (T_ref [K], n_dry, n_line, n_continuum [1]) or empty. With it the channel kernels'
+        absorption follows the instrument's temperature laws, k (T_ref / T)^n per absorber
+        (recipe ``kernel_temperature_laws = true`` takes them from the training data's
+        instrument): each path becomes a sum over layers of (q^a (T_ref / T)^n p / p_0)
+        layer means times dm (see :func:`kernel_path_inputs`), so the kernels and their
+        Jacobians carry the d(opacity)/dT part of the air-temperature sensitivity, which
+        is most of it in a continuum-dominated window (measured on the demo sounder: 62 %
+        of the norm of mw-win's temperature Jacobian, median over test profiles). Empty:
+        temperature-independent kernels (bundle formats 3-4).
     """
 
     humidity: str = "log+linear"
@@ -145,6 +156,7 @@ class FeatureConfig:
     humidity_top_hpa: float = 0.0
     reflection_kernels: bool = False
     channel_kernels: tuple = ()
+    kernel_temperature_laws: tuple = ()
 
     def __post_init__(self):
         top = self.humidity_top_hpa
@@ -163,6 +175,14 @@ class FeatureConfig:
         if not (self.humidity_floor > 0 and np.isfinite(self.humidity_floor)):
             raise ValueError(f"humidity_floor must be a positive number [kg kg-1], got {self.humidity_floor!r}")
         object.__setattr__(self, "channel_kernels", _checked_channel_kernels(self.channel_kernels))
+        laws = self.kernel_temperature_laws
+        rule = ("kernel_temperature_laws must be empty or [T_ref, n_dry, n_line, n_continuum] "
+                "(T_ref > 0 [K], finite exponents) with channel kernels")
+        if not isinstance(laws, (list, tuple)) or (laws and (
+                len(laws) != 4 or any(isinstance(v, bool) or not isinstance(v, (int, float)) or not np.isfinite(v)
+                                      for v in laws) or not laws[0] > 0 or not self.channel_kernels)):
+            raise ValueError(f"{rule}, got {laws!r}")
+        object.__setattr__(self, "kernel_temperature_laws", tuple(float(v) for v in laws))
         if not isinstance(self.reflection_kernels, bool):
             raise ValueError(f"reflection_kernels must be true or false, got {self.reflection_kernels!r}")
         if not isinstance(self.water_path, bool):
@@ -205,6 +225,12 @@ class FeatureConfig:
     def n_kernel_terms(self) -> int:
         """Gray absorbers computed: bank kernels plus every sub-band of the channel kernels [1]."""
         return len(self.line_kernels) + len(self.continuum_kernels) + self.n_band_kernels
+
+    @property
+    def n_kernel_paths(self) -> int:
+        """Kernel paths P: [line, continuum], or with the temperature laws [line, continuum,
+        dry, line, continuum] (the last three in (T_ref / T)^n) [1]."""
+        return 5 if self.kernel_temperature_laws else 2
 
     @property
     def n_kernel_features(self) -> int:
@@ -319,21 +345,71 @@ def _in_level_order(surface_first: np.ndarray, order: np.ndarray) -> np.ndarray:
     return out
 
 
-def kernel_path_scales(pressure_hpa) -> np.ndarray:
-    """[p / p_0, p / (epsilon p_0)] [2, L]: level factors of the line and continuum paths [1].
+def kernel_path_scales(pressure_hpa, n_paths: int = 2) -> np.ndarray:
+    """Level factors of the kernel paths [P, L] [1]: p / p_0 for the line and dry paths,
+    p / (epsilon p_0) for the continuum path (e = q p / epsilon).
 
     Parameters
     ----------
     pressure_hpa : array_like
         Level pressures p [hPa], shape (L,).
+    n_paths : {2, 5}
+        2: [line, continuum]; 5: [line, continuum, dry, line, continuum] (the last three
+        with the temperature laws; see :func:`kernel_path_inputs`).
 
     Returns
     -------
     numpy.ndarray
-        Shape (2, L): row 0 multiplies q (line path), row 1 multiplies q^2 (continuum).
+        Shape (P, L).
     """
     ratio = np.asarray(pressure_hpa, dtype=float) / KERNEL_REFERENCE_PRESSURE_HPA
-    return np.stack([ratio, ratio / EPSILON])
+    rows = [ratio, ratio / EPSILON] + ([ratio, ratio, ratio / EPSILON] if n_paths == 5 else [])
+    return np.stack(rows)
+
+
+#: Humidity power a of each kernel path (q^a): line 1, continuum 2, dry 0.
+KERNEL_PATH_POWERS = (1, 2, 0, 1, 2)
+
+
+def kernel_temperature_exponents(config: "FeatureConfig") -> np.ndarray:
+    """n of each kernel path [P] [1]: 0 for the bank's paths, the instrument's laws for the rest."""
+    if not config.kernel_temperature_laws:
+        return np.zeros(2)
+    return np.array([0.0, 0.0, *config.kernel_temperature_laws[1:]])
+
+
+def kernel_path_inputs(air_temperature, specific_humidity, config: "FeatureConfig", pressure_hpa) -> np.ndarray:
+    """v [N, P, L]: the level values of the kernel paths, P_p = v_p M (M of :func:`water_path_matrix`).
+
+    v_p = q^a_p (T_ref / T)^n_p c_p(p), with a_p = :data:`KERNEL_PATH_POWERS`, n_p from
+    :func:`kernel_temperature_exponents` and c_p from :func:`kernel_path_scales`: without
+    temperature laws [q p/p_0, q^2 p/(epsilon p_0)]; with them three more paths, the dry-air
+    path (T_ref/T)^n_dry p/p_0 and the line and continuum paths in (T_ref/T)^n.
+
+    Parameters
+    ----------
+    air_temperature : array_like
+        T [K], shape (N, L).
+    specific_humidity : array_like
+        q [kg kg-1], shape (N, L).
+    config : FeatureConfig
+    pressure_hpa : array_like
+        p [hPa], shape (L,).
+
+    Returns
+    -------
+    numpy.ndarray
+        v [kg kg-1, (kg kg-1)^2 or 1], shape (N, P, L).
+    """
+    q = np.asarray(specific_humidity, dtype=float)
+    n_paths = config.n_kernel_paths
+    powers = np.stack([q ** a for a in KERNEL_PATH_POWERS[:n_paths]], axis=1)  # [N, P, L]
+    v = powers * kernel_path_scales(pressure_hpa, n_paths)[None]
+    if config.kernel_temperature_laws:
+        t_ref = config.kernel_temperature_laws[0]
+        n = kernel_temperature_exponents(config)
+        v = v * np.exp(n[None, :, None] * (np.log(t_ref) - np.log(np.asarray(air_temperature, dtype=float)))[:, None, :])
+    return v
 
 
 def _checked_channel_kernels(value) -> tuple:
@@ -394,16 +470,26 @@ def channel_kernels_of(instrument, one_per_channel: bool = False) -> tuple:
     return tuple(collapsed)
 
 
+def temperature_laws_of(instrument) -> tuple:
+    """(T_ref [K], n_dry, n_line, n_continuum [1]): the instrument's absorber temperature laws
+    k (T_ref / T)^n, for :attr:`FeatureConfig.kernel_temperature_laws`."""
+    return (float(instrument.reference_temperature_k), float(instrument.dry.temperature_exponent),
+            float(instrument.h2o.temperature_exponent), float(instrument.continuum.temperature_exponent))
+
+
 def _band_terms(config: FeatureConfig) -> list:
     return [band for channel in config.channel_kernels for band in channel]
 
 
 def kernel_coefficient_matrix(config: FeatureConfig) -> np.ndarray:
-    """kappa [K_t, 2]: each kernel term's coefficients on the line (0) and continuum (1) paths.
+    """kappa [K_t, P]: each kernel term's coefficients on the kernel paths (see
+    :func:`kernel_path_inputs`).
 
     Kernel terms in order: line kernels, continuum kernels (one path each), then the
-    sub-bands of the channel kernels (both paths, plus a dry-air depth, see
-    :func:`kernel_dry_depth`); the water depth of term k is (kappa @ [P_line, P_continuum])_k.
+    sub-bands of the channel kernels: on the line and continuum paths plus a constant
+    dry-air depth (:func:`kernel_dry_depth`), or, with the temperature laws, on the dry,
+    line and continuum paths in (T_ref / T)^n (columns 2-4). The optical depth of term k
+    is (kappa @ P)_k (+ the dry depth).
 
     Parameters
     ----------
@@ -412,15 +498,17 @@ def kernel_coefficient_matrix(config: FeatureConfig) -> np.ndarray:
     Returns
     -------
     numpy.ndarray
-        [m2 kg-1], shape (K_t, 2).
+        [m2 kg-1], shape (K_t, P).
     """
-    kappa = np.zeros((config.n_kernel_terms, 2))
+    kappa = np.zeros((config.n_kernel_terms, config.n_kernel_paths))
     n_line, n_cont = len(config.line_kernels), len(config.continuum_kernels)
     kappa[:n_line, 0] = config.line_kernels
     kappa[n_line:n_line + n_cont, 1] = config.continuum_kernels
     bands = _band_terms(config)
-    if bands:
-        kappa[n_line + n_cont:] = np.array(bands)[:, 2:4]
+    if bands and config.kernel_temperature_laws:
+        kappa[n_line + n_cont:, 2:5] = np.array(bands)[:, 1:4]
+    elif bands:
+        kappa[n_line + n_cont:, :2] = np.array(bands)[:, 2:4]
     return kappa
 
 
@@ -428,7 +516,8 @@ def kernel_dry_depth(config: FeatureConfig, pressure_hpa) -> np.ndarray:
     """Nadir dry-air optical depth above each level of each kernel term, k_dry P_d [K_t, L] [1].
 
     P_d,i = sum over the layers above level i of the layer mean of (p / p_0) times the air
-    mass dp / g [kg m-2] (the line path of q = 1); zero rows for the bank kernels.
+    mass dp / g [kg m-2] (the line path of q = 1); zero rows for the bank kernels, and
+    zero everywhere with the temperature laws (the dry path is then one of the kernel paths).
 
     Parameters
     ----------
@@ -444,7 +533,7 @@ def kernel_dry_depth(config: FeatureConfig, pressure_hpa) -> np.ndarray:
     p = np.asarray(pressure_hpa, dtype=float)
     dry = np.zeros(config.n_kernel_terms)
     bands = _band_terms(config)
-    if bands:
+    if bands and not config.kernel_temperature_laws:
         dry[-len(bands):] = np.array(bands)[:, 1]
     path = np.ones(p.size) @ kernel_path_matrices(p)[0]
     return dry[:, None] * path[None, :]
@@ -541,6 +630,10 @@ def opacity_kernel_features(air_temperature, specific_humidity, surface_temperat
     Over a surface of emissivity e the gray column's brightness temperature is then
     f_k + (1 - e) r_k.
 
+    The optical depths are kappa sec(theta) (paths P = v M, :func:`kernel_path_inputs`),
+    plus the constant dry-air depth of the channel kernels (:func:`kernel_dry_depth`);
+    with ``config.kernel_temperature_laws`` the paths carry (T_ref / T)^n per level.
+
     Parameters
     ----------
     air_temperature : array_like
@@ -564,9 +657,8 @@ def opacity_kernel_features(air_temperature, specific_humidity, surface_temperat
     """
     T = np.asarray(air_temperature, dtype=float)
     q = np.asarray(specific_humidity, dtype=float)
-    m_line, m_cont = kernel_path_matrices(pressure_hpa)
     sec = 1.0 / np.cos(np.radians(np.asarray(sensor_zenith_angle, dtype=float)))
-    paths = np.stack([q @ m_line, (q * q) @ m_cont], axis=1)  # [N, 2, L]
+    paths = kernel_path_inputs(T, q, config, pressure_hpa) @ water_path_matrix(pressure_hpa)  # [N, P, L]
     nadir = kernel_coefficient_matrix(config) @ paths + kernel_dry_depth(config, pressure_hpa)
     depth = sec[:, None, None] * nadir  # kappa sec P [N, K_t, L]
     t = np.exp(-depth)

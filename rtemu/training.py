@@ -49,6 +49,7 @@ from rtemu.features import (
     FeatureConfig,
     FeatureTransform,
     channel_kernels_of,
+    temperature_laws_of,
     kernel_columns,
     raw_features,
 )
@@ -165,6 +166,7 @@ SCHEMA: dict[str, dict[str, Any]] = {
         "humidity_top_hpa": _float(0.0),
         "reflection_kernels": _bool,
         "instrument_kernels": _choice(INSTRUMENT_KERNELS),
+        "kernel_temperature_laws": _bool,
     },
     "linear": {"residual": _bool, "ridge_alpha": _float(0.0)},
     "network": {k: v for k, v in _NETWORK.items() if k != "ridge_alpha"},
@@ -176,7 +178,8 @@ CHANNEL_KEYS = {k: v for k, v in _NETWORK.items() if k != "activation"}
 DEFAULTS = {
     "training": {"seed": 0, "validation_fraction": 0.15, "max_profiles": 0, "jacobian_profiles": 4000,
                  "jacobian_validation_profiles": 1000, "jacobian_probes": 16, "jacobian_floor": 1e-3},
-    "features": {**dataclasses.asdict(FeatureConfig()), "instrument_kernels": "none"},
+    "features": {**dataclasses.asdict(FeatureConfig()), "instrument_kernels": "none",
+                 "kernel_temperature_laws": False},
     "linear": {"residual": True, "ridge_alpha": 1e-3},
     "network": {
         "hidden_layers": [32, 32], "activation": "tanh", "solver": "lbfgs", "alpha": 1e-6,
@@ -227,11 +230,17 @@ class Recipe:
         channels; see :func:`rtemu.features.channel_kernels_of`)."""
         settings = dict(self.settings["features"])
         kind = settings.pop("instrument_kernels")
+        laws = settings.pop("kernel_temperature_laws")
+        if laws and kind == "none":
+            raise ValueError(f"recipe {self.source}: [features] kernel_temperature_laws = true needs "
+                             "instrument_kernels = \"bands\" or \"channels\" (the laws are the instrument's)")
         if kind != "none":
             if instrument is None:
                 raise ValueError(f"recipe {self.source}: instrument_kernels = {kind!r} needs the instrument "
                                  "(the training data's) to build its kernels")
             settings["channel_kernels"] = channel_kernels_of(instrument, one_per_channel=kind == "channels")
+            if laws:
+                settings["kernel_temperature_laws"] = temperature_laws_of(instrument)
         return FeatureConfig(**settings)
 
     def uses_jacobians(self, channel_ids=None) -> bool:
@@ -288,7 +297,8 @@ class Recipe:
                     "channels of a bundle share the number of hidden layers)"
                 )
         try:
-            FeatureConfig(**{k: v for k, v in settings["features"].items() if k != "instrument_kernels"})
+            FeatureConfig(**{k: v for k, v in settings["features"].items()
+                             if k not in ("instrument_kernels", "kernel_temperature_laws")})
         except ValueError as exc:
             raise ValueError(f"recipe {source}: [features]: {exc}") from None
         return cls(name=top["name"], description=top.get("description", ""), source=source,

@@ -43,12 +43,21 @@ opacity_kernels = false
 
 
 @pytest.fixture(scope="module")
-def trained(tmp_path_factory):
-    """A tiny emulator (4 channels, one with narrower layers) and its bundle."""
+def data_path(tmp_path_factory):
+    root = tmp_path_factory.mktemp("export_data")
+    return sample_to_netcdf("demo-sounder", root / "train.nc", count=1200, seed=21, progress=False)
+
+
+@pytest.fixture(scope="module", params=["temperature_laws", "constant_opacity"])
+def trained(request, data_path, tmp_path_factory):
+    """A tiny emulator (4 channels, one with narrower layers) and its bundle; channel kernels
+    with the instrument's temperature laws (bundle format 5) or without (format 4)."""
     root = tmp_path_factory.mktemp("export")
-    data_path = sample_to_netcdf("demo-sounder", root / "train.nc", count=1200, seed=21, progress=False)
     data = load_training_data(data_path)
-    emu = fit_emulator(data, Recipe.from_toml(TINY, "tiny"), channels=CHANNELS, workers=1, progress=False)
+    text = TINY.replace('instrument_kernels = "bands"', 'instrument_kernels = "bands"\nkernel_temperature_laws = '
+                        + ("true" if request.param == "temperature_laws" else "false"))
+    emu = fit_emulator(data, Recipe.from_toml(text, "tiny"), channels=CHANNELS, workers=1, progress=False)
+    assert bool(emu.config.kernel_temperature_laws) == (request.param == "temperature_laws")
     blob, layout = build_bundle_model(emu)
     path = root / "tiny.onnx"
     path.write_bytes(blob)
@@ -93,7 +102,8 @@ def _layout(b):
                               n_continuum_kernels=g.get("n_continuum_kernels", 0),
                               reflection_kernels=g.get("reflection_kernels", False),
                               n_band_kernels=g.get("n_band_kernels", 0),
-                              n_channel_kernels=g.get("n_channel_kernels", 0))
+                              n_channel_kernels=g.get("n_channel_kernels", 0),
+                              kernel_temperature_laws=g.get("kernel_temperature_laws", False))
 
 
 def test_flag_bits_match_rtemu_flags():
@@ -108,8 +118,8 @@ def test_graph_is_valid_onnx_and_lean(trained):
     # nodes on initializers only are folded at session creation; what runs per call stays
     # small (each node costs ~1 us in a single-profile call); the water-path block (on in
     # this recipe) adds 12 (95 without it), the opacity kernels 57, their reflection term 32,
-    # the channel kernels 7
-    assert len(_graph.runtime_nodes(model)) <= 203
+    # the channel kernels 7, their temperature laws 11
+    assert len(_graph.runtime_nodes(model)) <= 203 + (11 if trained["layout"].kernel_temperature_laws else 0)
 
 
 def test_channel_without_kernels_has_zero_kernel_weights(trained):

@@ -195,6 +195,65 @@ def test_channel_kernels_reproduce_the_physical_model_of_a_dry_gray_channel():
     np.testing.assert_allclose(out[:, 2::3], 0.3 * sub[0] + 0.7 * sub[1], rtol=1e-12)
 
 
+def test_temperature_laws_carry_the_opacity_part_of_the_temperature_jacobian():
+    # The invented gray channels with temperature-dependent absorption (dry 0.8, water 1.5,
+    # continuum 3.0: k (T_ref / T)^n). With the instrument's laws the channel's own kernel
+    # follows the physical model's brightness temperature and its air-temperature Jacobian
+    # (rtemu.physics, analytic) closely; without them the kernel misses the d(opacity)/dT
+    # part. The laws act per level here and per layer mean in the physics, the only
+    # difference left besides the Planck curvature and the vapour-pressure approximation.
+    from rtemu import physics
+    from rtemu.features import channel_kernels_of, temperature_laws_of
+    from rtemu.instrument import Instrument
+    from rtemu.sampling import draw_states
+
+    text = _GRAY_TOML.replace("[absorbers.dry]\npressure_exponent = 1.0\ntemperature_exponent = 0.0",
+                        "[absorbers.dry]\npressure_exponent = 1.0\ntemperature_exponent = 0.8")
+    text = text.replace("[absorbers.h2o]\npressure_exponent = 1.0\ntemperature_exponent = 0.0",
+                        "[absorbers.h2o]\npressure_exponent = 1.0\ntemperature_exponent = 1.5")
+    text = text.replace("[absorbers.continuum]\ntemperature_exponent = 0.0",
+                        "[absorbers.continuum]\ntemperature_exponent = 3.0")
+    inst = Instrument.from_toml(text)
+    assert temperature_laws_of(inst) == (273.15, 0.8, 1.5, 3.0)
+    states = draw_states(48, seed=9, channels=inst)
+    p = states.air_pressure.values
+    T, q, Ts, e, zen = (states[k].values for k in ("air_temperature", "specific_humidity", "surface_temperature",
+                                                    "surface_emissivity", "sensor_zenith_angle"))
+    phys = physics.transfer(inst, p, T, q, Ts, e, zen, jacobian=True)
+    c = 0  # "thin": one sub-band with dry, water-line and continuum absorption
+    L = p.size
+
+    def kernel_bt(config, T):
+        f, _, r = opacity_kernel_features(T, q, Ts, zen, config, p)[:, c::config.n_kernels].T
+        return f + (1 - e[:, c]) * r
+
+    def relative_jacobian_error(config):
+        jac = np.empty((T.shape[0], L))
+        for i in range(L):
+            up, dn = T.copy(), T.copy()
+            up[:, i] += 1e-3
+            dn[:, i] -= 1e-3
+            jac[:, i] = (kernel_bt(config, up) - kernel_bt(config, dn)) / 2e-3
+        ref = phys["jacobian_air_temperature"][:, c]
+        return np.median(np.linalg.norm(jac - ref, axis=1) / np.linalg.norm(ref, axis=1))
+
+    kernels = channel_kernels_of(inst)
+    with_laws = FeatureConfig(channel_kernels=kernels, reflection_kernels=True,
+                              kernel_temperature_laws=temperature_laws_of(inst))
+    without = FeatureConfig(channel_kernels=kernels, reflection_kernels=True)
+    assert with_laws.n_kernel_paths == 5 and without.n_kernel_paths == 2
+    err_with, err_without = relative_jacobian_error(with_laws), relative_jacobian_error(without)
+    assert err_with < 0.02 and err_without > 5 * err_with, (err_with, err_without)
+    bt = phys["brightness_temperature"][:, c]
+    # the cosmic background (~1-3 K through the reflected path) is left out on both sides
+    cosmic = (1 - e[:, c]) * opacity_kernel_features(T, q, Ts, zen, with_laws, p)[:, 3 + c] ** 2 * 2.725
+    assert np.sqrt(np.mean((kernel_bt(with_laws, T) + cosmic - bt) ** 2)) < 0.1
+    with pytest.raises(ValueError, match="kernel_temperature_laws must be empty"):
+        FeatureConfig(kernel_temperature_laws=(273.15, 0.8, 1.5, 3.0))  # no channel kernels
+    with pytest.raises(ValueError, match="kernel_temperature_laws must be empty"):
+        FeatureConfig(channel_kernels=kernels, kernel_temperature_laws=(0.0, 0.8, 1.5, 3.0))
+
+
 def test_channel_kernels_scale_to_the_kernel_reference_pressure():
     from rtemu.features import channel_kernels_of
     from rtemu.instrument import Instrument
