@@ -61,7 +61,8 @@ def trained(request, data_path, tmp_path_factory):
     blob, layout = build_bundle_model(emu)
     path = root / "tiny.onnx"
     path.write_bytes(blob)
-    return {"data": data, "emu": emu, "path": path, "layout": layout, "root": root}
+    return {"data": data, "emu": emu, "path": path, "layout": layout, "root": root, "recipe": text,
+            "data_path": data_path}
 
 
 def _feeds(data, rows, columns, dtype=np.float32):
@@ -140,6 +141,27 @@ def test_channel_without_kernels_has_zero_kernel_weights(trained):
         assert np.any((others[:, cols] if name == "layer1_weight" else others[cols]) != 0), name
     assert b.channel_stats["mw-t3"]["opacity_kernels"] is False
     assert b.channel_stats["mw-h2"]["opacity_kernels"] is True
+
+
+def test_update_of_a_bundle_with_channel_kernels(trained):
+    # the shared kernel arrays (dry depth or temperature laws, sub-band combination) come
+    # from the old file; the channels not retrained keep their outputs exactly
+    from rtemu.export import train_to_onnx
+
+    root = trained["root"]
+    recipe = root / "recipe.toml"
+    recipe.write_text(trained["recipe"].replace("seed = 4", "seed = 5"))
+    out = root / "updated.onnx"
+    b = train_to_onnx(trained["data_path"], recipe, out, channels=["mw-h2"], update=trained["path"], workers=1,
+                      progress=False)
+    assert list(b.channel_ids) == list(trained["emu"].channel_ids)
+    feeds = _feeds(trained["data"], np.arange(20), _columns(trained))
+    old = _run(make_session(trained["path"]), feeds)
+    new = _run(make_session(out), feeds)
+    i = list(b.channel_ids).index("mw-h2")
+    keep = [c for c in range(len(b.channel_ids)) if c != i]
+    np.testing.assert_array_equal(new["brightness_temperature"][:, keep], old["brightness_temperature"][:, keep])
+    assert np.any(new["brightness_temperature"][:, i] != old["brightness_temperature"][:, i])
 
 
 def test_onnx_matches_in_memory_sklearn_model(trained):
