@@ -134,6 +134,7 @@ _NETWORK = {
     "check_every": _int(1),
     "patience": _int(1),
     "opacity_kernels": _bool,
+    "profile_blocks": _bool,
     "jacobian_weight": _float(0.0),
     "jacobian_max_iter": _int(1),
     "jacobian_check_every": _int(1),
@@ -184,7 +185,7 @@ DEFAULTS = {
     "network": {
         "hidden_layers": [32, 32], "activation": "tanh", "solver": "lbfgs", "alpha": 1e-6,
         "max_iter": 2000, "tol": 0.0, "learning_rate_init": 1e-3, "batch_size": 256,
-        "early_stopping": True, "check_every": 250, "patience": 3, "opacity_kernels": True,
+        "early_stopping": True, "check_every": 250, "patience": 3, "opacity_kernels": True, "profile_blocks": True,
         "jacobian_weight": 0.0, "jacobian_max_iter": 600, "jacobian_check_every": 200,
     },
     "envelope": {"bounds_margin": 0.02, "novelty_margin": 1.0},
@@ -580,7 +581,8 @@ class ChannelFit:
         and first-layer weights on them are zero in the bundle. (Measured on the demo
         sounder: the kernels cut the humidity and window channels' errors 3-10x but made
         the temperature-sounding channels' fits converge more slowly, e.g. 0.046 -> 0.060 K
-        RMSE for the lowest-peaking one at 600 iterations.)
+        RMSE for the lowest-peaking one at 600 iterations.) A channel with
+        ``profile_blocks = false`` sees only the kernel scalars, Ts and s(theta).
     n_components : int
         K, the width of the shared z (with ``z_columns``) [1].
     stats : dict
@@ -715,7 +717,7 @@ def _fit_channel(job: dict) -> ChannelFit:
 
 
 def _fit_channel_inner(*, channel_id, s, z, e, y, train, val, net, seed, residual, z_columns=None,
-                       uses_kernels=False, jacobian=None):
+                       uses_kernels=False, uses_profiles=True, jacobian=None):
     from sklearn.exceptions import ConvergenceWarning
     from sklearn.linear_model import Ridge
     from sklearn.neural_network import MLPRegressor
@@ -787,6 +789,7 @@ def _fit_channel_inner(*, channel_id, s, z, e, y, train, val, net, seed, residua
         "best_iteration": int(best_state[2]),
         "hidden_layers": list(fit.hidden),
         "opacity_kernels": bool(uses_kernels),
+        "profile_blocks": bool(uses_profiles),
         "seed": int(seed),
         **refined,
         **_error_stats(fit.predict(z[val], s[val], e[val]) - yv, "validation"),
@@ -995,7 +998,6 @@ def fit_emulator(data, recipe, *, channels=None, transform=None, workers=None, p
         jacobians = _jacobian_sets(data, rows, train, val, transform, config, recipe)
 
     jobs = []
-    without_kernels = np.setdiff1d(np.arange(z.shape[1]), kernel_columns(config, L)) if config.n_kernels else None
     for cid, col in zip(ids, columns):
         net = recipe.network_for(cid)
         jobs.append({
@@ -1003,8 +1005,9 @@ def fit_emulator(data, recipe, *, channels=None, transform=None, workers=None, p
             "y": data.brightness_temperature[rows, col], "train": train, "val": val,
             "net": net, "seed": channel_seed(recipe.seed, cid),
             "residual": recipe.settings["linear"]["residual"],
-            "z_columns": None if net["opacity_kernels"] else without_kernels,
+            "z_columns": _channel_columns(config, L, z.shape[1], net, cid, recipe.source),
             "uses_kernels": bool(config.n_kernels) and net["opacity_kernels"],
+            "uses_profiles": net["profile_blocks"],
             "jacobian": None if jacobians is None or net["jacobian_weight"] <= 0 else jacobians(col),
         })
     fits = dict(_run_jobs(jobs, workers, progress, log))
@@ -1013,6 +1016,27 @@ def fit_emulator(data, recipe, *, channels=None, transform=None, workers=None, p
         transform=transform, envelope=envelope, channels={c: fits[c] for c in ids}, recipe=recipe,
         data_sha256=data.sha256, data_source=data.source,
     )
+
+
+def _channel_columns(config: FeatureConfig, n_levels: int, width: int, net: dict, channel_id: str, source: str):
+    """Columns of z a channel sees (None: all of them).
+
+    ``opacity_kernels = false`` leaves out the kernel scalars; ``profile_blocks = false``
+    the principal components of the profile blocks (T, h(q), q, ln W), so that the channel's
+    air-temperature and humidity sensitivity can only come through the kernels' physically
+    shaped Jacobians (Ts and s(theta) stay in either case).
+    """
+    kernels = kernel_columns(config, n_levels) if config.n_kernels else np.array([], dtype=int)
+    if not net["profile_blocks"] and (not net["opacity_kernels"] or not config.n_kernels):
+        raise ValueError(f"recipe {source}: channel {channel_id!r} has profile_blocks = false but no opacity "
+                         "kernels (rule: a channel without the profile blocks needs [features] kernels and "
+                         "opacity_kernels = true)")
+    if net["profile_blocks"] and (net["opacity_kernels"] or not config.n_kernels):
+        return None
+    everything = np.arange(width)
+    if not net["opacity_kernels"]:
+        return np.setdiff1d(everything, kernels)
+    return everything[kernels[0]:]  # the kernel scalars, Ts and s(theta)
 
 
 def _jacobian_sets(data: TrainingData, rows, train, val, transform, config, recipe: Recipe):

@@ -39,6 +39,8 @@ check_every = 30
 [channels."mw-t3"]
 hidden_layers = [6, 4]
 opacity_kernels = false
+[channels."ir-win"]
+profile_blocks = false
 """
 
 
@@ -143,6 +145,30 @@ def test_channel_without_kernels_has_zero_kernel_weights(trained):
     assert b.channel_stats["mw-h2"]["opacity_kernels"] is True
 
 
+def test_channel_without_profile_blocks_sees_only_kernels_ts_and_zenith(trained):
+    from rtemu.features import kernel_columns
+
+    b = read_bundle(trained["path"])
+    arrays, emu = b.arrays(), trained["emu"]
+    first_kernel = kernel_columns(emu.config, emu.pressure_hpa.size)[0]
+    i = list(b.channel_ids).index("ir-win")
+    for name in ("layer1_weight", "linear_weight", "linear_emissivity_weight", "linear_zenith_weight"):
+        a = arrays[name]
+        profile_part = a[i][:first_kernel] if name == "layer1_weight" else a[:first_kernel, i]
+        assert np.all(profile_part == 0), name
+        rest = a[i][first_kernel:-1] if name == "layer1_weight" else a[first_kernel:-1, i]
+        assert np.any(rest != 0), name
+    assert b.channel_stats["ir-win"]["profile_blocks"] is False
+    assert b.channel_stats["mw-h2"]["profile_blocks"] is True
+
+
+def test_profile_blocks_off_needs_kernels(trained):
+    bad = trained["recipe"].replace('[channels."ir-win"]\nprofile_blocks = false',
+                                    '[channels."ir-win"]\nprofile_blocks = false\nopacity_kernels = false')
+    with pytest.raises(ValueError, match="channel 'ir-win' has profile_blocks = false but no opacity kernels"):
+        fit_emulator(trained["data"], Recipe.from_toml(bad, "bad"), channels=["ir-win"], workers=1, progress=False)
+
+
 def test_update_of_a_bundle_with_channel_kernels(trained):
     # the shared kernel arrays (dry depth or temperature laws, sub-band combination) come
     # from the old file; the channels not retrained keep their outputs exactly
@@ -220,7 +246,10 @@ def test_jacobians_match_central_differences_float64(trained):
     for var, jac, levels in checks:
         for lev in levels:
             x0 = feeds[var][:, lev]
-            h = 1e-5 * np.abs(x0)  # relative step: q spans decades; T ~ 250 K -> 2.5e-3 K
+            # relative steps (q spans decades; T ~ 250 K -> 2.5e-3 K); the larger one for q
+            # keeps round-off (~1e-14 K of a BT over 2 h, h ~ 1e-10 kg kg-1 on dry levels)
+            # below the tolerance; its O(h^2) truncation was ~1e-7 of the largest |J| here
+            h = (1e-5 if var == "air_temperature" else 1e-4) * np.abs(x0)
             plus, minus = dict(feeds), dict(feeds)
             plus[var], minus[var] = feeds[var].copy(), feeds[var].copy()
             plus[var][:, lev] += h
