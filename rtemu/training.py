@@ -58,6 +58,9 @@ from rtemu.instrument import Instrument
 #: Recipe ``[features] instrument_kernels``: none, one kernel term per sub-band of every
 #: channel, or one per channel (its sub-bands' weighted geometric-mean coefficients).
 INSTRUMENT_KERNELS = ("none", "bands", "channels")
+#: What the linear part of a channel sees: every z coordinate, or only the channel's own
+#: kernel scalars (with Ts and s(theta)).
+LINEAR_INPUTS = ("all", "own_kernel")
 
 __all__ = [
     "Recipe",
@@ -135,6 +138,7 @@ _NETWORK = {
     "patience": _int(1),
     "opacity_kernels": _bool,
     "profile_blocks": _bool,
+    "linear_inputs": _choice(LINEAR_INPUTS),
     "jacobian_weight": _float(0.0),
     "jacobian_max_iter": _int(1),
     "jacobian_check_every": _int(1),
@@ -186,6 +190,7 @@ DEFAULTS = {
         "hidden_layers": [32, 32], "activation": "tanh", "solver": "lbfgs", "alpha": 1e-6,
         "max_iter": 2000, "tol": 0.0, "learning_rate_init": 1e-3, "batch_size": 256,
         "early_stopping": True, "check_every": 250, "patience": 3, "opacity_kernels": True, "profile_blocks": True,
+        "linear_inputs": "all",
         "jacobian_weight": 0.0, "jacobian_max_iter": 600, "jacobian_check_every": 200,
     },
     "envelope": {"bounds_margin": 0.02, "novelty_margin": 1.0},
@@ -589,6 +594,13 @@ class ChannelFit:
         Validation figures (deterministic: no timings) stored in the bundle.
     seconds : float
         Wall time of the fit [s] (reported, not stored).
+    linear_mask : numpy.ndarray or None
+        0/1 per used z column [K_used]: the columns the linear part sees (None: all).
+        With ``linear_inputs = "own_kernel"`` only the channel's own kernel scalars, Ts
+        and s(theta): a gray channel's brightness temperature is f + (1 - e) r of its own
+        kernel, and a ridge on every column (the 16 channels' kernels are nearly collinear
+        in value, not in their Jacobians) fitted the values with Jacobians 57 % off
+        (demo sounder, mw-win, measured), which the network then had to undo.
     """
 
     channel_id: str
@@ -606,6 +618,7 @@ class ChannelFit:
     z_columns: Any = None
     n_components: int = 0
     seconds: float = 0.0
+    linear_mask: Any = None
 
     @property
     def hidden(self) -> tuple[int, ...]:
@@ -619,6 +632,8 @@ class ChannelFit:
         weighting functions move with sec(theta)).
         """
         zs = (self._z(z) - self.z_mean) / self.z_scale
+        if self.linear_mask is not None:  # columns outside the linear inputs: zero, so zero coefficients
+            zs = zs * self.linear_mask
         eps = ((e - self.e_mean) / self.e_scale)[:, None]
         sig = ((s - self.s_mean) / self.s_scale)[:, None]
         return np.concatenate([zs, eps, eps * zs, sig * zs], axis=1)
@@ -717,7 +732,7 @@ def _fit_channel(job: dict) -> ChannelFit:
 
 
 def _fit_channel_inner(*, channel_id, s, z, e, y, train, val, net, seed, residual, z_columns=None,
-                       uses_kernels=False, uses_profiles=True, jacobian=None):
+                       uses_kernels=False, uses_profiles=True, linear_columns=None, jacobian=None):
     from sklearn.exceptions import ConvergenceWarning
     from sklearn.linear_model import Ridge
     from sklearn.neural_network import MLPRegressor
@@ -736,6 +751,9 @@ def _fit_channel_inner(*, channel_id, s, z, e, y, train, val, net, seed, residua
                      s_mean=float(st.mean()), s_scale=float(spread(st)), e_mean=float(et.mean()),
                      e_scale=float(spread(et)), target_mean=0.0, target_scale=1.0, mlp=None, stats={},
                      z_columns=z_columns, n_components=zt.shape[1])
+    if linear_columns is not None:
+        full = np.arange(zt.shape[1]) if z_columns is None else np.asarray(z_columns)
+        fit.linear_mask = np.isin(full, linear_columns).astype(float)
     if residual:
         fit.ridge = Ridge(alpha=net["ridge_alpha"] * len(train), solver="cholesky")
         fit.ridge.fit(fit.design(zt, st, et), yt)
@@ -790,6 +808,7 @@ def _fit_channel_inner(*, channel_id, s, z, e, y, train, val, net, seed, residua
         "hidden_layers": list(fit.hidden),
         "opacity_kernels": bool(uses_kernels),
         "profile_blocks": bool(uses_profiles),
+        "linear_inputs": "all" if linear_columns is None else "own_kernel",
         "seed": int(seed),
         **refined,
         **_error_stats(fit.predict(z[val], s[val], e[val]) - yv, "validation"),
@@ -1008,6 +1027,7 @@ def fit_emulator(data, recipe, *, channels=None, transform=None, workers=None, p
             "z_columns": _channel_columns(config, L, z.shape[1], net, cid, recipe.source),
             "uses_kernels": bool(config.n_kernels) and net["opacity_kernels"],
             "uses_profiles": net["profile_blocks"],
+            "linear_columns": _own_kernel_columns(config, L, z.shape[1], net, cid, col, recipe.source),
             "jacobian": None if jacobians is None or net["jacobian_weight"] <= 0 else jacobians(col),
         })
     fits = dict(_run_jobs(jobs, workers, progress, log))
@@ -1037,6 +1057,24 @@ def _channel_columns(config: FeatureConfig, n_levels: int, width: int, net: dict
     if not net["opacity_kernels"]:
         return np.setdiff1d(everything, kernels)
     return everything[kernels[0]:]  # the kernel scalars, Ts and s(theta)
+
+
+def _own_kernel_columns(config: FeatureConfig, n_levels: int, width: int, net: dict, channel_id: str,
+                        column: int, source: str):
+    """Columns of z for ``linear_inputs = "own_kernel"``: the channel's own kernel scalars
+    [f, t_s, (r)], Ts and s(theta) (None for ``"all"``). ``column``: the channel's index in
+    the instrument, which orders the channel kernels after the bank's."""
+    if net["linear_inputs"] == "all":
+        return None
+    n_bank = len(config.line_kernels) + len(config.continuum_kernels)
+    if not config.channel_kernels or not net["opacity_kernels"] or column >= len(config.channel_kernels):
+        raise ValueError(f"recipe {source}: channel {channel_id!r} has linear_inputs = \"own_kernel\" but no "
+                         "kernel of its own (rule: it needs [features] instrument_kernels = \"bands\" or "
+                         "\"channels\" and opacity_kernels = true)")
+    first = kernel_columns(config, n_levels)[0]
+    groups = 3 if config.reflection_kernels else 2
+    own = [first + g * config.n_kernels + n_bank + column for g in range(groups)]
+    return np.array(own + [width - 2, width - 1])
 
 
 def _jacobian_sets(data: TrainingData, rows, train, val, transform, config, recipe: Recipe):
