@@ -408,11 +408,11 @@ def describe(path) -> str:
         lo, hi = np.asarray(item["lower"], float), np.asarray(item["upper"], float)
         lines.append(f"    {name:28s} {lo.min():.4g} .. {hi.max():.4g} [{item['units']}]"
                      + (f" (per {item['per']})" if item.get("per") else ""))
-    lines.append("  validation (K):   channel        rmse     bias    p99.9      max  hidden      iterations  kernels"
-                 "  Jacobian term")
+    lines.append("  validation (K):   channel        rmse     bias    p99.9      max  hidden      iterations  inputs"
+                 "       Jacobian term")
     for cid in b.channel_ids:
         s = b.channel_stats[cid]
-        kernels = "yes" if s.get("opacity_kernels") else "no"
+        kernels = _inputs_label(s)
         # channels fitted with the Jacobian term: its iterations and the median relative
         # Jacobian error on the validation probes before -> after
         jterm = (f"{s['jacobian_iterations']} it, {s['validation_jacobian_error_median_before']:.3f} -> "
@@ -420,6 +420,20 @@ def describe(path) -> str:
         lines.append(
             f"    {cid:>20s} {s['validation_rmse_k']:8.4f} {s['validation_bias_k']:8.4f} "
             f"{s['validation_p999_abs_k']:8.4f} {s['validation_max_abs_k']:8.4f}  "
-            f"{str(s['hidden_layers']):12s} {s['iterations']:<11d} {kernels:7s}  {jterm}"
+            f"{str(s['hidden_layers']):12s} {s['iterations']:<11d} {kernels:12s} {jterm}"
         )
+    lines.append("  inputs: all = profile components and kernels, profiles = no kernels, kernels = kernel "
+                 "scalars, Ts and zenith only; /own = linear part on the channel's own kernel")
     return "\n".join(lines)
+
+
+def _inputs_label(stats: dict) -> str:
+    """What a channel's network and linear part see (recipe opacity_kernels, profile_blocks,
+    linear_inputs), from its stored statistics (keys absent in older bundles: defaults)."""
+    if not stats.get("opacity_kernels"):
+        label = "profiles"
+    elif not stats.get("profile_blocks", True):
+        label = "kernels"
+    else:
+        label = "all"
+    return label + ("/own" if stats.get("linear_inputs") == "own_kernel" else "")

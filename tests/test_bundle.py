@@ -87,6 +87,13 @@ def test_describe_is_readable(good):
                                    "channel_kernels": [[[1.0, 0.0, 1.0, 0.0]], [[0.5, 1.0, 0.0, 0.0], [0.5, 2.0, 0.0, 0.0]]]})
     assert summary == ("line path [0.1, 3.0] m2 kg-1; continuum path [30.0] m2 kg-1; 2 from the instrument's "
                        "channels (3 sub-bands); with the reflected-sky term")
+    laws = rb._kernels_summary({"channel_kernels": [[[1.0, 0.0, 1.0, 0.0]]],
+                                "kernel_temperature_laws": [273.15, 0.8, 1.5, 3.0]})
+    assert laws == ("1 from the instrument's channels (1 sub-bands); absorption in (T_ref / T)^n, T_ref 273.15 K, "
+                    "n dry/line/continuum 0.8/1.5/3")
+    assert [rb._inputs_label(s) for s in ({"opacity_kernels": False}, {"opacity_kernels": True},
+                                          {"opacity_kernels": True, "profile_blocks": False,
+                                           "linear_inputs": "own_kernel"})] == ["profiles", "all", "kernels/own"]
 
 
 def test_bundle_error_is_a_value_error():
