@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import re
 import sys
 import time
 from pathlib import Path
@@ -254,7 +255,8 @@ def main(argv=None) -> int:
 
         train_to_onnx(train_path, args.recipe, bundle_path, workers=args.workers, progress=False, log=log)
         wall = time.perf_counter() - t0
-        fits = sum(float(line.rsplit(",", 1)[1].split()[0]) for line in lines)
+        # each channel's line: "<id>: validation RMSE ..., <seconds> s[; Jacobian term: ...]"
+        fits = sum(float(re.search(r", ([0-9.]+) s(?:;|$)", line).group(1)) for line in lines)
         print(f"training time: {wall:.0f} s wall on {os.cpu_count()} cores; channel fits {fits:.0f} s in total "
               f"(wall of each fit in its worker); load average now {os.getloadavg()[0]:.1f} (other jobs "
               "on the machine slow the fits)")
