@@ -65,6 +65,8 @@ import numpy as np
 import onnx
 from onnx import TensorProto, helper, numpy_helper
 
+from rtemu.features import kernel_path_names, kernel_path_powers
+
 #: ONNX opset of the exported graph (onnxruntime >= 1.17 runs it).
 OPSET = 21
 IR_VERSION = 10
@@ -118,9 +120,13 @@ class GraphLayout:
     kernel_temperature_laws: bool = False
 
     @property
+    def kernel_paths(self) -> tuple[str, ...]:
+        """Kernel path names (:func:`rtemu.features.kernel_path_names`)."""
+        return kernel_path_names(bool(self.n_line_kernels or self.n_continuum_kernels), self.kernel_temperature_laws)
+
+    @property
     def n_kernel_paths(self) -> int:
-        """Kernel paths: [line, continuum] (+ [dry, line, continuum] in (T_ref / T)^n) [1]."""
-        return 5 if self.kernel_temperature_laws else 2
+        return len(self.kernel_paths)
 
     @property
     def n_profile_blocks(self) -> int:
@@ -396,8 +402,8 @@ def _kernel_forward(b: _Builder, layout: GraphLayout, sec: str, Ts1: str) -> dic
     All paths come from one product, P = v M (``kernel_path_matrix`` is M of
     :func:`rtemu.features.water_path_matrix`): v = [q p/p_0, q q p/(epsilon p_0)]
     (``kernel_path_scale`` [2, L] holds the level factors), or with the temperature laws
-    v_p = q^a_p (T_ref / T)^n_p c_p for a = [1, 2, 0, 1, 2] (``kernel_path_scale`` [5, L],
-    ``kernel_temperature_exponent`` [5, 1], ``kernel_reference_temperature``; see
+    v_p = q^a_p (T_ref / T)^n_p c_p over the layout's paths (``kernel_path_scale`` [P, L],
+    ``kernel_temperature_exponent`` [P, 1], ``kernel_reference_temperature``; see
     :func:`rtemu.features.kernel_path_inputs`). ``kernel_coefficients`` [K_t, P] holds
     each term's kappa on the paths.
     """
@@ -405,14 +411,15 @@ def _kernel_forward(b: _Builder, layout: GraphLayout, sec: str, Ts1: str) -> dic
     ax1, ax2 = b.ints([1]), b.ints([2])
     out = {}
     if layout.kernel_temperature_laws:
-        # v = q^a (T_ref / T)^n c(p) per path [N, 5, L]; a = 1, 2, 0, 1, 2
+        # v = q^a (T_ref / T)^n c(p) per path [N, P, L]
         first, second = _path_power_rows(b, layout)
         q3, qq3 = b.op("Unsqueeze", q, ax1), b.op("Unsqueeze", b.op("Mul", q, q), ax1)
+        a = kernel_path_powers(layout.kernel_paths)[:, None]
         powers = b.op("Add", b.op("Add", b.op("Mul", q3, first), b.op("Mul", qq3, second)),
-                      b.const("path_power_0", [[0.0], [0.0], [1.0], [0.0], [0.0]]))
+                      b.const("path_power_0", (a == 0).astype(float)))
         log_ratio = b.op("Unsqueeze", b.op("Sub", b.op("Log", "kernel_reference_temperature"), b.op("Log", T)), ax1)
         law_scale = b.op("Mul", b.op("Exp", b.op("Mul", log_ratio, "kernel_temperature_exponent")),
-                         "kernel_path_scale")  # (T_ref / T)^n c(p) [N, 5, L]
+                         "kernel_path_scale")  # (T_ref / T)^n c(p) [N, P, L]
         v = b.op("Mul", powers, law_scale)
         out.update(path_values=v, law_scale=law_scale)
     else:
@@ -509,7 +516,7 @@ def _kernel_humidity_terms(b: _Builder, layout: GraphLayout, kern: dict, d_f: st
 def _path_power_rows(b: _Builder, layout: GraphLayout) -> tuple[str, str]:
     """Constants [P, 1] picking the paths in q (a = 1) and in q^2 (a = 2), made once."""
     if "first_path" not in b.initializers:
-        a = np.array([1, 2, 0, 1, 2][:layout.n_kernel_paths])[:, None]
+        a = kernel_path_powers(layout.kernel_paths)[:, None]
         b.const("first_path", (a == 1).astype(float))
         b.const("second_path", (a == 2).astype(float))
     return "first_path", "second_path"

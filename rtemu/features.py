@@ -66,7 +66,8 @@ __all__ = ["FeatureConfig", "FeatureTransform", "raw_features", "humidity_transf
            "water_path_matrix", "water_path_transform", "kernel_path_matrices", "kernel_temperature_matrix",
            "opacity_kernel_features", "kernel_columns", "kernel_path_scales", "kernel_coefficient_matrix",
            "surface_level", "kernel_dry_depth", "kernel_combination_matrix", "channel_kernels_of",
-           "kernel_path_inputs", "kernel_temperature_exponents", "temperature_laws_of"]
+           "kernel_path_inputs", "kernel_temperature_exponents", "temperature_laws_of", "kernel_path_names",
+           "kernel_path_powers"]
 
 #: p_0 of the kernel paths [hPa].
 KERNEL_REFERENCE_PRESSURE_HPA = 1013.25
@@ -228,9 +229,8 @@ class FeatureConfig:
 
     @property
     def n_kernel_paths(self) -> int:
-        """Kernel paths P: [line, continuum], or with the temperature laws [line, continuum,
-        dry, line, continuum] (the last three in (T_ref / T)^n) [1]."""
-        return 5 if self.kernel_temperature_laws else 2
+        """Kernel paths P (see :func:`kernel_path_names`) [1]."""
+        return len(_path_names(self))
 
     @property
     def n_kernel_features(self) -> int:
@@ -345,17 +345,41 @@ def _in_level_order(surface_first: np.ndarray, order: np.ndarray) -> np.ndarray:
     return out
 
 
-def kernel_path_scales(pressure_hpa, n_paths: int = 2) -> np.ndarray:
+#: The kernel paths: name -> (humidity power a, which temperature law (None: none), level
+#: factor "line" p / p_0 or "continuum" p / (epsilon p_0)). P_p = sum over the layers above
+#: a level of the layer mean of q^a (T_ref / T)^n c(p), times the air mass dm.
+KERNEL_PATHS = {
+    "line": (1, None, "line"),
+    "continuum": (2, None, "continuum"),
+    "dry_law": (0, 1, "line"),
+    "line_law": (1, 2, "line"),
+    "continuum_law": (2, 3, "continuum"),
+}
+
+
+def kernel_path_names(has_bank: bool, temperature_laws: bool) -> tuple[str, ...]:
+    """The paths a kernel layout computes: [line, continuum] for the fixed bank and for
+    channel kernels without temperature laws; [dry_law, line_law, continuum_law] for channel
+    kernels with them (the bank's two paths then only when there is a bank)."""
+    names = ("line", "continuum") if has_bank or not temperature_laws else ()
+    return names + (("dry_law", "line_law", "continuum_law") if temperature_laws else ())
+
+
+def _path_names(config: "FeatureConfig") -> tuple[str, ...]:
+    has_bank = bool(config.line_kernels or config.continuum_kernels)
+    return kernel_path_names(has_bank, bool(config.kernel_temperature_laws))
+
+
+def kernel_path_scales(pressure_hpa, names=("line", "continuum")) -> np.ndarray:
     """Level factors of the kernel paths [P, L] [1]: p / p_0 for the line and dry paths,
-    p / (epsilon p_0) for the continuum path (e = q p / epsilon).
+    p / (epsilon p_0) for the continuum paths (e = q p / epsilon).
 
     Parameters
     ----------
     pressure_hpa : array_like
         Level pressures p [hPa], shape (L,).
-    n_paths : {2, 5}
-        2: [line, continuum]; 5: [line, continuum, dry, line, continuum] (the last three
-        with the temperature laws; see :func:`kernel_path_inputs`).
+    names : sequence of str
+        Path names (:data:`KERNEL_PATHS`, :func:`kernel_path_names`).
 
     Returns
     -------
@@ -363,28 +387,28 @@ def kernel_path_scales(pressure_hpa, n_paths: int = 2) -> np.ndarray:
         Shape (P, L).
     """
     ratio = np.asarray(pressure_hpa, dtype=float) / KERNEL_REFERENCE_PRESSURE_HPA
-    rows = [ratio, ratio / EPSILON] + ([ratio, ratio, ratio / EPSILON] if n_paths == 5 else [])
-    return np.stack(rows)
+    return np.stack([ratio if KERNEL_PATHS[n][2] == "line" else ratio / EPSILON for n in names])
 
 
-#: Humidity power a of each kernel path (q^a): line 1, continuum 2, dry 0.
-KERNEL_PATH_POWERS = (1, 2, 0, 1, 2)
+def kernel_path_powers(names) -> np.ndarray:
+    """Humidity power a of each path [P] (q^a: 0 dry, 1 line, 2 continuum) [1]."""
+    return np.array([KERNEL_PATHS[n][0] for n in names], dtype=float)
 
 
 def kernel_temperature_exponents(config: "FeatureConfig") -> np.ndarray:
-    """n of each kernel path [P] [1]: 0 for the bank's paths, the instrument's laws for the rest."""
-    if not config.kernel_temperature_laws:
-        return np.zeros(2)
-    return np.array([0.0, 0.0, *config.kernel_temperature_laws[1:]])
+    """n of each kernel path [P] [1]: 0 for the paths without a law, the instrument's laws for the rest."""
+    laws = config.kernel_temperature_laws
+    return np.array([0.0 if KERNEL_PATHS[n][1] is None else laws[KERNEL_PATHS[n][1]] for n in _path_names(config)])
 
 
 def kernel_path_inputs(air_temperature, specific_humidity, config: "FeatureConfig", pressure_hpa) -> np.ndarray:
     """v [N, P, L]: the level values of the kernel paths, P_p = v_p M (M of :func:`water_path_matrix`).
 
-    v_p = q^a_p (T_ref / T)^n_p c_p(p), with a_p = :data:`KERNEL_PATH_POWERS`, n_p from
-    :func:`kernel_temperature_exponents` and c_p from :func:`kernel_path_scales`: without
-    temperature laws [q p/p_0, q^2 p/(epsilon p_0)]; with them three more paths, the dry-air
-    path (T_ref/T)^n_dry p/p_0 and the line and continuum paths in (T_ref/T)^n.
+    v_p = q^a_p (T_ref / T)^n_p c_p(p), with a_p from :func:`kernel_path_powers`, n_p from
+    :func:`kernel_temperature_exponents` and c_p from :func:`kernel_path_scales`, for the
+    paths of :func:`kernel_path_names`: without temperature laws [q p/p_0, q^2 p/(epsilon
+    p_0)]; with them the dry-air path (T_ref/T)^n_dry p/p_0 and the line and continuum paths
+    in (T_ref/T)^n (after the first two only when the recipe also has a fixed bank).
 
     Parameters
     ----------
@@ -402,9 +426,9 @@ def kernel_path_inputs(air_temperature, specific_humidity, config: "FeatureConfi
         v [kg kg-1, (kg kg-1)^2 or 1], shape (N, P, L).
     """
     q = np.asarray(specific_humidity, dtype=float)
-    n_paths = config.n_kernel_paths
-    powers = np.stack([q ** a for a in KERNEL_PATH_POWERS[:n_paths]], axis=1)  # [N, P, L]
-    v = powers * kernel_path_scales(pressure_hpa, n_paths)[None]
+    names = _path_names(config)
+    powers = np.stack([q ** a for a in kernel_path_powers(names).astype(int)], axis=1)  # [N, P, L]
+    v = powers * kernel_path_scales(pressure_hpa, names)[None]
     if config.kernel_temperature_laws:
         t_ref = config.kernel_temperature_laws[0]
         n = kernel_temperature_exponents(config)
@@ -483,12 +507,12 @@ def _band_terms(config: FeatureConfig) -> list:
 
 def kernel_coefficient_matrix(config: FeatureConfig) -> np.ndarray:
     """kappa [K_t, P]: each kernel term's coefficients on the kernel paths (see
-    :func:`kernel_path_inputs`).
+    :func:`kernel_path_names`, :func:`kernel_path_inputs`).
 
     Kernel terms in order: line kernels, continuum kernels (one path each), then the
     sub-bands of the channel kernels: on the line and continuum paths plus a constant
     dry-air depth (:func:`kernel_dry_depth`), or, with the temperature laws, on the dry,
-    line and continuum paths in (T_ref / T)^n (columns 2-4). The optical depth of term k
+    line and continuum paths in (T_ref / T)^n. The optical depth of term k
     is (kappa @ P)_k (+ the dry depth).
 
     Parameters
@@ -500,15 +524,20 @@ def kernel_coefficient_matrix(config: FeatureConfig) -> np.ndarray:
     numpy.ndarray
         [m2 kg-1], shape (K_t, P).
     """
-    kappa = np.zeros((config.n_kernel_terms, config.n_kernel_paths))
+    names = _path_names(config)
+    kappa = np.zeros((config.n_kernel_terms, len(names)))
     n_line, n_cont = len(config.line_kernels), len(config.continuum_kernels)
-    kappa[:n_line, 0] = config.line_kernels
-    kappa[n_line:n_line + n_cont, 1] = config.continuum_kernels
+    if n_line:
+        kappa[:n_line, names.index("line")] = config.line_kernels
+    if n_cont:
+        kappa[n_line:n_line + n_cont, names.index("continuum")] = config.continuum_kernels
     bands = _band_terms(config)
-    if bands and config.kernel_temperature_laws:
-        kappa[n_line + n_cont:, 2:5] = np.array(bands)[:, 1:4]
-    elif bands:
-        kappa[n_line + n_cont:, :2] = np.array(bands)[:, 2:4]
+    if bands:
+        cols = (["dry_law", "line_law", "continuum_law"] if config.kernel_temperature_laws
+                else [None, "line", "continuum"])
+        for j, name in enumerate(cols):  # band coefficients (dry, line, continuum)
+            if name is not None:
+                kappa[n_line + n_cont:, names.index(name)] = np.array(bands)[:, 1 + j]
     return kappa
 
 

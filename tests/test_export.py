@@ -53,16 +53,22 @@ def data_path(tmp_path_factory):
     return sample_to_netcdf("demo-sounder", root / "train.nc", count=1200, seed=21, progress=False)
 
 
-@pytest.fixture(scope="module", params=["temperature_laws", "constant_opacity"])
+@pytest.fixture(scope="module", params=["temperature_laws", "constant_opacity", "laws_without_bank"])
 def trained(request, data_path, tmp_path_factory):
     """A tiny emulator (4 channels, one with narrower layers) and its bundle; channel kernels
-    with the instrument's temperature laws (bundle format 5) or without (format 4)."""
+    with the instrument's temperature laws (bundle format 5; five kernel paths beside the
+    fixed bank, three without it) or without (format 4)."""
     root = tmp_path_factory.mktemp("export")
     data = load_training_data(data_path)
+    laws = request.param != "constant_opacity"
     text = TINY.replace('instrument_kernels = "bands"', 'instrument_kernels = "bands"\nkernel_temperature_laws = '
-                        + ("true" if request.param == "temperature_laws" else "false"))
+                        + ("true" if laws else "false"))
+    if request.param == "laws_without_bank":
+        text = text.replace("line_kernels = [0.03, 1.0, 30.0]\ncontinuum_kernels = [1.0, 100.0]\n", "")
     emu = fit_emulator(data, Recipe.from_toml(text, "tiny"), channels=CHANNELS, workers=1, progress=False)
-    assert bool(emu.config.kernel_temperature_laws) == (request.param == "temperature_laws")
+    assert bool(emu.config.kernel_temperature_laws) == laws
+    assert emu.config.n_kernel_paths == {"temperature_laws": 5, "constant_opacity": 2, "laws_without_bank": 3}[
+        request.param]
     blob, layout = build_bundle_model(emu)
     path = root / "tiny.onnx"
     path.write_bytes(blob)
@@ -134,9 +140,12 @@ def test_channel_without_kernels_has_zero_kernel_weights(trained):
     b = read_bundle(trained["path"])
     arrays, emu = b.arrays(), trained["emu"]
     cols = kernel_columns(emu.config, emu.pressure_hpa.size)
-    # 5 bank kernels and one per channel of the data's instrument, each [f, t_s, r]
+    # 5 bank kernels (none in one variant) and one per channel of the data's instrument,
+    # each [f, t_s, r]
+    n_bank = len(emu.config.line_kernels) + len(emu.config.continuum_kernels)
+    assert n_bank in (0, 5)
     assert len(emu.config.channel_kernels) == len(emu.instrument.channel_ids)
-    assert cols.size == 3 * (5 + len(emu.instrument.channel_ids))
+    assert cols.size == 3 * (n_bank + len(emu.instrument.channel_ids))
     i = list(b.channel_ids).index("mw-t3")
     for name in ("layer1_weight", "linear_weight", "linear_emissivity_weight", "linear_zenith_weight"):
         a = arrays[name]

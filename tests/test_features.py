@@ -16,6 +16,7 @@ import scipy.constants
 from rtemu.atmosphere import default_pressure_grid
 from rtemu.features import (
     KERNEL_REFERENCE_PRESSURE_HPA,
+    kernel_coefficient_matrix,
     FeatureConfig,
     kernel_path_matrices,
     kernel_temperature_matrix,
@@ -241,7 +242,13 @@ def test_temperature_laws_carry_the_opacity_part_of_the_temperature_jacobian():
     with_laws = FeatureConfig(channel_kernels=kernels, reflection_kernels=True,
                               kernel_temperature_laws=temperature_laws_of(inst))
     without = FeatureConfig(channel_kernels=kernels, reflection_kernels=True)
-    assert with_laws.n_kernel_paths == 5 and without.n_kernel_paths == 2
+    # channel kernels only: the three law paths replace the two plain ones
+    assert with_laws.n_kernel_paths == 3 and without.n_kernel_paths == 2
+    both = FeatureConfig(line_kernels=(0.5,), channel_kernels=kernels,
+                         kernel_temperature_laws=temperature_laws_of(inst))
+    assert both.n_kernel_paths == 5
+    kappa = kernel_coefficient_matrix(both)  # bank row on "line", the band rows on the law paths
+    assert np.all(kappa[0] == [0.5, 0, 0, 0, 0]) and np.all(kappa[1:, :2] == 0)
     err_with, err_without = relative_jacobian_error(with_laws), relative_jacobian_error(without)
     assert err_with < 0.02 and err_without > 5 * err_with, (err_with, err_without)
     bt = phys["brightness_temperature"][:, c]
