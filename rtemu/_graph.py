@@ -17,9 +17,10 @@ Function evaluated (per profile n, channel c; all linear maps folded at export):
     t_k    = exp(-sec(theta) kappa_k . P)                 gray opacity kernels (optional,
                                                           [K, L]): paths P_p = v_p M with
                                                           v = [q, q q] c(p) (line,
-                                                          continuum), or with temperature
-                                                          laws also [1, q, q q] (T_ref/T)^n
-                                                          c(p) (dry, line, continuum)
+                                                          continuum), with temperature
+                                                          laws [1, q, q q] (T_ref/T)^n c(p)
+                                                          (dry, line, continuum; the plain
+                                                          two beside a fixed bank only)
     f_k    = t_k G . T + Ts t_k,s ;  g_k = t_k,s          kernel temperature and surface
                                                           transmittance (G [L, L]: layer
                                                           means and transmittance steps)
