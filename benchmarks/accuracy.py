@@ -35,6 +35,9 @@ from rtemu import flags, physics  # noqa: E402
 from rtemu.atmosphere import saturation_specific_humidity  # noqa: E402
 from rtemu.bundle import make_session, read_bundle  # noqa: E402
 from rtemu.export import train_to_onnx  # noqa: E402
+from rtemu import sampling  # noqa: E402
+from rtemu.atmosphere import total_column_water_vapour  # noqa: E402
+from rtemu.instrument import Instrument  # noqa: E402
 from rtemu.sampling import sample_to_netcdf  # noqa: E402
 from rtemu.training import load_recipe  # noqa: E402
 
@@ -106,6 +109,53 @@ def accuracy(bundle_path: Path, test: xr.Dataset) -> dict:
     return {"rows": rows, "ok": ok, "flags": out["quality_flag"], "feeds": feeds, "bundle": b}
 
 
+def warmed_against_generator(test: xr.Dataset, grid: np.ndarray, shift: float = 30.0) -> dict | None:
+    """Where a uniform warming of ``shift`` K puts each test profile against the generator's ranges.
+
+    The test file records its seed, count and generator version, so the construction
+    parameters are drawn again (and checked: the air temperature must come out the same).
+    A uniform shift moves three of them by ``shift``: surface air temperature, tropopause
+    temperature and stratopause temperature; it also lowers the implied tropospheric lapse
+    rate and raises the saturated column (so a dry column may fall below the generator's
+    lowest column fraction). Returns ``excess`` [K] (largest excess of the three moved
+    temperatures over their nominal maxima; <= 0 inside) and ``inside`` (every one of the
+    checks within its nominal range), or None when the file cannot be reproduced.
+    """
+    attrs = test.attrs
+    if attrs.get("rtemu_generator_version") != sampling.GENERATOR_VERSION or "rtemu_seed" not in attrs:
+        return None
+    instrument = Instrument.from_toml(attrs["rtemu_instrument_toml"])
+    profiles = test["profile"].values
+    if not np.array_equal(profiles, np.arange(profiles[0], profiles[0] + profiles.size)):
+        return None
+    p = test["air_pressure"].values
+    states = sampling.draw_states(profiles.size, seed=int(attrs["rtemu_seed"]), pressure_hpa=p,
+                                  start=int(profiles[0]), channels=instrument)
+    if not np.array_equal(states["air_temperature"].values, test["air_temperature"].values):
+        return None
+    order = slice(None, None, -1) if p[0] < p[-1] else slice(None)
+    T = test["air_temperature"].values[:, order]  # surface first, as grid
+    ranges = sampling.envelope_description()["ranges"]
+    t0 = T[:, 0] + shift
+    t_trop = states["tropopause_temperature"].values + shift
+    t_strat = states["stratopause_temperature"].values + shift
+    excess = np.maximum.reduce([t0 - ranges["surface_air_temperature"]["max"],
+                                t_trop - ranges["tropopause_temperature"]["max"],
+                                t_strat - ranges["stratopause_temperature"]["max"]])
+    # lapse rate from the construction: T = T0' (p/ps)^kappa, T0' = T0 + inversion, to p_t
+    t_free0 = t0 + states["inversion_strength"].values
+    kappa = np.log(t_free0 / t_trop) / np.log(grid[0] / states["tropopause_pressure"].values)
+    lapse = kappa / sampling._KAPPA_PER_LAPSE * 1e3  # [K km-1]
+    # saturated column approximated by the column of q_sat (capped as the generator does)
+    w_sat = total_column_water_vapour(grid, np.minimum(saturation_specific_humidity(T + shift, grid[None, :]),
+                                                       sampling._Q_MAX))
+    w = test["total_column_water_vapour"].values
+    inside = ((excess <= 0.0) & (lapse >= ranges["tropospheric_lapse_rate"]["min"])
+              & (lapse <= ranges["tropospheric_lapse_rate"]["max"])
+              & (w >= np.maximum(ranges["total_column_water_vapour"]["min"], sampling._COLUMN_FRACTION_LOW * w_sat)))
+    return {"excess": excess, "inside": inside}
+
+
 def flag_rates(bundle_path: Path, test: xr.Dataset, result: dict) -> None:
     ok = result["ok"]
     inside = (result["flags"][ok] != 0).any(axis=1)
@@ -137,6 +187,7 @@ def flag_rates(bundle_path: Path, test: xr.Dataset, result: dict) -> None:
     # Is the flag right where it stays silent? The emulator's error on the moved profiles it
     # does not flag, against the physics, beside its error on the unmoved test set.
     session = make_session(bundle_path, outputs=["brightness_temperature", "quality_flag"])
+    split = warmed_against_generator(test, grid)
     base_rmse = max(r["rmse"] for r in result["rows"].values())
     print(f"  (worst-channel RMSE on the unmoved test set: {base_rmse:.4f} K)")
     for label, moved in moves.items():
@@ -144,6 +195,15 @@ def flag_rates(bundle_path: Path, test: xr.Dataset, result: dict) -> None:
         out = run(session, sub)
         hit = (out["quality_flag"] != 0).any(axis=1)
         print(f"  moved outside, {label}: flagged {100 * hit.mean():.2f} %")
+        if label.startswith("30 K warmer throughout") and split is not None:
+            inside, excess = split["inside"][ok], split["excess"][ok]
+            print(f"    against the generator's nominal ranges: {100 * inside.mean():.2f} % of the moved profiles "
+                  f"stay inside every one (flagged {100 * hit[inside].mean():.2f} %), {100 * (~inside).mean():.2f} % "
+                  f"leave one (flagged {100 * hit[~inside].mean():.2f} %)")
+            for margin in (5.0, 10.0):
+                far = excess > margin
+                print(f"    surface, tropopause or stratopause temperature more than {margin:.0f} K above its "
+                      f"range: {100 * far.mean():.2f} % of the moved profiles, flagged {100 * hit[far].mean():.2f} %")
         if hit.all():
             continue
         quiet = ~hit
