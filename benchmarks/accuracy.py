@@ -36,7 +36,7 @@ from rtemu.atmosphere import saturation_specific_humidity  # noqa: E402
 from rtemu.bundle import make_session, read_bundle  # noqa: E402
 from rtemu.export import train_to_onnx  # noqa: E402
 from rtemu import sampling  # noqa: E402
-from rtemu.atmosphere import total_column_water_vapour  # noqa: E402
+from rtemu.atmosphere import relative_humidity, total_column_water_vapour  # noqa: E402
 from rtemu.instrument import Instrument  # noqa: E402
 from rtemu.sampling import sample_to_netcdf  # noqa: E402
 from rtemu.training import load_recipe  # noqa: E402
@@ -116,8 +116,9 @@ def warmed_against_generator(test: xr.Dataset, grid: np.ndarray, shift: float = 
     parameters are drawn again (and checked: the air temperature must come out the same).
     A uniform shift moves three of them by ``shift``: surface air temperature, tropopause
     temperature and stratopause temperature; it also lowers the implied tropospheric lapse
-    rate and raises the saturated column (so a dry column may fall below the generator's
-    lowest column fraction). Returns ``excess`` [K] (largest excess of the three moved
+    rate, raises the saturated column (so a dry column may fall below the generator's
+    lowest column fraction) and steepens the fall of relative humidity with height (the
+    drawn decay of logit(RH) grows). Returns ``excess`` [K] (largest excess of the three moved
     temperatures over their nominal maxima; <= 0 inside) and ``inside`` (every one of the
     checks within its nominal range), or None when the file cannot be reproduced.
     """
@@ -157,8 +158,27 @@ def warmed_against_generator(test: xr.Dataset, grid: np.ndarray, shift: float = 
                                                            sampling._Q_MAX))
         return w < np.maximum(ranges["total_column_water_vapour"]["min"], sampling._COLUMN_FRACTION_LOW * w_sat)
 
+    # Warming at fixed q lowers RH more in the cold upper troposphere, so logit(RH) falls
+    # faster with the construction's height fraction s: the decay a grows by the slope of
+    # the change against s (fitted where the stratospheric blend has no weight). Approximate:
+    # the perturbations, the RH cap and the floor are not inverted.
+    decay = states["relative_humidity_decay"].values.copy()
+    p_trop = states["tropopause_pressure"].values
+    s_frac = (grid[0] - grid[None, :]) / (grid[0] - p_trop[:, None])
+    use = (np.log(grid[None, :] / p_trop[:, None]) > 0.3) & (s_frac <= 1.0)
+    q = test["specific_humidity"].values[:, order]
+
+    def logit_rh(temperature):
+        rh = np.clip(relative_humidity(q, temperature, grid[None, :]), 1e-12, 1.0 - 1e-9)
+        return np.log(rh / (1.0 - rh))
+
+    change = logit_rh(T + shift) - logit_rh(T)
+    for i in range(len(decay)):
+        decay[i] -= np.polyfit(s_frac[i, use[i]], change[i, use[i]], 1)[0]
     inside = ((excess <= 0.0) & (lapse >= ranges["tropospheric_lapse_rate"]["min"])
-              & (lapse <= ranges["tropospheric_lapse_rate"]["max"]) & ~(too_dry(T + shift) & ~too_dry(T)))
+              & (lapse <= ranges["tropospheric_lapse_rate"]["max"]) & ~(too_dry(T + shift) & ~too_dry(T))
+              & (decay >= ranges["relative_humidity_decay"]["min"])
+              & (decay <= ranges["relative_humidity_decay"]["max"]))
     return {"excess": excess, "inside": inside}
 
 

@@ -446,6 +446,7 @@ def _draw_block(seed: int, block: int, p: np.ndarray, kinds: tuple[bool, ...]) -
         "surface_emissivity": emissivity,
         "sensor_zenith_angle": _scale(u["sensor_zenith_angle"], "sensor_zenith_angle"),
         "total_column_water_vapour": atm.total_column_water_vapour(p, q),
+        "relative_humidity_decay": decay,
         **params,
     }
 
@@ -483,6 +484,8 @@ _PARAMETER_ATTRS = {
     "inversion_strength": {"long_name": "surface inversion strength drawn by the generator", "units": "K"},
     "inversion_depth": {"long_name": "surface inversion depth drawn by the generator", "units": "hPa"},
     "stratopause_temperature": {"long_name": "stratopause temperature drawn by the generator", "units": "K"},
+    "relative_humidity_decay": {"long_name": "decrease of logit(relative humidity) from the surface to the "
+                                "tropopause drawn by the generator", "units": "1"},
 }
 #: Variables written to the training file, in file order.
 STATE_VARIABLES = ("air_temperature", "specific_humidity", "surface_temperature",
@@ -550,7 +553,8 @@ def draw_states(count: int, *, seed: int, pressure_hpa=None, start: int = 0, cha
         ``total_column_water_vapour`` (profile) [kg m-2] and the drawn construction
         parameters ``tropopause_pressure`` [hPa], ``tropopause_temperature`` [K],
         ``tropospheric_lapse_rate`` [K km-1], ``inversion_strength`` [K],
-        ``inversion_depth`` [hPa], ``stratopause_temperature`` [K] (profile).
+        ``inversion_depth`` [hPa], ``stratopause_temperature`` [K],
+        ``relative_humidity_decay`` [1] (profile).
         Coordinates ``profile`` (global indices) and, for an instrument, ``channel``
         (ids). Attributes ``rtemu_envelope`` and ``rtemu_covered_envelope`` (JSON).
     """
