@@ -36,7 +36,6 @@ from rtemu.features import (
     kernel_combination_matrix,
     kernel_dry_depth,
     kernel_temperature_exponents,
-    kernel_path_names,
     kernel_path_scales,
     kernel_temperature_matrix,
     surface_level,
@@ -225,8 +224,7 @@ def _kernel_arrays(config: FeatureConfig, pressure_hpa) -> dict:
     pick[surface_level(p), 0] = 1.0
     arrays = {
         "kernel_path_matrix": water_path_matrix(p),
-        "kernel_path_scale": kernel_path_scales(p, kernel_path_names(
-            bool(config.line_kernels or config.continuum_kernels), bool(config.kernel_temperature_laws))),
+        "kernel_path_scale": kernel_path_scales(p, config.kernel_paths),
         "kernel_coefficients": kernel_coefficient_matrix(config),
         "kernel_temperature_matrix": kernel_temperature_matrix(p),
         "kernel_surface_pick": pick,

@@ -228,14 +228,24 @@ class FeatureConfig:
         return len(self.line_kernels) + len(self.continuum_kernels) + self.n_band_kernels
 
     @property
+    def kernel_paths(self) -> tuple[str, ...]:
+        """Names of the kernel paths this configuration computes (:func:`kernel_path_names`)."""
+        return kernel_path_names(bool(self.line_kernels or self.continuum_kernels), bool(self.kernel_temperature_laws))
+
+    @property
     def n_kernel_paths(self) -> int:
         """Kernel paths P (see :func:`kernel_path_names`) [1]."""
-        return len(_path_names(self))
+        return len(self.kernel_paths)
+
+    @property
+    def n_kernel_scalars(self) -> int:
+        """Kernel scalars per kernel: 2 ([f, t_s]) or 3 with ``reflection_kernels`` [1]."""
+        return 3 if self.reflection_kernels else 2
 
     @property
     def n_kernel_features(self) -> int:
         """Kernel scalars in x: 2 K ([f, t_s]) or 3 K with ``reflection_kernels`` [1]."""
-        return (3 if self.reflection_kernels else 2) * self.n_kernels
+        return self.n_kernel_scalars * self.n_kernels
 
     def n_features(self, n_levels: int) -> int:
         """F = (number of profile blocks) L + (kernel scalars) + 2 [1]."""
@@ -365,11 +375,6 @@ def kernel_path_names(has_bank: bool, temperature_laws: bool) -> tuple[str, ...]
     return names + (("dry_law", "line_law", "continuum_law") if temperature_laws else ())
 
 
-def _path_names(config: "FeatureConfig") -> tuple[str, ...]:
-    has_bank = bool(config.line_kernels or config.continuum_kernels)
-    return kernel_path_names(has_bank, bool(config.kernel_temperature_laws))
-
-
 def kernel_path_scales(pressure_hpa, names=("line", "continuum")) -> np.ndarray:
     """Level factors of the kernel paths [P, L] [1]: p / p_0 for the line and dry paths,
     p / (epsilon p_0) for the continuum paths (e = q p / epsilon).
@@ -398,7 +403,7 @@ def kernel_path_powers(names) -> np.ndarray:
 def kernel_temperature_exponents(config: "FeatureConfig") -> np.ndarray:
     """n of each kernel path [P] [1]: 0 for the paths without a law, the instrument's laws for the rest."""
     laws = config.kernel_temperature_laws
-    return np.array([0.0 if KERNEL_PATHS[n][1] is None else laws[KERNEL_PATHS[n][1]] for n in _path_names(config)])
+    return np.array([0.0 if KERNEL_PATHS[n][1] is None else laws[KERNEL_PATHS[n][1]] for n in config.kernel_paths])
 
 
 def kernel_path_inputs(air_temperature, specific_humidity, config: "FeatureConfig", pressure_hpa) -> np.ndarray:
@@ -426,7 +431,7 @@ def kernel_path_inputs(air_temperature, specific_humidity, config: "FeatureConfi
         v [kg kg-1, (kg kg-1)^2 or 1], shape (N, P, L).
     """
     q = np.asarray(specific_humidity, dtype=float)
-    names = _path_names(config)
+    names = config.kernel_paths
     powers = np.stack([q ** a for a in kernel_path_powers(names).astype(int)], axis=1)  # [N, P, L]
     v = powers * kernel_path_scales(pressure_hpa, names)[None]
     if config.kernel_temperature_laws:
@@ -524,7 +529,7 @@ def kernel_coefficient_matrix(config: FeatureConfig) -> np.ndarray:
     numpy.ndarray
         [m2 kg-1], shape (K_t, P).
     """
-    names = _path_names(config)
+    names = config.kernel_paths
     kappa = np.zeros((config.n_kernel_terms, len(names)))
     n_line, n_cont = len(config.line_kernels), len(config.continuum_kernels)
     if n_line:

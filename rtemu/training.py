@@ -1072,8 +1072,7 @@ def _own_kernel_columns(config: FeatureConfig, n_levels: int, width: int, net: d
                          "kernel of its own (rule: it needs [features] instrument_kernels = \"bands\" or "
                          "\"channels\" and opacity_kernels = true)")
     first = kernel_columns(config, n_levels)[0]
-    groups = 3 if config.reflection_kernels else 2
-    own = [first + g * config.n_kernels + n_bank + column for g in range(groups)]
+    own = [first + g * config.n_kernels + n_bank + column for g in range(config.n_kernel_scalars)]
     return np.array(own + [width - 2, width - 1])
 
 
