@@ -413,11 +413,9 @@ def _kernel_forward(b: _Builder, layout: GraphLayout, sec: str, Ts1: str) -> dic
     out = {}
     if layout.kernel_temperature_laws:
         # v = q^a (T_ref / T)^n c(p) per path [N, P, L]
-        first, second = _path_power_rows(b, layout)
+        zeroth, first, second = _path_power_rows(b, layout, (0, 1, 2))
         q3, qq3 = b.op("Unsqueeze", q, ax1), b.op("Unsqueeze", b.op("Mul", q, q), ax1)
-        a = kernel_path_powers(layout.kernel_paths)[:, None]
-        powers = b.op("Add", b.op("Add", b.op("Mul", q3, first), b.op("Mul", qq3, second)),
-                      b.const("path_power_0", (a == 0).astype(float)))
+        powers = b.op("Add", b.op("Add", b.op("Mul", q3, first), b.op("Mul", qq3, second)), zeroth)
         log_ratio = b.op("Unsqueeze", b.op("Sub", b.op("Log", "kernel_reference_temperature"), b.op("Log", T)), ax1)
         law_scale = b.op("Mul", b.op("Exp", b.op("Mul", log_ratio, "kernel_temperature_exponent")),
                          "kernel_path_scale")  # (T_ref / T)^n c(p) [N, P, L]
@@ -514,13 +512,16 @@ def _kernel_humidity_terms(b: _Builder, layout: GraphLayout, kern: dict, d_f: st
     return [d_q], d_t
 
 
-def _path_power_rows(b: _Builder, layout: GraphLayout) -> tuple[str, str]:
-    """Constants [P, 1] picking the paths in q (a = 1) and in q^2 (a = 2), made once."""
-    if "first_path" not in b.initializers:
-        a = kernel_path_powers(layout.kernel_paths)[:, None]
-        b.const("first_path", (a == 1).astype(float))
-        b.const("second_path", (a == 2).astype(float))
-    return "first_path", "second_path"
+def _path_power_rows(b: _Builder, layout: GraphLayout, powers=(1, 2)) -> list[str]:
+    """Constants [P, 1] picking the paths in q^a for each a of ``powers`` (0 dry, 1 line,
+    2 continuum), each made once."""
+    names = []
+    for power in powers:
+        name = ("path_power_0", "first_path", "second_path")[power]
+        if name not in b.initializers:
+            b.const(name, (kernel_path_powers(layout.kernel_paths)[:, None] == power).astype(float))
+        names.append(name)
+    return names
 
 
 def _flags(b: _Builder, layout: GraphLayout, X: str, z1: str, Ts1: str, cols, ln_q=None) -> None:
