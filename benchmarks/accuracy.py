@@ -42,10 +42,15 @@ from rtemu.sampling import sample_to_netcdf  # noqa: E402
 from rtemu.training import load_recipe  # noqa: E402
 
 
+def surface_first(p) -> slice:
+    """Level slice that puts a file's profiles surface first (the bundle's order)."""
+    return slice(None, None, -1) if p[0] < p[-1] else slice(None)
+
+
 def feeds_from(ds: xr.Dataset, channel_ids, rows=slice(None)) -> dict:
     """Bundle inputs (float32, surface-first) from a sampler file."""
     p = ds["air_pressure"].values
-    order = slice(None, None, -1) if p[0] < p[-1] else slice(None)
+    order = surface_first(p)
     return {
         "air_temperature": ds["air_temperature"].values[rows][:, order].astype(np.float32),
         "specific_humidity": ds["specific_humidity"].values[rows][:, order].astype(np.float32),
@@ -80,7 +85,7 @@ def accuracy(bundle_path: Path, test: xr.Dataset) -> dict:
     rows = {}
     has_jac = "jacobian_air_temperature" in test
     p = test["air_pressure"].values
-    order = slice(None, None, -1) if p[0] < p[-1] else slice(None)
+    order = surface_first(p)
     for i, cid in enumerate(ids):
         e = err[ok, i]
         a = np.abs(e)
@@ -134,7 +139,7 @@ def warmed_against_generator(test: xr.Dataset, grid: np.ndarray, shift: float = 
                                   start=int(profiles[0]), channels=instrument)
     if not np.array_equal(states["air_temperature"].values, test["air_temperature"].values):
         return None
-    order = slice(None, None, -1) if p[0] < p[-1] else slice(None)
+    order = surface_first(p)
     T = test["air_temperature"].values[:, order]  # surface first, as grid
     ranges = sampling.envelope_description()["ranges"]
     t0 = T[:, 0] + shift
@@ -286,7 +291,7 @@ def speed(bundle_path: Path, test: xr.Dataset) -> None:
                 print(f"    BT graph {2 * macs * 10000 / 1e9:.2f} GFLOP (matmul work) -> {2 * macs * 10000 / dt / 1e9:.1f} "
                       f"GFLOP/s vs numpy float32 matmul {rate / 1e9:.1f} GFLOP/s ({100 * 2 * macs * 10000 / dt / rate:.0f} %)")
     p = test["air_pressure"].values
-    order = slice(None, None, -1) if p[0] < p[-1] else slice(None)
+    order = surface_first(p)
     t = time.perf_counter()
     physics.transfer(b.instrument, p[order], big["air_temperature"].astype(float),
                      big["specific_humidity"].astype(float), big["surface_temperature"].astype(float),
