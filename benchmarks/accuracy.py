@@ -124,7 +124,8 @@ def warmed_against_generator(test: xr.Dataset, grid: np.ndarray, shift: float = 
     rate, raises the saturated column (so a dry column may fall below the generator's
     lowest column fraction) and steepens the fall of relative humidity with height (the
     drawn decay of logit(RH) grows). Returns ``excess`` [K] (largest excess of the three moved
-    temperatures over their nominal maxima; <= 0 inside) and ``inside`` (every one of the
+    temperatures over their nominal maxima, the tropopause's the top of its band at the
+    profile's tropopause pressure; <= 0 inside) and ``inside`` (every one of the
     checks within its nominal range), or None when the file cannot be reproduced.
     """
     attrs = test.attrs
@@ -144,13 +145,14 @@ def warmed_against_generator(test: xr.Dataset, grid: np.ndarray, shift: float = 
     ranges = sampling.envelope_description()["ranges"]
     t0 = T[:, 0] + shift
     t_trop = states["tropopause_temperature"].values + shift
+    p_trop = states["tropopause_pressure"].values
     t_strat = states["stratopause_temperature"].values + shift
     excess = np.maximum.reduce([t0 - ranges["surface_air_temperature"]["max"],
-                                t_trop - ranges["tropopause_temperature"]["max"],
+                                t_trop - sampling.tropopause_temperature_band(p_trop)[1],
                                 t_strat - ranges["stratopause_temperature"]["max"]])
     # lapse rate from the construction: T = T0' (p/ps)^kappa, T0' = T0 + inversion, to p_t
     t_free0 = t0 + states["inversion_strength"].values
-    kappa = np.log(t_free0 / t_trop) / np.log(grid[0] / states["tropopause_pressure"].values)
+    kappa = np.log(t_free0 / t_trop) / np.log(grid[0] / p_trop)
     lapse = kappa / sampling._KAPPA_PER_LAPSE * 1e3  # [K km-1]
     # The lowest column the generator draws, max(0.1, 0.003 W_sat), with W_sat approximated
     # by the column of q_sat (capped as the generator does). The approximation misjudges a
@@ -168,7 +170,6 @@ def warmed_against_generator(test: xr.Dataset, grid: np.ndarray, shift: float = 
     # the change against s (fitted where the stratospheric blend has no weight). Approximate:
     # the perturbations, the RH cap and the floor are not inverted.
     decay = states["relative_humidity_decay"].values.copy()
-    p_trop = states["tropopause_pressure"].values
     s_frac = (grid[0] - grid[None, :]) / (grid[0] - p_trop[:, None])
     use = (np.log(grid[None, :] / p_trop[:, None]) > 0.3) & (s_frac <= 1.0)
     q = test["specific_humidity"].values[:, order]

@@ -48,6 +48,7 @@ __all__ = [
     "BLOCK_SIZE",
     "GENERATOR_VERSION",
     "draw_states",
+    "tropopause_temperature_band",
     "envelope_description",
     "covered_envelope",
     "sample_to_netcdf",
@@ -55,7 +56,7 @@ __all__ = [
 ]
 
 #: Version of the state construction; changes whenever the same seed would give other numbers.
-GENERATOR_VERSION = "3"
+GENERATOR_VERSION = "4"
 #: Profiles per deterministic block (see the module docstring).
 BLOCK_SIZE = 1024
 #: Largest profile index + 1 (scipy's Sobol' sequences hold 2**30 points).
@@ -80,7 +81,11 @@ _RANGES = {
     "surface_emissivity_infrared": (0.90, 1.0, "1", "per-profile value + N(0, 0.005) per channel, clipped"),
     "sensor_zenith_angle": (0.0, 65.0, "degree", "uniform in angle"),
     "tropopause_pressure": (80.0, 300.0, "hPa", "log-uniform"),
-    "tropopause_temperature": (180.0, 240.0, "K", "further limited by the lapse-rate range"),
+    "tropopause_temperature": (180.0, 240.0, "K", "further limited by the lapse-rate range and the "
+                               "tropopause_temperature_offset band"),
+    "tropopause_temperature_offset": (-8.0, 8.0, "K", "tropopause temperature minus the line "
+                                      "216.65 K + 29 K * ln(p_t / 226.32 hPa); where the lapse-rate range "
+                                      "does not reach the band, the lapse-rate limit nearest it"),
     "tropospheric_lapse_rate": (2.0, 9.5, "K km-1", "constant lapse rate of the free troposphere"),
     "inversion_strength": (-2.0, 15.0, "K", "free-troposphere temperature extrapolated to the "
                            "surface minus surface air temperature (negative: superadiabatic layer)"),
@@ -103,6 +108,13 @@ _HUMIDITY_NOISE = {"logit_std": 0.7, "correlation_length_ln_p": 0.25}
 _STRATOSPHERIC_HUMIDITY_NOISE = {"ln_q_std": 0.15, "correlation_length_ln_p": 0.5}
 _STRATOSPHERIC_GRADIENT_TOP_HPA = 1.0  # [hPa]: where the drawn gradient is reached
 _EMISSIVITY_CHANNEL_STD = {"microwave": 0.03, "infrared": 0.005}
+# Tropopause temperature follows tropopause pressure: a line in ln p through the US 1976
+# tropopause (U.S. Standard Atmosphere 1976, 11 km': 226.32 hPa, 216.65 K) rising 29 K per e-fold of pressure, which
+# puts a 100 hPa tropopause at 193 K (tropical tropopause about 190-195 K: textbook value,
+# from memory). Generator v3 drew T_t anywhere in 180-240 K whatever p_t: a polar column
+# warmed 30 K throughout was then a state it drew itself, and the emulator's envelope flag
+# could not call it outside (DEVELOPERS.md, "Generator v4").
+_TROPOPAUSE_LINE = {"reference_hpa": 226.32, "reference_k": 216.65, "slope_k_per_ln_p": 29.0}
 _TRANSITION_WIDTH_LN_P = 0.1  # troposphere/stratosphere blend width [ln p]
 _US76_STRATOSPHERE_BASE = (54.7489, 1.10906)  # [hPa]: US 1976 20 km' and 47 km' levels
 _Q_FLOOR = 1e-7  # [kg kg-1]
@@ -151,6 +163,37 @@ def envelope_description() -> dict:
 
 
 # --- input validation -----------------------------------------------------------------------
+def tropopause_temperature_band(tropopause_pressure_hpa):
+    """Range of tropopause temperature the generator draws at a tropopause pressure.
+
+    The line T = 216.65 K + 29 K ln(p_t / 226.32 hPa) through the US 1976 tropopause [1],
+    plus and minus the half-width of ``tropopause_temperature_offset`` (8 K), kept
+    inside the ``tropopause_temperature`` range. The lapse-rate range narrows it further
+    per profile (:func:`draw_states`).
+
+    Parameters
+    ----------
+    tropopause_pressure_hpa : array_like
+        Tropopause pressure p_t [hPa].
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray)
+        Lowest and highest tropopause temperature [K], shape of the input.
+
+    References
+    ----------
+    [1] U.S. Standard Atmosphere, 1976 (NOAA/NASA/USAF): at 11 km' geopotential height,
+        22,632 Pa and 216.65 K.
+    """
+    p_t = np.asarray(tropopause_pressure_hpa, dtype=float)
+    line = _TROPOPAUSE_LINE
+    centre = line["reference_k"] + line["slope_k_per_ln_p"] * np.log(p_t / line["reference_hpa"])
+    off_lo, off_hi = _RANGES["tropopause_temperature_offset"][:2]
+    t_lo, t_hi = _RANGES["tropopause_temperature"][:2]
+    return np.clip(centre + off_lo, t_lo, t_hi), np.clip(centre + off_hi, t_lo, t_hi)
+
+
 def _check_count(count) -> int:
     if isinstance(count, bool) or not isinstance(count, (int, np.integer)):
         raise ValueError(f"count must be an integer >= 1, got {count!r}")
@@ -281,12 +324,17 @@ def _temperature(p, u, rng_noise):
     p_trop = _scale(u["tropopause_pressure"], "tropopause_pressure", log=True)
     t_free0 = t0 + inversion  # free troposphere extrapolated to the bottom level
 
-    # Tropopause temperature, limited so that the implied lapse rate stays in range.
+    # Tropopause temperature, limited so that the implied lapse rate stays in range ...
     gamma_lo, gamma_hi = (g * 1e-3 for g in _RANGES["tropospheric_lapse_rate"][:2])
     tt_lo_abs, tt_hi_abs = _RANGES["tropopause_temperature"][:2]
     log_ratio = np.log(p_trop / ps)
-    tt_lo = np.maximum(tt_lo_abs, t_free0 * np.exp(_KAPPA_PER_LAPSE * gamma_hi * log_ratio))
-    tt_hi = np.minimum(tt_hi_abs, t_free0 * np.exp(_KAPPA_PER_LAPSE * gamma_lo * log_ratio))
+    lapse_lo = np.maximum(tt_lo_abs, t_free0 * np.exp(_KAPPA_PER_LAPSE * gamma_hi * log_ratio))
+    lapse_hi = np.minimum(tt_hi_abs, t_free0 * np.exp(_KAPPA_PER_LAPSE * gamma_lo * log_ratio))
+    # ... and within the band about the tropopause line; where the two do not meet, the
+    # lapse-rate limit nearest the band.
+    band_lo, band_hi = tropopause_temperature_band(p_trop)
+    tt_lo = np.maximum(lapse_lo, np.minimum(band_lo, lapse_hi))
+    tt_hi = np.minimum(lapse_hi, np.maximum(band_hi, lapse_lo))
     t_trop = tt_lo + u["tropopause_temperature"] * (tt_hi - tt_lo)
     kappa = np.log(t_free0 / t_trop) / np.log(ps / p_trop)  # T = T0' (p/ps)^kappa
 
@@ -501,8 +549,10 @@ def draw_states(count: int, *, seed: int, pressure_hpa=None, start: int = 0, cha
 
     1. Free troposphere with constant lapse rate: T = T0' (p/ps)^kappa, T0' = T0 + dI
        (T0 surface air temperature, dI inversion strength), kappa from the drawn
-       tropopause (p_t log-uniform, T_t chosen inside the range the lapse-rate limits
-       allow); lapse rate = kappa g / R_d.
+       tropopause (p_t log-uniform; T_t within 8 K of a line in ln p_t through the US 1976
+       tropopause, :func:`tropopause_temperature_band`, and inside the range the lapse-rate
+       limits allow: where the two do not meet, the limit nearest the band); lapse rate =
+       kappa g / R_d.
     2. Surface layer of drawn depth D: T = T_free - dI * clip((p - (ps - D)) / D, 0, 1),
        so the bottom level holds T0 exactly (inversion for dI > 0).
     3. Stratosphere (p < p_t): T = T_t + (T_sp - T_t) * shape, shape a drawn mix of the
