@@ -229,9 +229,12 @@ def flag_rates(bundle_path: Path, test: xr.Dataset, result: dict) -> None:
         print(f"  moved outside, {label}: flagged {100 * hit.mean():.2f} %")
         if label.startswith("30 K warmer throughout") and split is not None:
             inside, excess = split["inside"][ok], split["excess"][ok]
+            def share(sel):
+                return f"{100 * hit[sel].mean():.2f} %" if sel.any() else "none"
+
             print(f"    against the generator's nominal ranges: {100 * inside.mean():.2f} % of the moved profiles "
-                  f"stay inside every one (flagged {100 * hit[inside].mean():.2f} %), {100 * (~inside).mean():.2f} % "
-                  f"leave one (flagged {100 * hit[~inside].mean():.2f} %)")
+                  f"stay inside every one (flagged {share(inside)}), {100 * (~inside).mean():.2f} % "
+                  f"leave one (flagged {share(~inside)})")
             for margin in (5.0, 10.0):
                 far = excess > margin
                 print(f"    surface, tropopause or stratopause temperature more than {margin:.0f} K above its "

@@ -119,6 +119,7 @@ class GraphLayout:
     n_band_kernels: int = 0
     n_channel_kernels: int = 0
     kernel_temperature_laws: bool = False
+    n_tropopause_layers: int = 0
 
     @property
     def kernel_paths(self) -> tuple[str, ...]:
@@ -567,12 +568,45 @@ def _flags(b: _Builder, layout: GraphLayout, X: str, z1: str, Ts1: str, cols, ln
     # scores: ||z||^2 and per-block squared residuals, each over its training maximum
     novel = b.op("Cast", b.op("Greater", b.op("ReduceMax", scores, ax1, keepdims=1), "one"),
                  to=b.elem)  # [N, 1]
+    if layout.n_tropopause_layers:
+        novel = b.op("Max", novel, _tropopause_check(b, layout, T, Ts1, cols))
     hits = b.op("Min", b.op("MatMul", b.op("Concat", bad, novel, axis=1), "bounds_channel_map"),
                 "one")  # [N, 3C]
     two = b.op("Gemm", hits, "flag_decode", "flag_decode_offset")  # [N, 2C]
     two = b.op("Reshape", two, b.ints([0, 2, layout.n_channels]))
     flag = b.op("ReduceMin", two, ax1, keepdims=0)
     b.op("Cast", flag, to=TensorProto.INT32, out="quality_flag")
+
+
+def _tropopause_check(b: _Builder, layout: GraphLayout, T: str, Ts1: str, cols) -> str:
+    """1 where the temperature at the lapse-rate tropopause is outside its training range [N, 1].
+
+    As :func:`rtemu.atmosphere.lapse_rate_tropopause`: one MatMul picks T at the M search
+    bases and at the tops of their two layers (``tropopause_pick`` [L, 3M], 0/1); a layer's
+    mean lapse rate is at most 2 K/km where (T_b - T_t) - a (T_b + T_t) <= 0
+    (``tropopause_factor`` [2M], :func:`rtemu.atmosphere.layer_lapse_factor`); ArgMax over
+    the qualifying bases with a final always-1 column returns the first base, or M when
+    none qualifies; the temperature there (0 at M) is compared with
+    ``tropopause_lower`` / ``tropopause_upper`` [M + 1] of that base.
+    """
+    M = layout.n_tropopause_layers
+    picked = b.op("MatMul", T, "tropopause_pick")  # [N, 3M]: base | next | deep
+    base = cols(picked, 0, M, 1)
+    base2 = b.op("Concat", base, base, axis=1)
+    tops = cols(picked, M, 3 * M, 1)
+    excess = b.op("Sub", b.op("Sub", base2, tops), b.op("Mul", b.op("Add", base2, tops), "tropopause_factor"))
+    low = b.op("LessOrEqual", excess, b.const("zero_kelvin", 0.0))  # [N, 2M]
+    both = b.op("And", cols(low, 0, M, 1), cols(low, M, 2 * M, 1))
+    shape = b.op("Shape", Ts1)  # [N, 1]
+    ones = b.op("Expand", b.const("one_column", [[1.0]]), shape)
+    zeros = b.op("Expand", b.const("zero_column", [[0.0]]), shape)
+    position = b.op("ArgMax", b.op("Concat", b.op("Cast", both, to=b.elem), ones, axis=1),
+                    axis=1, keepdims=1, select_last_index=0)  # [N, 1] int64
+    t_at = b.op("GatherElements", b.op("Concat", base, zeros, axis=1), position, axis=1)
+    lower = b.op("Gather", "tropopause_lower", position)
+    upper = b.op("Gather", "tropopause_upper", position)
+    outside = b.op("Or", b.op("Less", t_at, lower), b.op("Greater", t_at, upper))
+    return b.op("Cast", outside, to=b.elem)
 
 
 def primary_shapes(layout: GraphLayout) -> dict[str, tuple[int, ...]]:
@@ -622,6 +656,10 @@ def primary_shapes(layout: GraphLayout) -> dict[str, tuple[int, ...]]:
     for k in range(2, len(h) + 1):
         shapes[layer_weight_name(k)] = (C, h[k - 2], h[k - 1])
         shapes[layer_bias_name(k)] = (C, 1, h[k - 1])
+    if layout.n_tropopause_layers:
+        M = layout.n_tropopause_layers
+        shapes.update({"tropopause_pick": (L, 3 * M), "tropopause_factor": (2 * M,),
+                       "tropopause_lower": (M + 1,), "tropopause_upper": (M + 1,)})
     return shapes
 
 

@@ -15,6 +15,9 @@ Contents
   :func:`relative_humidity`: conversions consistent with the physical model's
   ``e = q p / (eps + (1 - eps) q)``, ``eps = rtemu.constants.EPSILON``.
 - :func:`total_column_water_vapour`: the physical model's trapezoidal column integral.
+- :func:`tropopause_search_layers`, :func:`lapse_rate_tropopause`: the lowest level where
+  the lapse rate falls to 2 K/km (after the WMO 1957 criterion), used by the emulator's
+  novelty check.
 - :func:`default_pressure_grid`: the 60-level demo grid.
 """
 
@@ -23,6 +26,11 @@ from __future__ import annotations
 import numpy as np
 
 from rtemu.constants import EPSILON, STANDARD_GRAVITY
+
+#: Lapse rate [K km-1] at or below which a level counts as the tropopause: the 2 K/km of
+#: the WMO (1957) definition of the first tropopause (WMO Bulletin 6, 136; from memory).
+TROPOPAUSE_LAPSE_RATE = 2.0
+_DRY_AIR_GAS_CONSTANT = 287.05  # R_d [J kg-1 K-1] (dry-air value in common use)
 
 __all__ = [
     "us_standard_atmosphere_1976",
@@ -38,6 +46,10 @@ __all__ = [
     "total_column_water_vapour",
     "default_pressure_grid",
     "DEFAULT_SURFACE_PRESSURE_HPA",
+    "tropopause_search_layers",
+    "layer_lapse_factor",
+    "lapse_rate_tropopause",
+    "TROPOPAUSE_LAPSE_RATE",
     "DEFAULT_TOP_PRESSURE_HPA",
     "DEFAULT_LEVEL_COUNT",
 ]
@@ -449,3 +461,96 @@ def default_pressure_grid() -> np.ndarray:
             break
     p[0], p[-1] = ps, top
     return p
+
+
+def tropopause_search_layers(pressure_hpa, *, bottom_hpa: float = 500.0, top_hpa: float = 40.0,
+                             depth_ln_p: float = 0.3):
+    """Layers searched for a lapse-rate tropopause on a level grid.
+
+    Each base level with ``top_hpa <= p <= bottom_hpa`` gets two layers: up to the next
+    level, and up to the nearest level at least ``depth_ln_p`` higher in ln p (0.3 is about
+    1.9 km at 215 K, by the hypsometric equation; the WMO criterion looks 2 km up). Bases
+    without such a level are left out.
+
+    Parameters
+    ----------
+    pressure_hpa : array_like
+        Level pressures [hPa], strictly monotonic in either order.
+    bottom_hpa, top_hpa : float
+        Pressure range of the base levels [hPa].
+    depth_ln_p : float
+        Least thickness of the deep layer [1, in ln p].
+
+    Returns
+    -------
+    dict of numpy.ndarray, each [M], bases ordered from the surface upward
+        ``base``, ``next``, ``deep``: level indices into ``pressure_hpa`` (int);
+        ``next_thickness``, ``deep_thickness``: ln(p_base / p_top) of the two layers [1].
+    """
+    p = np.asarray(pressure_hpa, dtype=float)
+    ln_p = np.log(p)
+    order = np.argsort(-p)  # surface upward
+    base, nxt, deep = [], [], []
+    for i, k in enumerate(order):
+        if not top_hpa <= p[k] <= bottom_hpa:
+            continue
+        above = order[i + 1:][ln_p[k] - ln_p[order[i + 1:]] >= depth_ln_p]
+        if above.size:
+            base.append(k)
+            nxt.append(order[i + 1])
+            deep.append(above[0])
+    base, nxt, deep = (np.array(v, dtype=int) for v in (base, nxt, deep))
+    return {"base": base, "next": nxt, "deep": deep,
+            "next_thickness": ln_p[base] - ln_p[nxt], "deep_thickness": ln_p[base] - ln_p[deep]}
+
+
+def layer_lapse_factor(thickness_ln_p, lapse_rate: float = TROPOPAUSE_LAPSE_RATE):
+    """a [1] such that a layer's mean lapse rate is at most ``lapse_rate`` [K km-1] exactly when
+    (T_b - T_t) - a (T_b + T_t) <= 0, for a layer of ``thickness_ln_p`` = ln(p_b / p_t).
+
+    From dz = (R_d / g) (T_b + T_t) / 2 ln(p_b / p_t) (hypsometric equation, R_d =
+    287.05 J kg-1 K-1, g = 9.80665 m s-2): a = lapse_rate [K m-1] R_d ln(p_b / p_t) / (2 g).
+    """
+    return lapse_rate * 1e-3 * _DRY_AIR_GAS_CONSTANT * np.asarray(thickness_ln_p, dtype=float) / (2.0 * STANDARD_GRAVITY)
+
+
+def lapse_rate_tropopause(air_temperature, pressure_hpa, *, lapse_rate: float = TROPOPAUSE_LAPSE_RATE,
+                          **layers):
+    """The lowest searched base level where the lapse rate has fallen to ``lapse_rate``.
+
+    A base qualifies when the mean lapse rate (T_b - T_t) / dz is at most ``lapse_rate``
+    both up to the next level and over the deep layer (about 2 km) above it
+    (:func:`tropopause_search_layers`, :func:`layer_lapse_factor`): a simplified form of
+    the WMO (1957) first-tropopause rule, which checks every layer up to 2 km.
+
+    Parameters
+    ----------
+    air_temperature : array_like
+        Temperature [K], shape (..., L) on ``pressure_hpa``.
+    pressure_hpa : array_like
+        Level pressures [hPa], [L].
+    lapse_rate : float
+        Threshold [K km-1].
+    **layers
+        ``bottom_hpa``, ``top_hpa``, ``depth_ln_p`` of :func:`tropopause_search_layers`.
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray)
+        ``position`` (int, shape (...)): index of the base in the search layers, or M when
+        none qualifies; ``temperature`` [K]: T at that base (NaN when none qualifies).
+    """
+    lay = tropopause_search_layers(pressure_hpa, **layers)
+    t = np.asarray(air_temperature, dtype=float)
+    tb = t[..., lay["base"]]
+    low = np.ones(tb.shape, dtype=bool)
+    for top, thickness in ((lay["next"], lay["next_thickness"]), (lay["deep"], lay["deep_thickness"])):
+        tt = t[..., top]
+        low &= (tb - tt) - layer_lapse_factor(thickness, lapse_rate) * (tb + tt) <= 0.0
+    m = lay["base"].size
+    found = low.any(axis=-1)
+    position = np.where(found, np.argmax(low, axis=-1), m) if m else np.zeros(t.shape[:-1], dtype=int)
+    if not m:
+        return position, np.full(t.shape[:-1], np.nan)
+    at = np.take_along_axis(tb, np.minimum(position, m - 1)[..., None], axis=-1)[..., 0]
+    return position, np.where(found, at, np.nan)

@@ -26,7 +26,7 @@ __all__ = ["FORMAT_VERSION", "Bundle", "BundleError", "read_bundle", "describe",
            "weights_sha256"]
 
 #: Bundle format written by this rtemu; files with a larger number are refused.
-FORMAT_VERSION = 5
+FORMAT_VERSION = 6
 PREFIX = "rtemu."
 
 REQUIRED_KEYS = (
@@ -408,6 +408,14 @@ def describe(path) -> str:
         lo, hi = np.asarray(item["lower"], float), np.asarray(item["upper"], float)
         lines.append(f"    {name:28s} {lo.min():.4g} .. {hi.max():.4g} [{item['units']}]"
                      + (f" (per {item['per']})" if item.get("per") else ""))
+    trop = th.get("tropopause")
+    if trop:
+        lo, hi = np.asarray(trop["lower_k"][:-1]), np.asarray(trop["upper_k"][:-1])
+        reached = lo <= hi
+        lines.append(f"  tropopause check: first level between {trop['base_pressure_hpa'][0]:.4g} and "
+                     f"{trop['base_pressure_hpa'][-1]:.4g} hPa with lapse rate <= {trop['lapse_rate_k_per_km']:g} K/km; "
+                     f"training reached {int(reached.sum())} of {lo.size} levels, temperature there "
+                     + (f"{lo[reached].min():.4g} .. {hi[reached].max():.4g} K" if reached.any() else "-"))
     lines.append("  validation (K):   channel        rmse     bias    p99.9      max  hidden      iterations  inputs"
                  "       Jacobian term")
     for cid in b.channel_ids:

@@ -5,7 +5,8 @@ Stage "export" (training -> export -> runtime). The bundle layout:
 * shared initializers, fixed by the first training of a bundle: the affine map of the raw
   features to the scaled PCA coordinates and reconstruction residuals
   (``projection_weight``/``projection_offset``), the novelty limits, the training bounds of
-  the profile variables, the humidity floor;
+  the profile variables, the humidity floor, the tropopause check (format 6: search-layer
+  picks, lapse factors and the training range of the tropopause temperature per base);
 * per-channel initializers, stacked on a channel axis with hidden layers zero-padded to
   the widest channel (exact: a padded unit has zero weights in and out). Each channel's
   slice is a float32 copy of its own float64 parameters, so replacing or adding channels
@@ -28,6 +29,7 @@ import numpy as np
 import onnx
 
 from rtemu import _graph, flags as _flags
+from rtemu import atmosphere as _atm
 from rtemu import bundle as _bundle
 from rtemu._io import write_bytes_atomic
 from rtemu.features import (
@@ -43,6 +45,7 @@ from rtemu.features import (
 )
 from rtemu.training import (
     PHYSICAL_BOUNDS,
+    TROPOPAUSE_NEVER as _TROPOPAUSE_NEVER,
     Envelope,
     TrainedEmulator,
     fit_emulator,
@@ -87,7 +90,8 @@ _LINEAR_COLUMNS = ("linear_weight", "linear_emissivity_weight", "linear_zenith_w
 _SHARED = ("feature_center", "projection_weight", "projection_offset", "novelty_scale", "humidity_floor",
            "log_pressure_minus_bolton_a", "water_path_matrix", "water_path_floor", "kernel_path_matrix",
            "kernel_path_scale", "kernel_coefficients", "kernel_temperature_matrix", "kernel_surface_pick",
-           "kernel_dry_depth", "kernel_combination", "kernel_temperature_exponent", "kernel_reference_temperature")
+           "kernel_dry_depth", "kernel_combination", "kernel_temperature_exponent", "kernel_reference_temperature",
+           "tropopause_pick", "tropopause_factor", "tropopause_lower", "tropopause_upper")
 
 
 class FrozenTransform:
@@ -209,10 +213,46 @@ def _shared_from_emulator(emu: TrainedEmulator) -> tuple[dict, dict]:
         shared["water_path_matrix"] = water_path_matrix(emu.pressure_hpa).astype(np.float32)
         shared["water_path_floor"] = np.float32(emu.config.water_path_floor)
     shared.update(_kernel_arrays(emu.config, emu.pressure_hpa))
+    shared.update(_tropopause_arrays(emu.envelope, emu.pressure_hpa))
     bounds = {name: (np.atleast_1d(emu.envelope.lower[name]).astype(np.float32),
                      np.atleast_1d(emu.envelope.upper[name]).astype(np.float32))
               for name in _PROFILE_VARIABLES}
     return shared, bounds
+
+
+def _tropopause_arrays(envelope, pressure_hpa) -> dict:
+    """float32 constants of the tropopause check (none when the envelope has no ranges)."""
+    if envelope.tropopause_lower is None:
+        return {}
+    lay = _atm.tropopause_search_layers(pressure_hpa)
+    m = lay["base"].size
+    pick = np.zeros((np.size(pressure_hpa), 3 * m))
+    for i, key in enumerate(("base", "next", "deep")):
+        pick[lay[key], i * m + np.arange(m)] = 1.0
+    factor = np.concatenate([_atm.layer_lapse_factor(lay["next_thickness"]),
+                             _atm.layer_lapse_factor(lay["deep_thickness"])])
+    arrays = {"tropopause_pick": pick, "tropopause_factor": factor,
+              "tropopause_lower": envelope.tropopause_lower, "tropopause_upper": envelope.tropopause_upper}
+    return {k: np.asarray(v).astype(np.float32) for k, v in arrays.items()}
+
+
+def _tropopause_json(shared: dict, grid) -> dict | None:
+    """The tropopause check as metadata (None when the bundle has none)."""
+    if "tropopause_lower" not in shared:
+        return None
+    lay = _atm.tropopause_search_layers(grid)
+    return {
+        "lapse_rate_k_per_km": _atm.TROPOPAUSE_LAPSE_RATE,
+        "base_pressure_hpa": [float(grid[k]) for k in lay["base"]],
+        "next_pressure_hpa": [float(grid[k]) for k in lay["next"]],
+        "deep_pressure_hpa": [float(grid[k]) for k in lay["deep"]],
+        "lower_k": [float(v) for v in shared["tropopause_lower"]],
+        "upper_k": [float(v) for v in shared["tropopause_upper"]],
+        "rule": "the tropopause is the first base level (from the surface up) where the mean lapse rate up "
+                "to the next level and up to the deep level are both at most lapse_rate_k_per_km; position "
+                "M (the last entry of lower_k/upper_k) means none, with temperature 0; a range of "
+                f"({_TROPOPAUSE_NEVER:g}, {-_TROPOPAUSE_NEVER:g}) is a base no training state reached",
+    }
 
 
 def _kernel_arrays(config: FeatureConfig, pressure_hpa) -> dict:
@@ -278,7 +318,7 @@ def _envelope_json(bounds: dict, parts: list[dict], channel_ids) -> dict:
 
 
 def _metadata(*, layout, config, instrument, channel_ids, grid, bounds, parts, limits, margins,
-              stats, recipe_name, recipe_toml, recipes, data_sha) -> dict:
+              stats, recipe_name, recipe_toml, recipes, data_sha, tropopause=None) -> dict:
     import rtemu
 
     limit_names = ["mahalanobis_squared"] + [f"reconstruction_squared_{name}" for name, k in config.blocks() if k]
@@ -301,6 +341,7 @@ def _metadata(*, layout, config, instrument, channel_ids, grid, bounds, parts, l
             "reflection_kernels": layout.reflection_kernels,
             "n_band_kernels": layout.n_band_kernels, "n_channel_kernels": layout.n_channel_kernels,
             "kernel_temperature_laws": layout.kernel_temperature_laws,
+            "n_tropopause_layers": layout.n_tropopause_layers,
             "level_order": "surface first" if grid[0] > grid[-1] else "top first",
         }, sort_keys=True),
         "rtemu.features": config.to_json(),
@@ -310,7 +351,10 @@ def _metadata(*, layout, config, instrument, channel_ids, grid, bounds, parts, l
             "novelty_limits": {n: float(v) for n, v in zip(limit_names, limits)},
             "physical_bounds": {k: list(v) for k, v in PHYSICAL_BOUNDS.items()},
             "rule": "bit 2: any input outside [lower, upper] of the envelope; bit 4: any novelty "
-                    "score above its limit (largest training value times novelty_margin)",
+                    "score above its limit (largest training value times novelty_margin)"
+                    + (", or the temperature at the lapse-rate tropopause outside its training range "
+                       "(tropopause)" if tropopause else ""),
+            **({"tropopause": tropopause} if tropopause else {}),
         }, sort_keys=True),
         "rtemu.flag_meanings": json.dumps({
             str(_flags.INVALID_INPUT): "invalid_input",
@@ -417,13 +461,15 @@ def build_bundle_model(emu: TrainedEmulator, *, base=None, dtype=np.float32):
                                 reflection_kernels=cfg.reflection_kernels,
                                 n_band_kernels=cfg.n_band_kernels,
                                 n_channel_kernels=len(cfg.channel_kernels),
-                                kernel_temperature_laws=bool(cfg.kernel_temperature_laws))
+                                kernel_temperature_laws=bool(cfg.kernel_temperature_laws),
+                                n_tropopause_layers=(shared["tropopause_lower"].size - 1
+                                                     if "tropopause_lower" in shared else 0))
     arrays = _assemble(shared, bounds, parts, layout)
     model = _graph.build_model(layout, arrays, dtype=dtype)
     meta = _metadata(layout=layout, config=cfg, instrument=instrument, channel_ids=ids,
                      grid=emu.pressure_hpa, bounds=bounds, parts=parts, limits=limits, margins=margins,
                      stats=stats, recipe_name=recipe_name, recipe_toml=recipe_toml, recipes=recipes,
-                     data_sha=data_sha)
+                     data_sha=data_sha, tropopause=_tropopause_json(shared, emu.pressure_hpa))
     return _finish(model, meta), layout
 
 

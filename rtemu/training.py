@@ -42,6 +42,7 @@ else:  # pragma: no cover
     import tomli as tomllib
 
 from rtemu import _checks
+from rtemu import atmosphere as _atm
 from rtemu._io import open_dataset
 from rtemu.features import (
     HUMIDITY_TRANSFORMS,
@@ -175,7 +176,7 @@ SCHEMA: dict[str, dict[str, Any]] = {
     },
     "linear": {"residual": _bool, "ridge_alpha": _float(0.0)},
     "network": {k: v for k, v in _NETWORK.items() if k != "ridge_alpha"},
-    "envelope": {"bounds_margin": _float(0.0, 1.0), "novelty_margin": _float(1.0)},
+    "envelope": {"bounds_margin": _float(0.0, 1.0), "novelty_margin": _float(1.0), "tropopause_check": _bool},
 }
 #: Keys a ``[channels."<id>"]`` table may override (network settings and the ridge penalty).
 CHANNEL_KEYS = {k: v for k, v in _NETWORK.items() if k != "activation"}
@@ -193,7 +194,7 @@ DEFAULTS = {
         "linear_inputs": "all",
         "jacobian_weight": 0.0, "jacobian_max_iter": 600, "jacobian_check_every": 200,
     },
-    "envelope": {"bounds_margin": 0.02, "novelty_margin": 1.0},
+    "envelope": {"bounds_margin": 0.02, "novelty_margin": 1.0, "tropopause_check": True},
 }
 
 
@@ -874,7 +875,10 @@ class Envelope:
     ``lower``/``upper`` map variable names to arrays: air_temperature, specific_humidity
     [L]; surface_temperature, sensor_zenith_angle []; surface_emissivity [C] over the
     trained channels. ``novelty_limits`` [1 + B]: largest training ||z||^2 and block
-    reconstruction errors, times the recipe's novelty_margin.
+    reconstruction errors, times the recipe's novelty_margin. ``tropopause_lower`` /
+    ``tropopause_upper`` [M + 1] (None when the recipe turns the check off or the grid has
+    no search layer): range of the temperature [K] at the lapse-rate tropopause per search
+    base (:func:`tropopause_bounds`).
     """
 
     lower: dict
@@ -882,6 +886,8 @@ class Envelope:
     novelty_limits: np.ndarray
     bounds_margin: float
     novelty_margin: float
+    tropopause_lower: np.ndarray | None = None
+    tropopause_upper: np.ndarray | None = None
 
 
 @dataclasses.dataclass
@@ -940,8 +946,61 @@ def _envelope(data: TrainingData, columns: list[int], transform, x: np.ndarray,
         upper[name] = np.clip(hi + margin * width, plo, phi)
     scores = transform.novelty_scores(x)
     limits = scores.max(axis=0) * recipe.settings["envelope"]["novelty_margin"]
+    trop = (None, None)
+    if recipe.settings["envelope"]["tropopause_check"]:
+        trop = tropopause_bounds(data.air_temperature, data.pressure_hpa, margin)
     return Envelope(lower=lower, upper=upper, novelty_limits=limits, bounds_margin=margin,
-                    novelty_margin=recipe.settings["envelope"]["novelty_margin"])
+                    novelty_margin=recipe.settings["envelope"]["novelty_margin"],
+                    tropopause_lower=trop[0], tropopause_upper=trop[1])
+
+
+#: Stands for "no training state here" in the tropopause ranges [K]: a range (NEVER, -NEVER)
+#: flags every state, (-NEVER, NEVER) none.
+TROPOPAUSE_NEVER = 1.0e4
+
+
+def tropopause_bounds(air_temperature, pressure_hpa, margin: float):
+    """Training range of the temperature at the lapse-rate tropopause, per search base.
+
+    :func:`rtemu.atmosphere.lapse_rate_tropopause` places each training state's tropopause
+    at one of the M search bases (or at M: none found). Per base, the range of the
+    temperature found there, widened on both sides by ``margin`` times the range over all
+    bases; a base no training state reached gets the empty range (NEVER, -NEVER). At M the
+    temperature is taken as 0: the range is (-NEVER, NEVER) when some training state has no
+    tropopause in the search range, else empty.
+
+    Parameters
+    ----------
+    air_temperature : numpy.ndarray
+        Training temperatures [K], (N, L) on ``pressure_hpa``.
+    pressure_hpa : numpy.ndarray
+        Level pressures [hPa], [L].
+    margin : float
+        Relative widening [1] (the recipe's bounds_margin).
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray) or (None, None)
+        Lower and upper temperature [K], [M + 1] each; (None, None) when the grid has no
+        search layer.
+    """
+    m = _atm.tropopause_search_layers(pressure_hpa)["base"].size
+    if not m:
+        return None, None
+    position, t = _atm.lapse_rate_tropopause(air_temperature, pressure_hpa)
+    lower, upper = np.full(m + 1, TROPOPAUSE_NEVER), np.full(m + 1, -TROPOPAUSE_NEVER)
+    found = position < m
+    if found.any():
+        width = np.ptp(t[found])
+        lo = np.full(m, np.inf)
+        hi = np.full(m, -np.inf)
+        np.minimum.at(lo, position[found], t[found])
+        np.maximum.at(hi, position[found], t[found])
+        seen = np.isfinite(lo)
+        lower[:m][seen], upper[:m][seen] = lo[seen] - margin * width, hi[seen] + margin * width
+    if (~found).any():
+        lower[m], upper[m] = -TROPOPAUSE_NEVER, TROPOPAUSE_NEVER
+    return lower, upper
 
 
 def fit_emulator(data, recipe, *, channels=None, transform=None, workers=None, progress=True,

@@ -195,3 +195,53 @@ def test_default_pressure_grid_properties():
     # the documented coordinate is equally spaced
     eta = 15.0 * (1.0 - p / 1013.25) + np.log(1013.25 / p)
     assert np.diff(eta) == pytest.approx(np.full(59, eta[-1] / 59), rel=1e-9)
+
+
+# --- lapse-rate tropopause ---------------------------------------------------------------------
+
+def _fluids_us1976(heights_m):
+    """(pressure [hPa], temperature [K]) of the US 1976 atmosphere from the fluids package."""
+    states = [ATMOSPHERE_1976(float(z)) for z in heights_m]
+    return np.array([s.P / 100.0 for s in states]), np.array([s.T for s in states])
+
+
+def test_lapse_rate_tropopause_of_us1976_from_fluids():
+    # The US 1976 atmosphere cools 6.5 K/km up to 11 km geopotential (226.32 hPa) and is
+    # isothermal above (NOAA-S/T 76-1562; here from the fluids package, an independent
+    # implementation, on geometric heights 250 m apart): the tropopause found is the grid
+    # level nearest 226.32 hPa (the layer from the level just below is then nearly isothermal).
+    p, t = _fluids_us1976(np.arange(0.0, 30001.0, 250.0))
+    lay = atm.tropopause_search_layers(p)
+    position, temperature = atm.lapse_rate_tropopause(t, p)
+    base = lay["base"][position]
+    assert base == np.argmin(np.abs(np.log(p / 226.32)))
+    assert temperature == pytest.approx(216.65, abs=0.2)
+    # the same on the grid in the other order, and for a batch
+    position2, temperature2 = atm.lapse_rate_tropopause(np.stack([t[::-1]] * 3), p[::-1])
+    lay2 = atm.tropopause_search_layers(p[::-1])
+    assert np.all(p[::-1][lay2["base"][position2]] == p[base]) and np.allclose(temperature2, temperature)
+
+
+def test_lapse_rate_criterion_at_two_kelvin_per_km():
+    # A layer 2 km deep by the hypsometric equation dz = (R_d / g) T_mean ln(p_b / p_t)
+    # (Wallace & Hobbs 2006 eq. 3.29; R_d = 287.05 J kg-1 K-1, common value) cooling by
+    # (2 +- 0.05) K/km: the criterion (WMO 1957: 2 K/km, from memory) holds just below the
+    # threshold and fails just above it.
+    thickness = 0.3
+    a = atm.layer_lapse_factor(thickness)
+    for rate, holds in ((1.95, True), (2.05, False), (0.0, True), (-3.0, True), (6.5, False)):
+        # solve T_b - T_t = rate * dz with dz = (287.05 / g) (T_b + T_t) / 2 * thickness, T_b = 220 K
+        k = rate * 1e-3 * 287.05 / STANDARD_GRAVITY * thickness / 2.0
+        t_top = 220.0 * (1.0 - k) / (1.0 + k)
+        assert ((220.0 - t_top) - a * (220.0 + t_top) <= 0.0) == holds, rate
+
+
+def test_no_tropopause_in_the_search_range():
+    p = atm.default_pressure_grid()
+    z = np.log(p[0] / p) * 7.0  # [km], rough heights: a steady 6.5 K/km cooling everywhere
+    t = 300.0 - 6.5 * z
+    lay = atm.tropopause_search_layers(p)
+    position, temperature = atm.lapse_rate_tropopause(t, p)
+    assert position == lay["base"].size and np.isnan(temperature)
+    # a grid that ends below the search range has no layer at all
+    assert atm.tropopause_search_layers(np.linspace(1000.0, 600.0, 10))["base"].size == 0

@@ -80,7 +80,7 @@ def test_good_bundle_parses(good):
 def test_describe_is_readable(good):
     text = rb.describe(good)
     for piece in ("mw-t2", "ir-w1", "format version", "tiny-bundle", "brightness_temperature",
-                  "jacobian_specific_humidity", "novel_state", "60 levels"):
+                  "jacobian_specific_humidity", "novel_state", "60 levels", "tropopause check: first level"):
         assert piece in text
     assert "opacity kernels    none" in text  # this bundle's recipe has none
     summary = rb._kernels_summary({"line_kernels": [0.1, 3.0], "continuum_kernels": [30.0], "reflection_kernels": True,

@@ -115,7 +115,8 @@ def _layout(b):
                               reflection_kernels=g.get("reflection_kernels", False),
                               n_band_kernels=g.get("n_band_kernels", 0),
                               n_channel_kernels=g.get("n_channel_kernels", 0),
-                              kernel_temperature_laws=g.get("kernel_temperature_laws", False))
+                              kernel_temperature_laws=g.get("kernel_temperature_laws", False),
+                              n_tropopause_layers=g.get("n_tropopause_layers", 0))
 
 
 def test_flag_bits_match_rtemu_flags():
@@ -130,8 +131,9 @@ def test_graph_is_valid_onnx_and_lean(trained):
     # nodes on initializers only are folded at session creation; what runs per call stays
     # small (each node costs ~1 us in a single-profile call); the water-path block (on in
     # this recipe) adds 12 (95 without it), the opacity kernels 57, their reflection term 32,
-    # the channel kernels 7, their temperature laws 11
-    assert len(_graph.runtime_nodes(model)) <= 203 + (11 if trained["layout"].kernel_temperature_laws else 0)
+    # the channel kernels 7, their temperature laws 11, the tropopause check 27 (flag path only)
+    assert trained["layout"].n_tropopause_layers > 0
+    assert len(_graph.runtime_nodes(model)) <= 230 + (11 if trained["layout"].kernel_temperature_laws else 0)
 
 
 def test_channel_without_kernels_has_zero_kernel_weights(trained):
@@ -415,6 +417,78 @@ def test_novelty_flag_off_subspace_within_bounds(trained):
     feeds["air_temperature"] = T[rows].astype(np.float32)
     flag = _run(make_session(trained["path"]), feeds, ["quality_flag"])["quality_flag"]
     assert np.all(flag == flags.NOVEL_STATE)
+
+
+def test_tropopause_ranges_cover_every_training_state(trained):
+    """The envelope's tropopause ranges hold every training state, and a base no training
+    state reached gets the empty range; the metadata carries the same numbers."""
+    from rtemu import atmosphere as atm
+    from rtemu.training import TROPOPAUSE_NEVER
+
+    data, env = trained["data"], trained["emu"].envelope
+    position, t = atm.lapse_rate_tropopause(data.air_temperature, data.pressure_hpa)
+    m = atm.tropopause_search_layers(data.pressure_hpa)["base"].size
+    assert env.tropopause_lower.shape == (m + 1,) and trained["layout"].n_tropopause_layers == m
+    found = position < m
+    assert found.mean() > 0.95
+    assert np.all(env.tropopause_lower[position[found]] < t[found])
+    assert np.all(env.tropopause_upper[position[found]] > t[found])
+    unseen = np.setdiff1d(np.arange(m), position[found])
+    assert np.all(env.tropopause_lower[unseen] == TROPOPAUSE_NEVER)
+    assert np.all(env.tropopause_upper[unseen] == -TROPOPAUSE_NEVER)
+    th = read_bundle(trained["path"]).flag_thresholds["tropopause"]
+    assert np.allclose(th["lower_k"], env.tropopause_lower, rtol=1e-6)
+    assert len(th["base_pressure_hpa"]) == m and th["lapse_rate_k_per_km"] == 2.0
+
+
+def test_graph_tropopause_check_matches_numpy(trained):
+    """The graph's tropopause check against rtemu.atmosphere.lapse_rate_tropopause: with
+    each base's lower limit moved to the median temperature found there, exactly the
+    training states below their base's median get novel_state (training states raise no
+    other flag)."""
+    from rtemu import atmosphere as atm
+
+    data = trained["data"]
+    b = read_bundle(trained["path"])
+    layout = _layout(b)
+    arrays = {k: v for k, v in b.arrays().items() if k in _graph.primary_shapes(layout)}
+    rows = np.arange(600)
+    T = data.air_temperature[rows].astype(np.float32).astype(float)
+    position, t = atm.lapse_rate_tropopause(T, data.pressure_hpa)
+    m = layout.n_tropopause_layers
+    lower = arrays["tropopause_lower"].copy()
+    for k in np.unique(position[position < m]):
+        lower[k] = np.float32(np.median(t[position == k]))
+    arrays["tropopause_lower"] = lower
+    model = _graph.build_model(layout, arrays)
+    session = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"])
+    flag = _run(session, _feeds(data, rows, _columns(trained)), ["quality_flag"])["quality_flag"]
+    expected = (position < m) & (np.where(position < m, t, np.inf) < lower[position].astype(float))
+    assert 0.2 < expected.mean() < 0.6
+    assert np.array_equal(flag, np.where(expected, flags.NOVEL_STATE, 0)[:, None] * np.ones(flag.shape[1], int))
+
+
+def test_warmed_states_flagged_by_the_tropopause_check(trained):
+    """Training states warmed by 30 K throughout keep their tropopause level but not its
+    temperature: novel_state from the tropopause check alone, even where every per-level
+    bound would pass (checked here with the bounds widened out of the way)."""
+    data = trained["data"]
+    b = read_bundle(trained["path"])
+    layout = _layout(b)
+    arrays = {k: v for k, v in b.arrays().items() if k in _graph.primary_shapes(layout)}
+    arrays["training_lower"] = np.full_like(arrays["training_lower"], -1e4)
+    arrays["training_upper"] = np.full_like(arrays["training_upper"], 1e4)
+    arrays["novelty_scale"] = np.zeros_like(arrays["novelty_scale"])
+    model = _graph.build_model(layout, arrays)
+    session = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"])
+    rows = np.arange(300)
+    feeds = _feeds(data, rows, _columns(trained))
+    assert np.all(_run(session, feeds, ["quality_flag"])["quality_flag"] == 0)
+    feeds["air_temperature"] = feeds["air_temperature"] + np.float32(30.0)
+    feeds["surface_temperature"] = feeds["surface_temperature"] + np.float32(30.0)
+    flag = _run(session, feeds, ["quality_flag"])["quality_flag"]
+    assert np.all((flag == 0) | (flag == flags.NOVEL_STATE))
+    assert (flag[:, 0] == flags.NOVEL_STATE).mean() > 0.9
 
 
 def test_flags_catch_supersaturation_and_skin_contrast(trained):
