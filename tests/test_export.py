@@ -10,7 +10,7 @@ import pytest
 import xarray as xr
 
 from rtemu import _graph, flags
-from rtemu.bundle import make_session, pruned_model, read_bundle
+from rtemu.bundle import describe, make_session, pruned_model, read_bundle
 from rtemu.export import build_bundle_model
 from rtemu.sampling import sample_to_netcdf
 from rtemu.training import Recipe, fit_emulator, load_training_data
@@ -228,6 +228,44 @@ def test_update_of_a_bundle_with_channel_kernels(trained):
     keep = [c for c in range(len(b.channel_ids)) if c != i]
     np.testing.assert_array_equal(new["brightness_temperature"][:, keep], old["brightness_temperature"][:, keep])
     assert np.any(new["brightness_temperature"][:, i] != old["brightness_temperature"][:, i])
+
+
+def test_update_keeps_the_tropopause_check_or_its_absence(trained, tmp_path):
+    """The check belongs to the shared envelope: an update keeps the old file's (its flags
+    stay identical), and a file without one (format <= 5, or tropopause_check = false)
+    stays without one."""
+    from rtemu.export import train_to_onnx
+
+    warm = _feeds(trained["data"], np.arange(200), _columns(trained))
+    warm["air_temperature"] = warm["air_temperature"] + np.float32(30.0)
+    warm["surface_temperature"] = warm["surface_temperature"] + np.float32(30.0)
+    recipe = tmp_path / "recipe.toml"
+    recipe.write_text(trained["recipe"].replace("seed = 4", "seed = 6"))
+    out = tmp_path / "updated.onnx"
+    train_to_onnx(trained["data_path"], recipe, out, channels=["mw-t3"], update=trained["path"], workers=1,
+                  progress=False)
+    assert read_bundle(out).flag_thresholds["tropopause"] == read_bundle(trained["path"]).flag_thresholds["tropopause"]
+    np.testing.assert_array_equal(_run(make_session(out), warm, ["quality_flag"])["quality_flag"],
+                                  _run(make_session(trained["path"]), warm, ["quality_flag"])["quality_flag"])
+
+    off = trained["recipe"] + "\n[envelope]\ntropopause_check = false\n"
+    emu = fit_emulator(trained["data"], Recipe.from_toml(off, "off"), channels=["mw-t3", "ir-win"], workers=1,
+                       progress=False)
+    assert emu.envelope.tropopause_lower is None
+    first = tmp_path / "without.onnx"
+    first.write_bytes(build_bundle_model(emu)[0])
+    recipe.write_text(off.replace("seed = 4", "seed = 6"))
+    second = tmp_path / "without-updated.onnx"
+    train_to_onnx(trained["data_path"], recipe, second, channels=["mw-t3"], update=first, workers=1, progress=False)
+    for path in (first, second):
+        b = read_bundle(path)
+        assert b.graph["n_tropopause_layers"] == 0 and "tropopause" not in b.flag_thresholds
+        assert "tropopause check" not in describe(path)
+        ids = list(trained["data"].instrument.channel_ids)
+        feeds = dict(warm, surface_emissivity=trained["data"].surface_emissivity[:200][
+            :, [ids.index(c) for c in b.channel_ids]].astype(np.float32))
+        flag = _run(make_session(path), feeds, ["quality_flag"])["quality_flag"]
+        assert flag.shape == (200, 2)
 
 
 def test_onnx_matches_in_memory_sklearn_model(trained):
