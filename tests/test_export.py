@@ -406,6 +406,32 @@ def test_flags_zero_on_training_profiles(trained):
     assert np.all(out["quality_flag"] == 0)  # every training state lies inside its own envelope
 
 
+def test_flag_rates_on_an_independent_draw(trained):
+    """The issue's flag targets, loosely, for a tiny bundle (1,200 training states): of 600
+    states drawn with another seed at most 10 % flagged (the full recipe's 30,000 give
+    0.12 %, README), and the same states 30 K warmer throughout flagged at least 97 %
+    (target 99 %, met by the shipped recipes)."""
+    from rtemu.sampling import draw_states
+
+    data = trained["data"]
+    states = draw_states(600, seed=77, pressure_hpa=data.pressure_hpa, channels=data.instrument)
+    ids = list(states["channel"].values)
+    feeds = {
+        "air_temperature": states["air_temperature"].values.astype(np.float32),
+        "specific_humidity": states["specific_humidity"].values.astype(np.float32),
+        "surface_temperature": states["surface_temperature"].values.astype(np.float32),
+        "surface_emissivity": states["surface_emissivity"].values[
+            :, [ids.index(c) for c in trained["emu"].channel_ids]].astype(np.float32),
+        "sensor_zenith_angle": states["sensor_zenith_angle"].values.astype(np.float32),
+    }
+    session = make_session(trained["path"], outputs=["quality_flag"])
+    inside = (_run(session, feeds)["quality_flag"] != 0).any(axis=1)
+    warm = dict(feeds, air_temperature=feeds["air_temperature"] + np.float32(30.0),
+                surface_temperature=feeds["surface_temperature"] + np.float32(30.0))
+    moved = (_run(session, warm)["quality_flag"] != 0).any(axis=1)
+    assert inside.mean() <= 0.10 and moved.mean() >= 0.97, (inside.mean(), moved.mean())
+
+
 def test_flags_on_crafted_inputs(trained):
     data = trained["data"]
     session = make_session(trained["path"])
