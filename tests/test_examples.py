@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -59,6 +60,14 @@ def test_var1d_example_with_both_operators(tmp_path, tiny_bundle):
     out = _run(str(EXAMPLES / "var1d_over_file.py"), "--model", str(tiny_bundle),
                "--output-dir", str(tmp_path / "emu"))
     assert "EmulatedOperator" in out
+    rejected = int(re.search(r"operator_flag (\d+)", out).group(1))
+    assert rejected > 0  # the tiny bundle's envelope leaves out some backgrounds ...
+    # ... which the physics fallback computes instead, so none is rejected
+    out = _run(str(EXAMPLES / "var1d_over_file.py"), "--model", str(tiny_bundle), "--fallback",
+               "--output-dir", str(tmp_path / "fallback"))
+    assert "operator_flag 0," in out
+    with open_dataset(tmp_path / "fallback" / "diagnostics.nc") as d:
+        assert int(d["qc_count"].sel(qc_category="operator_flag")) == 0
 
 
 def test_dask_cluster_example(tmp_path, tiny_bundle):
