@@ -25,12 +25,11 @@ from __future__ import annotations
 
 import numpy as np
 
-from rtemu.constants import EPSILON, STANDARD_GRAVITY
+from rtemu.constants import DRY_AIR_GAS_CONSTANT, EPSILON, STANDARD_GRAVITY
 
 #: Lapse rate [K km-1] at or below which a level counts as the tropopause: the 2 K/km of
 #: the WMO (1957) definition of the first tropopause (WMO Bulletin 6, 136; from memory).
 TROPOPAUSE_LAPSE_RATE = 2.0
-_DRY_AIR_GAS_CONSTANT = 287.05  # R_d [J kg-1 K-1] (dry-air value in common use)
 
 __all__ = [
     "us_standard_atmosphere_1976",
@@ -511,7 +510,8 @@ def layer_lapse_factor(thickness_ln_p, lapse_rate: float = TROPOPAUSE_LAPSE_RATE
     From dz = (R_d / g) (T_b + T_t) / 2 ln(p_b / p_t) (hypsometric equation, R_d =
     287.05 J kg-1 K-1, g = 9.80665 m s-2): a = lapse_rate [K m-1] R_d ln(p_b / p_t) / (2 g).
     """
-    return lapse_rate * 1e-3 * _DRY_AIR_GAS_CONSTANT * np.asarray(thickness_ln_p, dtype=float) / (2.0 * STANDARD_GRAVITY)
+    thickness = np.asarray(thickness_ln_p, dtype=float)
+    return lapse_rate * 1e-3 * DRY_AIR_GAS_CONSTANT * thickness / (2.0 * STANDARD_GRAVITY)
 
 
 def lapse_rate_tropopause(air_temperature, pressure_hpa, *, lapse_rate: float = TROPOPAUSE_LAPSE_RATE,
@@ -542,15 +542,15 @@ def lapse_rate_tropopause(air_temperature, pressure_hpa, *, lapse_rate: float = 
     """
     lay = tropopause_search_layers(pressure_hpa, **layers)
     t = np.asarray(air_temperature, dtype=float)
+    m = lay["base"].size
+    if not m:
+        return np.zeros(t.shape[:-1], dtype=int), np.full(t.shape[:-1], np.nan)
     tb = t[..., lay["base"]]
     low = np.ones(tb.shape, dtype=bool)
     for top, thickness in ((lay["next"], lay["next_thickness"]), (lay["deep"], lay["deep_thickness"])):
         tt = t[..., top]
         low &= (tb - tt) - layer_lapse_factor(thickness, lapse_rate) * (tb + tt) <= 0.0
-    m = lay["base"].size
     found = low.any(axis=-1)
-    position = np.where(found, np.argmax(low, axis=-1), m) if m else np.zeros(t.shape[:-1], dtype=int)
-    if not m:
-        return position, np.full(t.shape[:-1], np.nan)
+    position = np.where(found, np.argmax(low, axis=-1), m)
     at = np.take_along_axis(tb, np.minimum(position, m - 1)[..., None], axis=-1)[..., 0]
     return position, np.where(found, at, np.nan)

@@ -14,5 +14,6 @@ C1_RADIANCE = 2.0 * PLANCK_CONSTANT * SPEED_OF_LIGHT**2
 C2 = PLANCK_CONSTANT * SPEED_OF_LIGHT / BOLTZMANN_CONSTANT
 
 STANDARD_GRAVITY = 9.80665  # g [m s-2], CGPM 1901 conventional value
+DRY_AIR_GAS_CONSTANT = 287.05  # R_d [J kg-1 K-1], dry-air value in common use
 EPSILON = 0.622  # ratio of molar masses water/dry air [1] (rounded, as used by the model)
 COSMIC_BACKGROUND_TEMPERATURE = 2.725  # T_cosmic [K]

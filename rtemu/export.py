@@ -237,15 +237,15 @@ def _tropopause_arrays(envelope, pressure_hpa) -> dict:
 
 
 def _tropopause_json(shared: dict, grid) -> dict | None:
-    """The tropopause check as metadata (None when the bundle has none)."""
+    """The tropopause check as metadata (None when the bundle has none), read from the
+    arrays the graph uses (an updated bundle keeps its first training's)."""
     if "tropopause_lower" not in shared:
         return None
-    lay = _atm.tropopause_search_layers(grid)
+    levels = np.argmax(shared["tropopause_pick"], axis=0).reshape(3, -1)  # base | next | deep
     return {
         "lapse_rate_k_per_km": _atm.TROPOPAUSE_LAPSE_RATE,
-        "base_pressure_hpa": [float(grid[k]) for k in lay["base"]],
-        "next_pressure_hpa": [float(grid[k]) for k in lay["next"]],
-        "deep_pressure_hpa": [float(grid[k]) for k in lay["deep"]],
+        **{f"{key}_pressure_hpa": [float(grid[k]) for k in rows]
+           for key, rows in zip(("base", "next", "deep"), levels)},
         "lower_k": [float(v) for v in shared["tropopause_lower"]],
         "upper_k": [float(v) for v in shared["tropopause_upper"]],
         "rule": "the tropopause is the first base level (from the surface up) where the mean lapse rate up "

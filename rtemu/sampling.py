@@ -41,7 +41,7 @@ from rtemu import flags, physics
 from rtemu._io import atomic_path, write_text_atomic
 from rtemu._units import unit_conversion
 from rtemu._warnings import RtemuWarning
-from rtemu.constants import EPSILON, STANDARD_GRAVITY
+from rtemu.constants import DRY_AIR_GAS_CONSTANT, EPSILON, STANDARD_GRAVITY
 from rtemu.instrument import Instrument, load_instrument
 
 __all__ = [
@@ -62,8 +62,15 @@ BLOCK_SIZE = 1024
 #: Largest profile index + 1 (scipy's Sobol' sequences hold 2**30 points).
 MAX_PROFILES = 2**30
 
-_DRY_AIR_GAS_CONSTANT = 287.05  # R_d [J kg-1 K-1] (dry-air value in common use)
-_KAPPA_PER_LAPSE = _DRY_AIR_GAS_CONSTANT / STANDARD_GRAVITY  # d ln T / d ln p per (K m-1)
+_KAPPA_PER_LAPSE = DRY_AIR_GAS_CONSTANT / STANDARD_GRAVITY  # d ln T / d ln p per (K m-1)
+
+# Tropopause temperature follows tropopause pressure: a line in ln p through the US 1976
+# tropopause (U.S. Standard Atmosphere 1976, 11 km': 226.32 hPa, 216.65 K) rising 29 K per
+# e-fold of pressure, which puts a 100 hPa tropopause at 193 K (tropical tropopause about
+# 190-195 K: textbook value, from memory). Generator v3 drew T_t anywhere in 180-240 K
+# whatever p_t: a polar column warmed 30 K throughout was then a state it drew itself, and
+# the emulator's envelope flag could not call it outside (DEVELOPERS.md, "Generator v4").
+_TROPOPAUSE_LINE = {"reference_hpa": 226.32, "reference_k": 216.65, "slope_k_per_ln_p": 29.0}
 
 # --- nominal envelope -------------------------------------------------------------------
 # Each entry: (low, high, units, meaning). All generator constants live here so that the
@@ -84,8 +91,9 @@ _RANGES = {
     "tropopause_temperature": (180.0, 240.0, "K", "further limited by the lapse-rate range and the "
                                "tropopause_temperature_offset band"),
     "tropopause_temperature_offset": (-8.0, 8.0, "K", "tropopause temperature minus the line "
-                                      "216.65 K + 29 K * ln(p_t / 226.32 hPa); where the lapse-rate range "
-                                      "does not reach the band, the lapse-rate limit nearest it"),
+                                      f"{_TROPOPAUSE_LINE['reference_k']:g} K + {_TROPOPAUSE_LINE['slope_k_per_ln_p']:g} "
+                                      f"K * ln(p_t / {_TROPOPAUSE_LINE['reference_hpa']:g} hPa); where the "
+                                      "lapse-rate range does not reach the band, the lapse-rate limit nearest it"),
     "tropospheric_lapse_rate": (2.0, 9.5, "K km-1", "constant lapse rate of the free troposphere"),
     "inversion_strength": (-2.0, 15.0, "K", "free-troposphere temperature extrapolated to the "
                            "surface minus surface air temperature (negative: superadiabatic layer)"),
@@ -108,13 +116,6 @@ _HUMIDITY_NOISE = {"logit_std": 0.7, "correlation_length_ln_p": 0.25}
 _STRATOSPHERIC_HUMIDITY_NOISE = {"ln_q_std": 0.15, "correlation_length_ln_p": 0.5}
 _STRATOSPHERIC_GRADIENT_TOP_HPA = 1.0  # [hPa]: where the drawn gradient is reached
 _EMISSIVITY_CHANNEL_STD = {"microwave": 0.03, "infrared": 0.005}
-# Tropopause temperature follows tropopause pressure: a line in ln p through the US 1976
-# tropopause (U.S. Standard Atmosphere 1976, 11 km': 226.32 hPa, 216.65 K) rising 29 K per e-fold of pressure, which
-# puts a 100 hPa tropopause at 193 K (tropical tropopause about 190-195 K: textbook value,
-# from memory). Generator v3 drew T_t anywhere in 180-240 K whatever p_t: a polar column
-# warmed 30 K throughout was then a state it drew itself, and the emulator's envelope flag
-# could not call it outside (DEVELOPERS.md, "Generator v4").
-_TROPOPAUSE_LINE = {"reference_hpa": 226.32, "reference_k": 216.65, "slope_k_per_ln_p": 29.0}
 _TRANSITION_WIDTH_LN_P = 0.1  # troposphere/stratosphere blend width [ln p]
 _US76_STRATOSPHERE_BASE = (54.7489, 1.10906)  # [hPa]: US 1976 20 km' and 47 km' levels
 _Q_FLOOR = 1e-7  # [kg kg-1]
