@@ -61,6 +61,7 @@ from rtemu.assim import qc as _qc
 from rtemu.assim._linalg import one_blas_thread
 from rtemu.assim._control import (
     control_bounds,
+    humidity_ceiling_slope,
     from_control,
     layout_for,
     read_columns,
@@ -82,6 +83,12 @@ INVALID_TRIAL = 2
 NO_OBSERVATIONS = 3
 STATUS_VALUES = np.array([CONVERGED, MAX_ITERATIONS, INVALID_TRIAL, NO_OBSERVATIONS], dtype=np.int8)
 STATUS_MEANINGS = "converged max_iterations invalid_trial no_observations"
+
+DEFAULT_MAX_ITER = 10
+DEFAULT_LM_DAMPING = 1.0
+DEFAULT_LM_FACTOR = 10.0
+DEFAULT_COST_TOL = 1e-3
+DEFAULT_STEP_TOL = 1e-2
 
 COST_CONVENTION = "J = 1/2 (x-xb)^T B^-1 (x-xb) + 1/2 (y-H(x))^T R^-1 (y-H(x))"
 
@@ -208,8 +215,34 @@ def _blocked(x, grad, cols, layout):
     return ((x >= hi - tol) & (grad < 0)) | ((x <= lo + tol) & (grad > 0))
 
 
+def _saturation_coupling(blocked, grad, cols, layout):
+    """Slope [k, n] of each blocked ln q limit with the temperature of its level [K-1].
+
+    The ln q ceiling of a saturated level moves with that level's temperature, so a step
+    that holds ln q fixed while T changes would leave the limit (and be clipped by the
+    projection): the optimum on a saturated level is only reached when the step keeps
+    ln q on its limit, d ln q = slope dT. Zero where nothing is coupled.
+    """
+    slope = np.zeros(blocked.shape)
+    lnq = layout.ln_humidity
+    rows = np.flatnonzero(blocked[:, lnq].any(axis=1))
+    if rows.size:
+        ceiling = humidity_ceiling_slope(cols.subset(rows))
+        # Only the upper limit moves with T; blocked with g < 0 means held at it.
+        at_upper = blocked[rows, lnq] & (grad[rows, lnq] < 0)
+        slope[rows, lnq] = np.where(at_upper, ceiling, 0.0)
+    return slope
+
+
+def _partner(layout):
+    """Index of the element each control element is coupled to: ln q[i] -> T[i], else itself."""
+    partner = np.arange(layout.size)
+    partner[layout.ln_humidity] = np.arange(layout.n_levels)
+    return partner
+
+
 @one_blas_thread
-def _step_system(grad, cov: _Covariance, idx, h_tilde, blocked, hb=None):
+def _step_system(grad, cov: _Covariance, idx, h_tilde, blocked, hb=None, coupling=None):
     """The parts of the Newton step from one iterate that do not depend on the damping.
 
     Sherman-Morrison-Woodbury identity (behind Rodgers 2000 eqs. 2.44-2.45, from memory):
@@ -217,14 +250,18 @@ def _step_system(grad, cov: _Covariance, idx, h_tilde, blocked, hb=None):
         [s B^-1 + H~^T H~]^-1 g = (B g - B H~^T w) / s,  (H~ B H~^T + s I) w = H~ B g,
 
     so only C x C systems are solved (C channels), whatever the damping s. Holding the
-    blocked elements b fixed leaves the free ones f with the prior precision
-    (B^-1)_ff = (B_ff - B_fb B_bb^-1 B_bf)^-1 (block inversion, Schur complement): the
-    same formula with B' = B - B_:b B_bb^-1 B_b: (zero on the blocked rows and columns)
-    in place of B gives the step over f and 0 on b. Only the k blocked rows of B enter,
-    as corrections of size n k C per column; no n x n system is formed.
+    blocked elements fixed is a set of linear constraints C^T dx = 0 (one column c per
+    blocked element: its unit vector, or with ``coupling`` e_lnq - slope e_T for a ln q
+    held on a saturation limit that moves with T). The step over the remaining subspace
+    is the same formula with B' = B - B C (C^T B C)^-1 C^T B (B conditioned on the
+    constraints; for unit vectors the Schur complement of the blocked elements) in
+    place of B. Only the k blocked rows C^T B enter, as corrections of size n k C per
+    column; no n x n system is formed.
 
     Parameters: ``grad`` g [k, n], ``h_tilde`` H~ = R^-1/2 H [k, C, n] and ``blocked``
-    [k, n] of the columns ``idx``; ``hb`` = H~ B if already known (it is overwritten).
+    [k, n] of the columns ``idx``; ``hb`` = H~ B if already known (it is overwritten);
+    ``coupling`` = (slope [k, n] [K-1], partner [n]) from :func:`_saturation_coupling`
+    and :func:`_partner`, or None (plain bounds).
     Returns B' g [k, n], H~ B' g [k, C], H~ B' [k, C, n] and H~ B' H~^T [k, C, C].
     """
     if hb is None:
@@ -235,37 +272,175 @@ def _step_system(grad, cov: _Covariance, idx, h_tilde, blocked, hb=None):
     rows = np.flatnonzero(blocked.any(axis=1))
     if rows.size == 0:
         return bg, hbg, hb, gmat
-    # Blocked indices first, padded to the largest count with identity rows of B_bb.
+    # Blocked indices first, padded to the largest count with identity rows of C^T B C.
     blk = blocked[rows]
     k = int(blk.sum(axis=1).max())
     order = np.argsort(~blk, axis=1, kind="stable")[:, :k]
     mask = np.take_along_axis(blk, order, axis=1)
-    b_rows = cov.rows(order, idx[rows]) * mask[:, :, None]  # B_b: [r, k, n]
-    b_bb = np.take_along_axis(b_rows, order[:, None, :], axis=2) * mask[:, None, :]
-    b_bb = b_bb + np.eye(k) * ~mask[:, None, :]
-    hb_b = np.take_along_axis(hb[rows], order[:, None, :], axis=2) * mask[:, None, :]  # H~ B_:b
-    bg_b = np.take_along_axis(bg[rows], order, axis=1) * mask  # B_b: g
-    z = np.linalg.solve(b_bb, np.concatenate([_t(hb_b), bg_b[:, :, None]], axis=2))
-    z_h, z_g = z[:, :, :-1], z[:, :, -1:]  # B_bb^-1 B_b: H~^T, B_bb^-1 B_b: g
+    sl = pair = None
+    if coupling is not None:
+        slope, partner = coupling
+        sl = np.take_along_axis(slope[rows], order, axis=1) * mask
+        if sl.any():
+            pair = partner[order]
+        else:
+            sl = None
+
+    def constrained(a, axis):
+        """c^T a along ``axis`` for every constraint c (a[order] - slope a[pair])."""
+        shape = [1] * a.ndim
+        shape[0], shape[axis] = len(rows), k
+        out = np.take_along_axis(a, order.reshape(shape), axis=axis)
+        if sl is not None:
+            out = out - sl.reshape(shape) * np.take_along_axis(a, pair.reshape(shape), axis=axis)
+        return out * mask.reshape(shape)
+
+    b_rows = cov.rows(order, idx[rows])
+    if sl is not None:
+        b_rows = b_rows - sl[:, :, None] * cov.rows(pair, idx[rows])
+    b_rows = b_rows * mask[:, :, None]  # C^T B [r, k, n]
+    b_cc = constrained(b_rows, 2) + np.eye(k) * ~mask[:, None, :]  # C^T B C
+    hb_c = constrained(hb[rows], 2)  # H~ B C [r, C, k]
+    bg_c = constrained(bg[rows], 1)  # C^T B g [r, k]
+    z = np.linalg.solve(b_cc, np.concatenate([_t(hb_c), bg_c[:, :, None]], axis=2))
+    z_h, z_g = z[:, :, :-1], z[:, :, -1:]  # (C^T B C)^-1 C^T B H~^T, (C^T B C)^-1 C^T B g
     bg[rows] -= (_t(z_g) @ b_rows)[:, 0]
-    hbg[rows] -= (_t(z_h) @ bg_b[:, :, None])[..., 0]
+    hbg[rows] -= (_t(z_h) @ bg_c[:, :, None])[..., 0]
     hb[rows] -= _t(z_h) @ b_rows
-    gmat[rows] -= hb_b @ z_h
+    gmat[rows] -= hb_c @ z_h
     return bg, hbg, hb, gmat
 
 
 @one_blas_thread
-def _damped_step(system, scale, blocked):
-    """[scale B^-1 + H~^T H~]^-1 g over the free elements, blocked elements 0 [k, n].
+def _damped_step(system, scale, blocked, coupling=None):
+    """[scale B^-1 + H~^T H~]^-1 g over the free subspace [k, n].
 
-    ``system`` is the output of :func:`_step_system` for these columns.
+    ``system`` is the output of :func:`_step_system` for these columns (with the same
+    ``coupling``). Blocked elements get exactly 0, or slope x the step of their partner
+    when coupled (the formula gives that up to rounding).
     """
     bg, hbg, hb, gmat = system
     inner = gmat + scale[:, None, None] * np.eye(gmat.shape[-1])
     w = np.linalg.solve(inner, hbg[..., None])  # [k, C, 1]
     step = (bg - (_t(w) @ hb)[:, 0]) / scale[:, None]
     step[blocked] = 0.0
+    if coupling is not None:
+        slope, partner = coupling
+        coupled = slope != 0
+        if coupled.any():
+            step[coupled] = (slope * step[:, partner])[coupled]
     return step
+
+
+# -- settings and iteration state -----------------------------------------------------------
+@dataclasses.dataclass(frozen=True)
+class _Settings:
+    """The options of :func:`var1d`, checked once (see its docstring)."""
+
+    max_iter: int = DEFAULT_MAX_ITER
+    lm_damping: float | None = DEFAULT_LM_DAMPING
+    lm_factor: float = DEFAULT_LM_FACTOR
+    qc_threshold: float | None = _qc.DEFAULT_THRESHOLD
+    control_emissivity: bool = False
+    accept_flags: int = 0
+    cost_tol: float = DEFAULT_COST_TOL
+    step_tol: float = DEFAULT_STEP_TOL
+    diagnostic_matrices: bool = True
+
+    def __post_init__(self):
+        if self.max_iter < 0:
+            raise ValueError(f"max_iter must be >= 0, got {self.max_iter}")
+        if self.gamma0 < 0 or not np.isfinite(self.gamma0):
+            raise ValueError(f"lm_damping must be >= 0 or None, got {self.lm_damping}")
+        if self.damped and not self.lm_factor > 1:
+            raise ValueError(f"lm_factor must be > 1, got {self.lm_factor}")
+        for name in ("cost_tol", "step_tol"):
+            value = getattr(self, name)
+            if not (np.isfinite(value) and value >= 0):
+                raise ValueError(f"{name} must be finite and >= 0, got {value}")
+
+    @property
+    def gamma0(self) -> float:
+        return 0.0 if self.lm_damping is None else float(self.lm_damping)
+
+    @property
+    def damped(self) -> bool:
+        return self.gamma0 > 0
+
+    def attrs(self, tolerated_bits: int) -> dict:
+        """The settings as attributes of the diagnostics dataset."""
+        return dict(
+            max_iter=self.max_iter, lm_damping=self.gamma0, lm_factor=self.lm_factor,
+            qc_threshold="none" if self.qc_threshold is None else float(self.qc_threshold),
+            accept_flags=tolerated_bits, cost_tol=self.cost_tol, step_tol=self.step_tol,
+            control_emissivity=int(self.control_emissivity),
+        )
+
+
+@dataclasses.dataclass
+class _Problem:
+    """What does not change during the minimisation."""
+
+    operator: object
+    channels: tuple
+    layout: object
+    xb: np.ndarray  # [N, n] background control vectors
+    cov: _Covariance
+    y: np.ndarray  # [N, C] [K], NaN missing
+    r: np.ndarray  # [C] [K2]
+    tolerated_bits: int
+    partner: np.ndarray  # [n], see _partner
+    cols_b: object  # Columns of the background
+
+    def run(self, cols):
+        """Operator output at ``cols`` with the tolerated flag bits cleared, and H [k, C, n]."""
+        raw = run_operator(self.operator, cols, self.channels, jacobian=True)
+        raw["flag"] = raw["flag"] & ~self.tolerated_bits
+        return raw, control_jacobian(raw, cols, self.layout)
+
+
+@dataclasses.dataclass
+class _Screening:
+    """The first-guess check: which observations are used, and with what weight."""
+
+    h_xb: np.ndarray  # [N, C] H(xb) [K]
+    departure_std: np.ndarray  # [N, C] sqrt(H B H^T + R)_ii [K]
+    reason: np.ndarray  # [N, C] qc reason codes
+    used: np.ndarray  # [N, C] bool
+    weight: np.ndarray  # [N, C] R^-1 of used observations, else 0 [K-2]
+    sqrt_w: np.ndarray  # [N, C] [K-1]
+    n_used: np.ndarray  # [N]
+
+
+@dataclasses.dataclass
+class _Iterates:
+    """Per-column state at the current (last accepted) iterate, and the histories.
+
+    The observation side is kept as H~ = R^-1/2 H (rows of unused observations zero);
+    ``system`` holds what the steps from the iterate need apart from the damping.
+    """
+
+    x: np.ndarray  # [N, n]
+    cols: object  # Columns at x
+    hx: np.ndarray  # [N, C] H(x), 0 where unused [K]
+    h_tilde: np.ndarray  # [N, C, n]
+    binv_dx: np.ndarray  # [N, n] B^-1 (x - xb)
+    cost_now: np.ndarray  # [N]
+    gamma: np.ndarray  # [N]
+    grad: np.ndarray  # [N, n]
+    blocked: np.ndarray  # [N, n]
+    slope: np.ndarray  # [N, n] saturation coupling [K-1]
+    system: list  # 4 arrays, see _step_system
+    d2: np.ndarray  # [N] g^T S g at the iterate
+    active: np.ndarray  # [N] still iterating
+    status: np.ndarray  # [N]
+    n_iter: np.ndarray  # [N]
+    n_rejected: np.ndarray  # [N]
+    cost: np.ndarray  # [N, max_iter + 1] accepted cost per iteration
+    trial_cost: np.ndarray  # [N, max_iter + 1]
+
+    def coupling(self, idx, problem):
+        return self.slope[idx], problem.partner
 
 
 def var1d(
@@ -276,14 +451,14 @@ def var1d(
     b_matrix,
     observation_error=None,
     emulator_error=None,
-    max_iter: int = 10,
-    lm_damping: float | None = 1.0,
-    lm_factor: float = 10.0,
+    max_iter: int = DEFAULT_MAX_ITER,
+    lm_damping: float | None = DEFAULT_LM_DAMPING,
+    lm_factor: float = DEFAULT_LM_FACTOR,
     qc_threshold: float | None = _qc.DEFAULT_THRESHOLD,
     control_emissivity: bool = False,
     accept_flags: int = 0,
-    cost_tol: float = 1e-3,
-    step_tol: float = 1e-2,
+    cost_tol: float = DEFAULT_COST_TOL,
+    step_tol: float = DEFAULT_STEP_TOL,
     diagnostic_matrices: bool = True,
 ) -> Var1DResult:
     """1D-Var analysis of a batch of columns.
@@ -331,154 +506,153 @@ def var1d(
     -------
     Var1DResult
     """
-    channels = operator_channels(operator)
-    if max_iter < 0:
-        raise ValueError(f"max_iter must be >= 0, got {max_iter}")
-    gamma0 = 0.0 if lm_damping is None else float(lm_damping)
-    if gamma0 < 0 or not np.isfinite(gamma0):
-        raise ValueError(f"lm_damping must be >= 0 or None, got {lm_damping}")
-    damped = gamma0 > 0
-    if damped and not lm_factor > 1:
-        raise ValueError(f"lm_factor must be > 1, got {lm_factor}")
-    tolerated_bits = _qc.check_accept_flags(accept_flags)
-
-    cols_b = read_columns(background, ("profile",), channels, "background")
-    layout = layout_for(cols_b, control_emissivity)
-    xb = to_control(cols_b, layout, "background")
-    n_prof, n_ctl = xb.shape
-    cov = _Covariance(check_b_matrix(b_matrix, layout, n_prof))
-    y = read_observations(observations, channels, n_prof, background.coords.get("profile"))
-    r = observation_error_variance(operator, observation_error, emulator_error)
-    everything = np.arange(n_prof)
-
-    # First guess and quality control.
-    raw = run_operator(operator, cols_b, channels, jacobian=True)
-    raw["flag"] = raw["flag"] & ~tolerated_bits
-    h_xb = raw["bt"]
-    h = control_jacobian(raw, cols_b, layout)
-    finite_h = np.isfinite(h).all(axis=-1)
-    h[~finite_h] = 0.0
-    hb_xb = cov.rows_times(h, everything)  # H B
-    departure_std = np.sqrt(np.einsum("pcn,pcn->pc", h, hb_xb) + r)  # sqrt(H B H^T + R)_ii
-    flag = np.where(finite_h, raw["flag"], raw["flag"] | 1)
-    reason = _qc.screen(y, h_xb, flag, departure_std, qc_threshold)
-    used = reason == _qc.USED
-    weight = np.where(used, 1.0 / r, 0.0)
-    sqrt_w = np.sqrt(weight)
-    n_used = used.sum(axis=1)
-
-    # Per-column state at the current iterate. The observation side is kept as
-    # H~ = R^-1/2 H (rows of unused observations zero), and everything the steps from an
-    # iterate need except the damping (the step system) is built once per iterate.
-    x = xb.copy()
-    cols = cols_b
-    hx = np.where(used, h_xb, 0.0)
-    h_tilde = h * sqrt_w[..., None]
-    del h
-    binv_dx = np.zeros_like(x)  # B^-1 (x - xb)
-    cost_now = _observation_cost(hx, y, weight)
-    cost = np.full((n_prof, max_iter + 1), np.nan)
-    trial_cost = np.full((n_prof, max_iter + 1), np.nan)
-    cost[:, 0] = trial_cost[:, 0] = cost_now
-    gamma = np.full(n_prof, gamma0)
-    status = np.full(n_prof, MAX_ITERATIONS, dtype=np.int8)
-    n_iter = np.zeros(n_prof, dtype=np.int64)
-    n_rejected = np.zeros(n_prof, dtype=np.int64)
-    grad = np.zeros_like(x)
-    blocked = np.zeros(x.shape, dtype=bool)
-    system = (np.zeros_like(x), np.zeros(used.shape), np.zeros_like(h_tilde),
-              np.zeros(used.shape + used.shape[1:]))
-
-    def new_iterate(idx, hb=None):
-        """Gradient, active set and step system at the iterates of ``idx``; returns d^2."""
-        grad[idx] = _gradient(binv_dx[idx], h_tilde[idx], hx[idx], y[idx], sqrt_w[idx])
-        blocked[idx] = _blocked(x[idx], grad[idx], cols.subset(idx), layout)
-        parts = _step_system(grad[idx], cov, idx, h_tilde[idx], blocked[idx], hb)
-        for whole, part in zip(system, parts):
-            whole[idx] = part
-        # d^2 = g^T (B^-1 + H^T R^-1 H)^-1 g of the undamped step over the free elements
-        undamped = _damped_step(parts, np.ones(len(idx)), blocked[idx])
-        return np.einsum("pn,pn->p", grad[idx], undamped)
-
-    status[n_used == 0] = NO_OBSERVATIONS
-    active = n_used > 0
-    idx = np.flatnonzero(active)
-    if idx.size:
-        done = new_iterate(idx, hb_xb[idx] * sqrt_w[idx, :, None]) < step_tol * n_ctl
-        status[idx[done]] = CONVERGED
-        active[idx[done]] = False
-    del hb_xb
-
-    for it in range(1, max_iter + 1):
-        idx = np.flatnonzero(active)
+    settings = _Settings(
+        max_iter=max_iter, lm_damping=lm_damping, lm_factor=lm_factor, qc_threshold=qc_threshold,
+        control_emissivity=control_emissivity, accept_flags=accept_flags, cost_tol=cost_tol,
+        step_tol=step_tol, diagnostic_matrices=diagnostic_matrices,
+    )
+    problem = _read_problem(operator, background, observations, b_matrix, observation_error,
+                            emulator_error, settings)
+    screening, state = _first_guess(problem, settings)
+    for it in range(1, settings.max_iter + 1):
+        idx = np.flatnonzero(state.active)
         if idx.size == 0:
             break
-        dx = -_damped_step([part[idx] for part in system], 1.0 + gamma[idx], blocked[idx])
-        trial_cols, trial_x = from_control(x[idx] + dx, cols.subset(idx), layout)
-        raw = run_operator(operator, trial_cols, channels, jacobian=True)
-        raw["flag"] = raw["flag"] & ~tolerated_bits
-        trial_h = control_jacobian(raw, trial_cols, layout)
-        u = used[idx]
-        valid = (
-            (np.isfinite(raw["bt"]) | ~u).all(axis=1)
-            & ((raw["flag"] == 0) | ~u).all(axis=1)
-            & (np.isfinite(trial_h).all(axis=-1) | ~u).all(axis=1)
-        )
-        trial_hx = np.where(u, raw["bt"], 0.0)
-        trial_dxb = trial_x - xb[idx]
-        trial_binv_dx = cov.inv_times(trial_dxb, idx)
-        tjb = 0.5 * np.einsum("pn,pn->p", trial_dxb, trial_binv_dx)
-        tjo = _observation_cost(trial_hx, y[idx], weight[idx])
-        tj = np.where(valid, tjb + tjo, np.nan)
-        trial_cost[idx, it] = tj
-        n_iter[idx] = it
-        if damped:
-            accept = valid & (tj <= cost_now[idx])
-        else:
-            accept = valid
-            stopped = idx[~valid]
-            status[stopped] = INVALID_TRIAL
-            active[stopped] = False
-
-        acc = idx[accept]
-        decrease = cost_now[acc] - tj[accept]
-        x[acc] = trial_x[accept]
-        binv_dx[acc] = trial_binv_dx[accept]
-        hx[acc] = trial_hx[accept]
-        # Unused rows may hold non-finite values: select first (inf * 0 is NaN).
-        h_tilde[acc] = np.where(u[accept, :, None], trial_h[accept], 0.0) * sqrt_w[acc, :, None]
-        cost_now[acc] = tj[accept]
-        cols = _replace_columns(cols, acc, trial_cols.subset(np.flatnonzero(accept)))
-        gamma[acc] /= lm_factor if damped else 1.0
-        rej = idx[~accept]
-        if damped:
-            gamma[rej] *= lm_factor
-            n_rejected[rej] += 1
-        cost[idx, it] = cost_now[idx]
-
-        if acc.size:
-            d2 = new_iterate(acc)
-            small_decrease = (decrease >= 0) & (decrease < cost_tol * np.maximum(n_used[acc], 1))
-            done = (d2 < step_tol * n_ctl) | (small_decrease & (d2 < n_ctl))
-            status[acc[done]] = CONVERGED
-            active[acc[done]] = False
-
-    analysis = write_columns(background, cols, ("profile",), control_emissivity)
-    diagnostics = _diagnostics(
-        background=background, channels=channels, layout=layout, cov=cov,
-        h_tilde=h_tilde, system=system, blocked=blocked, y=y, h_xb=h_xb, hx=hx, used=used, reason=reason,
-        departure_std=departure_std, r=r, cost_background=0.5 * np.einsum("pn,pn->p", x - xb, binv_dx),
-        cost_observation=_observation_cost(hx, y, weight), cost=cost, trial_cost=trial_cost,
-        status=status, n_iter=n_iter, n_rejected=n_rejected, gamma=gamma,
-        diagnostic_matrices=diagnostic_matrices, settings=dict(
-            max_iter=max_iter, lm_damping=gamma0, lm_factor=lm_factor,
-            qc_threshold="none" if qc_threshold is None else float(qc_threshold),
-            accept_flags=tolerated_bits,
-            cost_tol=cost_tol, step_tol=step_tol,
-            control_emissivity=int(control_emissivity),
-        ),
-    )
+        _iterate(problem, screening, state, idx, it, settings)
+    analysis = write_columns(background, state.cols, ("profile",), settings.control_emissivity)
+    diagnostics = _diagnostics(background, problem, screening, state, settings)
     return Var1DResult(analysis=analysis, diagnostics=diagnostics)
+
+
+def _read_problem(operator, background, observations, b_matrix, observation_error, emulator_error,
+                  settings: _Settings) -> _Problem:
+    channels = operator_channels(operator)
+    tolerated_bits = _qc.check_accept_flags(settings.accept_flags)
+    cols_b = read_columns(background, ("profile",), channels, "background")
+    layout = layout_for(cols_b, settings.control_emissivity)
+    xb = to_control(cols_b, layout, "background")
+    cov = _Covariance(check_b_matrix(b_matrix, layout, xb.shape[0]))
+    y = read_observations(observations, channels, xb.shape[0], background.coords.get("profile"))
+    r = observation_error_variance(operator, observation_error, emulator_error)
+    return _Problem(operator=operator, channels=channels, layout=layout, xb=xb, cov=cov, y=y, r=r,
+                    tolerated_bits=tolerated_bits, partner=_partner(layout), cols_b=cols_b)
+
+
+def _first_guess(problem: _Problem, settings: _Settings) -> tuple[_Screening, _Iterates]:
+    """Operator call at the background, quality control, and the first iterate."""
+    cols_b, cov = problem.cols_b, problem.cov
+    n_prof = len(problem.xb)
+    everything = np.arange(n_prof)
+    raw, h = problem.run(cols_b)
+    finite_h = np.isfinite(h).all(axis=-1)
+    h[~finite_h] = 0.0
+    hb = cov.rows_times(h, everything)  # H B
+    departure_std = np.sqrt(np.einsum("pcn,pcn->pc", h, hb) + problem.r)  # sqrt(H B H^T + R)_ii
+    flag = np.where(finite_h, raw["flag"], raw["flag"] | 1)
+    reason = _qc.screen(problem.y, raw["bt"], flag, departure_std, settings.qc_threshold)
+    used = reason == _qc.USED
+    weight = np.where(used, 1.0 / problem.r, 0.0)
+    sqrt_w = np.sqrt(weight)
+    screening = _Screening(h_xb=raw["bt"], departure_std=departure_std, reason=reason, used=used,
+                           weight=weight, sqrt_w=sqrt_w, n_used=used.sum(axis=1))
+
+    hx = np.where(used, raw["bt"], 0.0)
+    h *= sqrt_w[..., None]
+    cost_now = _observation_cost(hx, problem.y, weight)
+    cost = np.full((n_prof, settings.max_iter + 1), np.nan)
+    trial_cost = cost.copy()
+    cost[:, 0] = trial_cost[:, 0] = cost_now
+    x = problem.xb.copy()
+    state = _Iterates(
+        x=x, cols=cols_b, hx=hx, h_tilde=h, binv_dx=np.zeros_like(x), cost_now=cost_now,
+        gamma=np.full(n_prof, settings.gamma0), grad=np.zeros_like(x),
+        blocked=np.zeros(x.shape, dtype=bool), slope=np.zeros_like(x),
+        system=[np.zeros_like(x), np.zeros(used.shape), np.zeros_like(h), np.zeros(used.shape + used.shape[1:])],
+        d2=np.full(n_prof, np.nan), active=screening.n_used > 0,
+        status=np.where(screening.n_used > 0, MAX_ITERATIONS, NO_OBSERVATIONS).astype(np.int8),
+        n_iter=np.zeros(n_prof, dtype=np.int64), n_rejected=np.zeros(n_prof, dtype=np.int64),
+        cost=cost, trial_cost=trial_cost,
+    )
+    idx = np.flatnonzero(state.active)
+    if idx.size:
+        _new_iterate(problem, screening, state, idx, hb[idx] * sqrt_w[idx, :, None])
+        _stop(state, idx[state.d2[idx] < settings.step_tol * problem.xb.shape[1]], CONVERGED)
+    return screening, state
+
+
+def _new_iterate(problem, screening, state: _Iterates, idx, hb=None):
+    """Gradient, active set, step system and d^2 at the iterates of ``idx``."""
+    grad = _gradient(state.binv_dx[idx], state.h_tilde[idx], state.hx[idx], problem.y[idx],
+                     screening.sqrt_w[idx])
+    cols = state.cols.subset(idx)
+    blocked = _blocked(state.x[idx], grad, cols, problem.layout)
+    slope = _saturation_coupling(blocked, grad, cols, problem.layout)
+    coupling = (slope, problem.partner)
+    parts = _step_system(grad, problem.cov, idx, state.h_tilde[idx], blocked, hb, coupling)
+    state.grad[idx], state.blocked[idx], state.slope[idx] = grad, blocked, slope
+    for whole, part in zip(state.system, parts):
+        whole[idx] = part
+    # d^2 = g^T (B^-1 + H^T R^-1 H)^-1 g of the undamped step over the free subspace
+    undamped = _damped_step(parts, np.ones(len(idx)), blocked, coupling)
+    state.d2[idx] = np.einsum("pn,pn->p", grad, undamped)
+
+
+def _stop(state: _Iterates, columns, status):
+    state.status[columns] = status
+    state.active[columns] = False
+
+
+def _iterate(problem, screening, state: _Iterates, idx, it, settings: _Settings):
+    """One damped step from the iterates of ``idx``: one operator call, accept or reject."""
+    step = _damped_step([part[idx] for part in state.system], 1.0 + state.gamma[idx],
+                        state.blocked[idx], state.coupling(idx, problem))
+    trial_cols, trial_x = from_control(state.x[idx] - step, state.cols.subset(idx), problem.layout)
+    raw, trial_h = problem.run(trial_cols)
+    u = screening.used[idx]
+    valid = (
+        (np.isfinite(raw["bt"]) | ~u).all(axis=1)
+        & ((raw["flag"] == 0) | ~u).all(axis=1)
+        & (np.isfinite(trial_h).all(axis=-1) | ~u).all(axis=1)
+    )
+    trial_hx = np.where(u, raw["bt"], 0.0)
+    trial_dxb = trial_x - problem.xb[idx]
+    trial_binv_dx = problem.cov.inv_times(trial_dxb, idx)
+    tj = 0.5 * np.einsum("pn,pn->p", trial_dxb, trial_binv_dx)
+    tj += _observation_cost(trial_hx, problem.y[idx], screening.weight[idx])
+    tj = np.where(valid, tj, np.nan)
+    state.trial_cost[idx, it] = tj
+    state.n_iter[idx] = it
+    if settings.damped:
+        accept = valid & (tj <= state.cost_now[idx])
+    else:
+        accept = valid
+        _stop(state, idx[~valid], INVALID_TRIAL)
+
+    acc = idx[accept]
+    decrease = state.cost_now[acc] - tj[accept]
+    state.x[acc] = trial_x[accept]
+    state.binv_dx[acc] = trial_binv_dx[accept]
+    state.hx[acc] = trial_hx[accept]
+    # Unused rows may hold non-finite values: select first (inf * 0 is NaN).
+    state.h_tilde[acc] = np.where(u[accept, :, None], trial_h[accept], 0.0) * screening.sqrt_w[acc, :, None]
+    state.cost_now[acc] = tj[accept]
+    state.cols = _replace_columns(state.cols, acc, trial_cols.subset(np.flatnonzero(accept)))
+    if settings.damped:
+        state.gamma[acc] /= settings.lm_factor
+        rej = idx[~accept]
+        state.gamma[rej] *= settings.lm_factor
+        state.n_rejected[rej] += 1
+    state.cost[idx, it] = state.cost_now[idx]
+    if acc.size:
+        _new_iterate(problem, screening, state, acc)
+        _stop(state, acc[_converged(state.d2[acc], decrease, screening.n_used[acc],
+                                    problem.xb.shape[1], settings)], CONVERGED)
+
+
+def _converged(d2, decrease, n_used, n_ctl, settings: _Settings):
+    """Convergence at accepted iterates (see the module docstring)."""
+    small_decrease = (decrease >= 0) & (decrease < settings.cost_tol * np.maximum(n_used, 1))
+    return (d2 < settings.step_tol * n_ctl) | (small_decrease & (d2 < n_ctl))
 
 
 def _replace_columns(cols, index, new):
@@ -531,10 +705,17 @@ def _analysis_matrices(cov: _Covariance, h_tilde, system, blocked, matrices: boo
     return diag_a, s_diag, kernel, s_hat
 
 
-def _diagnostics(*, background, channels, layout, cov, h_tilde, system, blocked, y, h_xb, hx, used,
-                 reason, departure_std, r, cost_background, cost_observation, cost, trial_cost,
-                 status, n_iter, n_rejected, gamma, diagnostic_matrices, settings) -> xr.Dataset:
-    diag_a, s_diag, kernel, s_hat = _analysis_matrices(cov, h_tilde, system, blocked, diagnostic_matrices)
+def _diagnostics(background, problem: _Problem, screening: _Screening, state: _Iterates,
+                 settings: _Settings) -> xr.Dataset:
+    layout, cov, channels = problem.layout, problem.cov, problem.channels
+    y, hx, used, r = problem.y, state.hx, screening.used, problem.r
+    h_xb, reason, departure_std = screening.h_xb, screening.reason, screening.departure_std
+    cost, trial_cost, status = state.cost, state.trial_cost, state.status
+    diagnostic_matrices = settings.diagnostic_matrices
+    cost_background = 0.5 * np.einsum("pn,pn->p", state.x - problem.xb, state.binv_dx)
+    cost_observation = _observation_cost(hx, y, screening.weight)
+    diag_a, s_diag, kernel, s_hat = _analysis_matrices(cov, state.h_tilde, state.system, state.blocked,
+                                                       diagnostic_matrices)
     groups = np.array(layout.groups)
     group_names = list(dict.fromkeys(layout.groups))
     dfs_by = np.stack([diag_a[:, groups == g].sum(axis=1) for g in group_names], axis=1)
@@ -566,9 +747,12 @@ def _diagnostics(*, background, channels, layout, cov, h_tilde, system, blocked,
         "converged": ("profile", np.isin(status, (CONVERGED, NO_OBSERVATIONS)),
                       {"long_name": "minimisation converged (or nothing to minimise)"}),
         "status": ("profile", status, status_attrs),
-        "n_iterations": ("profile", n_iter, {"long_name": "operator calls after the first guess"}),
-        "n_rejected_steps": ("profile", n_rejected, {"long_name": "Levenberg-Marquardt steps rejected"}),
-        "final_lm_damping": ("profile", gamma, {"long_name": "Levenberg-Marquardt gamma at the end", "units": "1"}),
+        "n_iterations": ("profile", state.n_iter, {"long_name": "operator calls after the first guess"}),
+        "n_rejected_steps": ("profile", state.n_rejected, {"long_name": "Levenberg-Marquardt steps rejected"}),
+        "final_lm_damping": ("profile", state.gamma, {"long_name": "Levenberg-Marquardt gamma at the end", "units": "1"}),
+        "step_size_d2": ("profile", state.d2, {
+            "long_name": "d^2 = g^T S g, the undamped Gauss-Newton step size at the analysis "
+                         "(NaN: no observations)", "units": "1"}),
         "n_used": ("profile", used.sum(axis=1), {"long_name": "observations used"}),
         "qc_reason": (pc, reason, _qc.reason_attrs()),
         "qc_count": ("qc_category", _qc.reason_counts(reason).values,
@@ -584,7 +768,7 @@ def _diagnostics(*, background, channels, layout, cov, h_tilde, system, blocked,
                 {"long_name": "degrees of freedom for signal, trace(A)", "units": "1"}),
         "dfs_by_variable": (("profile", "control_group"), dfs_by,
                             {"long_name": "partial trace of the averaging kernel per variable", "units": "1"}),
-        "background_error_std": (("profile", ROW), np.sqrt(cov.diagonal(len(h_tilde))),
+        "background_error_std": (("profile", ROW), np.sqrt(cov.diagonal(len(y))),
                                  {"long_name": "sqrt(diag(B))", "units": "K or 1 (see control_row)"}),
         "analysis_error_std": (("profile", ROW), np.sqrt(s_diag),
                                {"long_name": "sqrt(diag(S)), S analysis error covariance",
@@ -596,6 +780,6 @@ def _diagnostics(*, background, channels, layout, cov, h_tilde, system, blocked,
         data["analysis_error_covariance"] = (("profile", ROW, COL), s_hat, {
             "long_name": "analysis error covariance S = (B^-1 + H^T R^-1 H)^-1", "units": "K2, K or 1"})
     ds = xr.Dataset(data, coords=coords)
-    ds.attrs.update({f"setting_{k}": v for k, v in settings.items()})
+    ds.attrs.update({f"setting_{k}": v for k, v in settings.attrs(problem.tolerated_bits).items()})
     ds.attrs["cost_convention"] = COST_CONVENTION
     return ds
