@@ -85,10 +85,10 @@ STATUS_VALUES = np.array([CONVERGED, MAX_ITERATIONS, INVALID_TRIAL, NO_OBSERVATI
 STATUS_MEANINGS = "converged max_iterations invalid_trial no_observations"
 
 DEFAULT_MAX_ITER = 10
-DEFAULT_LM_DAMPING = 1.0
+DEFAULT_LM_DAMPING = 0.1
 DEFAULT_LM_FACTOR = 10.0
-DEFAULT_COST_TOL = 1e-3
-DEFAULT_STEP_TOL = 1e-2
+DEFAULT_COST_TOL = 1e-5
+DEFAULT_STEP_TOL = 1e-6
 
 COST_CONVENTION = "J = 1/2 (x-xb)^T B^-1 (x-xb) + 1/2 (y-H(x))^T R^-1 (y-H(x))"
 
@@ -202,36 +202,59 @@ def _observation_cost(hx, y, weight):
     return 0.5 * np.einsum("pc,pc->p", weight, d * d)
 
 
-def _blocked(x, grad, cols, layout):
-    """Elements held at a physical limit: at the limit with descent (-g) pointing outward.
-
-    This is the active set of a projected Newton method (Bertsekas 1982, SIAM J. Control
-    Optim. 20, 221-246, doi:10.1137/0320018): those elements are fixed for the step and
-    left out of the convergence test, so that an optimum on a limit (e.g. saturation)
-    is recognised as one.
-    """
+def _at_limits(x, cols, layout):
+    """Elements at their upper and at their lower physical limit [k, n] (bool, bool)."""
     lo, hi = control_bounds(cols, layout)
     tol = 1e-9 * np.maximum(1.0, np.abs(x))
-    return ((x >= hi - tol) & (grad < 0)) | ((x <= lo + tol) & (grad > 0))
+    return x >= hi - tol, x <= lo + tol
 
 
-def _saturation_coupling(blocked, grad, cols, layout):
-    """Slope [k, n] of each blocked ln q limit with the temperature of its level [K-1].
+def _saturation_slope(at_upper, cols, layout):
+    """Slope [k, n] of the ln q limit with the temperature of its level [K-1], on the ln q
+    elements at their upper limit (0 elsewhere).
 
     The ln q ceiling of a saturated level moves with that level's temperature, so a step
     that holds ln q fixed while T changes would leave the limit (and be clipped by the
-    projection): the optimum on a saturated level is only reached when the step keeps
-    ln q on its limit, d ln q = slope dT. Zero where nothing is coupled.
+    projection, which raises J by more than the step gains): the optimum on a saturated
+    level is only reached when the step keeps ln q on its limit, d ln q = slope dT.
     """
-    slope = np.zeros(blocked.shape)
+    slope = np.zeros(at_upper.shape)
     lnq = layout.ln_humidity
-    rows = np.flatnonzero(blocked[:, lnq].any(axis=1))
+    rows = np.flatnonzero(at_upper[:, lnq].any(axis=1))
     if rows.size:
         ceiling = humidity_ceiling_slope(cols.subset(rows))
-        # Only the upper limit moves with T; blocked with g < 0 means held at it.
-        at_upper = blocked[rows, lnq] & (grad[rows, lnq] < 0)
-        slope[rows, lnq] = np.where(at_upper, ceiling, 0.0)
+        slope[rows, lnq] = np.where(at_upper[rows, lnq], ceiling, 0.0)
     return slope
+
+
+def _active_set(problem, idx, x, grad, cols, h_tilde, hb):
+    """Blocked elements, their coupling and the step system at the iterates of ``idx``.
+
+    The active set of a projected Newton method (Bertsekas 1982, SIAM J. Control Optim.
+    20, 221-246, doi:10.1137/0320018): an element at a limit is held there for the step
+    when descent (-g) points outward, and then also when the undamped step over the
+    remaining elements would leave the limit (for a ln q on its saturation limit: d ln q
+    > slope dT). Blocked elements are left out of the convergence test, so that an
+    optimum on a limit (e.g. saturation) is recognised as one.
+    """
+    at_hi, at_lo = _at_limits(x, cols, problem.layout)
+    slope_hi = _saturation_slope(at_hi, cols, problem.layout)
+    blocked = (at_hi & (grad < 0)) | (at_lo & (grad > 0))
+    system = list(_step_system(grad, problem.cov, idx, h_tilde, blocked, hb,
+                               (slope_hi * blocked, problem.partner)))
+    for _ in range(2):  # one more element blocked per pass is enough in practice
+        coupling = (slope_hi * blocked, problem.partner)
+        dx = -_damped_step(system, np.ones(len(idx)), blocked, coupling)
+        outward = ((at_hi & (dx - slope_hi * dx[:, problem.partner] > 0)) | (at_lo & (dx < 0))) & ~blocked
+        rows = np.flatnonzero(outward.any(axis=1))
+        if rows.size == 0:
+            break
+        blocked[rows] |= outward[rows]
+        parts = _step_system(grad[rows], problem.cov, idx[rows], h_tilde[rows], blocked[rows], None,
+                             (slope_hi[rows] * blocked[rows], problem.partner))
+        for whole, part in zip(system, parts):
+            whole[rows] = part
+    return blocked, slope_hi * blocked, system
 
 
 def _partner(layout):
@@ -260,7 +283,7 @@ def _step_system(grad, cov: _Covariance, idx, h_tilde, blocked, hb=None, couplin
 
     Parameters: ``grad`` g [k, n], ``h_tilde`` H~ = R^-1/2 H [k, C, n] and ``blocked``
     [k, n] of the columns ``idx``; ``hb`` = H~ B if already known (it is overwritten);
-    ``coupling`` = (slope [k, n] [K-1], partner [n]) from :func:`_saturation_coupling`
+    ``coupling`` = (slope [k, n] [K-1], partner [n]) from :func:`_active_set`
     and :func:`_partner`, or None (plain bounds).
     Returns B' g [k, n], H~ B' g [k, C], H~ B' [k, C, n] and H~ B' H~^T [k, C, C].
     """
@@ -584,16 +607,13 @@ def _new_iterate(problem, screening, state: _Iterates, idx, hb=None):
     """Gradient, active set, step system and d^2 at the iterates of ``idx``."""
     grad = _gradient(state.binv_dx[idx], state.h_tilde[idx], state.hx[idx], problem.y[idx],
                      screening.sqrt_w[idx])
-    cols = state.cols.subset(idx)
-    blocked = _blocked(state.x[idx], grad, cols, problem.layout)
-    slope = _saturation_coupling(blocked, grad, cols, problem.layout)
-    coupling = (slope, problem.partner)
-    parts = _step_system(grad, problem.cov, idx, state.h_tilde[idx], blocked, hb, coupling)
+    blocked, slope, parts = _active_set(problem, idx, state.x[idx], grad, state.cols.subset(idx),
+                                        state.h_tilde[idx], hb)
     state.grad[idx], state.blocked[idx], state.slope[idx] = grad, blocked, slope
     for whole, part in zip(state.system, parts):
         whole[idx] = part
     # d^2 = g^T (B^-1 + H^T R^-1 H)^-1 g of the undamped step over the free subspace
-    undamped = _damped_step(parts, np.ones(len(idx)), blocked, coupling)
+    undamped = _damped_step(parts, np.ones(len(idx)), blocked, (slope, problem.partner))
     state.d2[idx] = np.einsum("pn,pn->p", grad, undamped)
 
 
@@ -629,7 +649,6 @@ def _iterate(problem, screening, state: _Iterates, idx, it, settings: _Settings)
         _stop(state, idx[~valid], INVALID_TRIAL)
 
     acc = idx[accept]
-    decrease = state.cost_now[acc] - tj[accept]
     state.x[acc] = trial_x[accept]
     state.binv_dx[acc] = trial_binv_dx[accept]
     state.hx[acc] = trial_hx[accept]
@@ -643,16 +662,20 @@ def _iterate(problem, screening, state: _Iterates, idx, it, settings: _Settings)
         state.gamma[rej] *= settings.lm_factor
         state.n_rejected[rej] += 1
     state.cost[idx, it] = state.cost_now[idx]
+    n_ctl = problem.xb.shape[1]
+    # A rejected step leaves the iterate (and its d^2) as it was: it has converged when
+    # the cost no longer resolves the decrease still predicted there.
+    rej = idx[~accept & valid] if settings.damped else idx[:0]
+    _stop(state, rej[_unresolved(state.d2[rej], screening.n_used[rej], settings)], CONVERGED)
     if acc.size:
         _new_iterate(problem, screening, state, acc)
-        _stop(state, acc[_converged(state.d2[acc], decrease, screening.n_used[acc],
-                                    problem.xb.shape[1], settings)], CONVERGED)
+        _stop(state, acc[state.d2[acc] < settings.step_tol * n_ctl], CONVERGED)
 
 
-def _converged(d2, decrease, n_used, n_ctl, settings: _Settings):
-    """Convergence at accepted iterates (see the module docstring)."""
-    small_decrease = (decrease >= 0) & (decrease < settings.cost_tol * np.maximum(n_used, 1))
-    return (d2 < settings.step_tol * n_ctl) | (small_decrease & (d2 < n_ctl))
+def _unresolved(d2, n_used, settings: _Settings):
+    """The decrease the quadratic model still predicts, d^2 / 2, is below the cost
+    resolution cost_tol * max(m, 1) (m used observations)."""
+    return 0.5 * d2 < settings.cost_tol * np.maximum(n_used, 1)
 
 
 def _replace_columns(cols, index, new):
