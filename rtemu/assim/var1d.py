@@ -21,15 +21,22 @@ values for) a used channel; then gamma is divided by ``lm_factor``, otherwise th
 rejected and gamma multiplied by ``lm_factor``. With ``lm_damping=0`` (or None) this is
 plain Gauss-Newton (Rodgers 2000 eq. 5.9, from memory): every valid step is accepted.
 
-Convergence (tested at every accepted iterate, and at the background):
+Convergence (d^2 tested at every accepted iterate, and at the background):
 
 * step size: the undamped Gauss-Newton step from the iterate has
   d^2 = g^T S g < step_tol * n, with S = (B^-1 + H^T R^-1 H)^-1 (Rodgers 2000 section
-  5.6.3, "d^2 << n"); d^2 / 2 is also the cost decrease the quadratic model still
-  predicts; or
-* cost decrease: the accepted step lowered J by less than cost_tol * max(m, 1) while
-  d^2 < n (the second condition keeps a heavily damped, tiny step from passing for
-  convergence).
+  5.6.3, "d^2 << n"). For a linear problem d^2 = (x - xa)^T S^-1 (x - xa) exactly, so
+  the default 1e-6 puts the iterate within ~1e-3 sqrt(n) analysis standard deviations
+  of the optimum; or
+* cost resolution: a step from the iterate was rejected although the decrease the
+  quadratic model still predicts there, d^2 / 2, is below cost_tol * max(m, 1) for m
+  used observations (a float32 operator resolves J to ~1e-4; the default 1e-5 per
+  observation stops there instead of damping to max_iter).
+
+Active set: an element at a physical limit is held there when descent points outward
+or when the undamped step would leave the limit; a ln q held on its saturation limit
+moves with the temperature of its level (d ln q = d ln q_s/dT dT), so an optimum on a
+saturated level is reached, not approached by clipped steps.
 
 Diagnostics at the analysis, with H the Jacobian there (Rodgers 2000, ch. 2-3):
 
