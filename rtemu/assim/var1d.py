@@ -249,19 +249,19 @@ def _active_set(problem, idx, x, grad, cols, h_tilde, hb):
     blocked = (at_hi & (grad < 0)) | (at_lo & (grad > 0))
     system = list(_step_system(grad, problem.cov, idx, h_tilde, blocked, hb,
                                (slope_hi * blocked, problem.partner)))
+    dx = -_damped_step(system, np.ones(len(idx)), blocked, (slope_hi * blocked, problem.partner))
     for _ in range(2):  # one more element blocked per pass is enough in practice
-        coupling = (slope_hi * blocked, problem.partner)
-        dx = -_damped_step(system, np.ones(len(idx)), blocked, coupling)
         outward = ((at_hi & (dx - slope_hi * dx[:, problem.partner] > 0)) | (at_lo & (dx < 0))) & ~blocked
         rows = np.flatnonzero(outward.any(axis=1))
         if rows.size == 0:
             break
         blocked[rows] |= outward[rows]
-        parts = _step_system(grad[rows], problem.cov, idx[rows], h_tilde[rows], blocked[rows], None,
-                             (slope_hi[rows] * blocked[rows], problem.partner))
+        coupling = (slope_hi[rows] * blocked[rows], problem.partner)
+        parts = _step_system(grad[rows], problem.cov, idx[rows], h_tilde[rows], blocked[rows], None, coupling)
         for whole, part in zip(system, parts):
             whole[rows] = part
-    return blocked, slope_hi * blocked, system
+        dx[rows] = -_damped_step(parts, np.ones(rows.size), blocked[rows], coupling)
+    return blocked, slope_hi * blocked, system, dx
 
 
 def _partner(layout):
@@ -614,14 +614,13 @@ def _new_iterate(problem, screening, state: _Iterates, idx, hb=None):
     """Gradient, active set, step system and d^2 at the iterates of ``idx``."""
     grad = _gradient(state.binv_dx[idx], state.h_tilde[idx], state.hx[idx], problem.y[idx],
                      screening.sqrt_w[idx])
-    blocked, slope, parts = _active_set(problem, idx, state.x[idx], grad, state.cols.subset(idx),
-                                        state.h_tilde[idx], hb)
+    blocked, slope, parts, dx = _active_set(problem, idx, state.x[idx], grad, state.cols.subset(idx),
+                                            state.h_tilde[idx], hb)
     state.grad[idx], state.blocked[idx], state.slope[idx] = grad, blocked, slope
     for whole, part in zip(state.system, parts):
         whole[idx] = part
-    # d^2 = g^T (B^-1 + H^T R^-1 H)^-1 g of the undamped step over the free subspace
-    undamped = _damped_step(parts, np.ones(len(idx)), blocked, (slope, problem.partner))
-    state.d2[idx] = np.einsum("pn,pn->p", grad, undamped)
+    # d^2 = g^T (B^-1 + H^T R^-1 H)^-1 g = -g^T dx of the undamped step over the free subspace
+    state.d2[idx] = -np.einsum("pn,pn->p", grad, dx)
 
 
 def _stop(state: _Iterates, columns, status):
@@ -712,27 +711,27 @@ def _analysis_matrices(cov: _Covariance, h_tilde, system, blocked, matrices: boo
     and active set there: without blocked elements its H~ B and H~ B H~^T are the
     unconditioned ones and are reused.
     """
-    hb, gmat = system[2].copy(), system[3].copy()
+    hb, gmat = system[2], system[3]
     rows = np.flatnonzero(blocked.any(axis=1))
     if rows.size:
+        hb, gmat = hb.copy(), gmat.copy()
         hb[rows] = cov.rows_times(h_tilde[rows], rows)
         gmat[rows] = hb[rows] @ _t(h_tilde[rows])
-    # With L L^T = H~ B H~^T + I: G~^T = L^-T L^-1 H~ B and G~ H~ B = M^T M, M = L^-1 H~ B
-    # (C x C factors only; S = B - M^T M is symmetric up to the BLAS summation order,
-    # exactly so with OpenBLAS).
+    # With L L^T = H~ B H~^T + I, M = L^-1 H~ B and N = L^-1 H~: G~ = M^T L^-1,
+    # A = G~ H~ = M^T N and S = B - M^T M (C x C factors only; both products in one
+    # matrix product M^T [M | N]).
+    n = hb.shape[-1]
     l_inv = np.linalg.inv(np.linalg.cholesky(gmat + np.eye(gmat.shape[-1])))
-    m = l_inv @ hb
-    gain_t = _t(l_inv) @ m
-    diag_a = np.einsum("pcn,pcn->pn", gain_t, h_tilde)
-    kernel = s_hat = None
-    if matrices:
-        kernel = _t(gain_t) @ h_tilde
-        s_hat = _t(m) @ m
-        np.subtract(cov.b, s_hat, out=s_hat)
-        s_diag = np.einsum("pii->pi", s_hat)
-    else:
+    if not matrices:
+        m, n_ = l_inv @ hb, l_inv @ h_tilde
         s_diag = cov.diagonal(len(hb)) - np.einsum("pcn,pcn->pn", m, m)
-    return diag_a, s_diag, kernel, s_hat
+        return np.einsum("pcn,pcn->pn", m, n_), s_diag, None, None
+    mn = l_inv @ np.concatenate([hb, h_tilde], axis=2)  # [N, C, 2n]
+    m = mn[..., :n]
+    both = _t(m) @ mn  # [N, n, 2n]: M^T M | M^T N
+    s_hat, kernel = both[..., :n], both[..., n:]  # views: no copies of N n^2 arrays
+    np.subtract(cov.b, s_hat, out=s_hat)
+    return np.einsum("pii->pi", kernel), np.einsum("pii->pi", s_hat), kernel, s_hat
 
 
 def _diagnostics(background, problem: _Problem, screening: _Screening, state: _Iterates,
