@@ -316,22 +316,16 @@ def _step_system(grad, cov: _Covariance, idx, h_tilde, blocked, hb=None, couplin
         else:
             sl = None
 
-    def constrained(a, axis):
-        """c^T a along ``axis`` for every constraint c (a[order] - slope a[pair])."""
-        shape = [1] * a.ndim
-        shape[0], shape[axis] = len(rows), k
-        out = np.take_along_axis(a, order.reshape(shape), axis=axis)
-        if sl is not None:
-            out = out - sl.reshape(shape) * np.take_along_axis(a, pair.reshape(shape), axis=axis)
-        return out * mask.reshape(shape)
-
     b_rows = cov.rows(order, idx[rows])
     if sl is not None:
         b_rows = b_rows - sl[:, :, None] * cov.rows(pair, idx[rows])
     b_rows = b_rows * mask[:, :, None]  # C^T B [r, k, n]
-    b_cc = constrained(b_rows, 2) + np.eye(k) * ~mask[:, None, :]  # C^T B C
-    hb_c = constrained(hb[rows], 2)  # H~ B C [r, C, k]
-    bg_c = constrained(bg[rows], 1)  # C^T B g [r, k]
+    b_cc = np.take_along_axis(b_rows, order[:, None, :], axis=2)  # C^T B C
+    if sl is not None:
+        b_cc = b_cc - sl[:, None, :] * np.take_along_axis(b_rows, pair[:, None, :], axis=2)
+    b_cc = b_cc * mask[:, None, :] + np.eye(k) * ~mask[:, None, :]
+    hb_c = h_tilde[rows] @ _t(b_rows)  # H~ B C [r, C, k]: a product, cheaper than a gather
+    bg_c = _mv(b_rows, grad[rows])  # C^T B g [r, k]
     z = np.linalg.solve(b_cc, np.concatenate([_t(hb_c), bg_c[:, :, None]], axis=2))
     z_h, z_g = z[:, :, :-1], z[:, :, -1:]  # (C^T B C)^-1 C^T B H~^T, (C^T B C)^-1 C^T B g
     bg[rows] -= (_t(z_g) @ b_rows)[:, 0]
@@ -610,6 +604,7 @@ def _first_guess(problem: _Problem, settings: _Settings) -> tuple[_Screening, _I
     return screening, state
 
 
+@one_blas_thread  # once here instead of in each of the ~5 linear-algebra calls below
 def _new_iterate(problem, screening, state: _Iterates, idx, hb=None):
     """Gradient, active set, step system and d^2 at the iterates of ``idx``."""
     grad = _gradient(state.binv_dx[idx], state.h_tilde[idx], state.hx[idx], problem.y[idx],
