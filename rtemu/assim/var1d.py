@@ -623,54 +623,75 @@ def _stop(state: _Iterates, columns, status):
     state.active[columns] = False
 
 
-def _iterate(problem, screening, state: _Iterates, idx, it, settings: _Settings):
-    """One damped step from the iterates of ``idx``: one operator call, accept or reject."""
+@dataclasses.dataclass
+class _Trial:
+    """The projected states tried from the iterates of some columns, and what they cost."""
+
+    cols: object  # Columns
+    x: np.ndarray  # [k, n]
+    hx: np.ndarray  # [k, C] H(x), 0 where unused [K]
+    h: np.ndarray  # [k, C, n] H (raw rows, unweighted)
+    binv_dx: np.ndarray  # [k, n]
+    cost: np.ndarray  # [k], NaN when invalid
+    valid: np.ndarray  # [k] finite and unflagged on every used channel
+
+
+def _try_step(problem, screening, state: _Iterates, idx) -> _Trial:
+    """One damped step from the iterates of ``idx``, projected, and one operator call there."""
     step = _damped_step([part[idx] for part in state.system], 1.0 + state.gamma[idx],
                         state.blocked[idx], state.coupling(idx, problem))
-    trial_cols, trial_x = from_control(state.x[idx] - step, state.cols.subset(idx), problem.layout)
-    raw, trial_h = problem.run(trial_cols)
+    cols, x = from_control(state.x[idx] - step, state.cols.subset(idx), problem.layout)
+    raw, h = problem.run(cols)
     u = screening.used[idx]
     valid = (
         (np.isfinite(raw["bt"]) | ~u).all(axis=1)
         & ((raw["flag"] == 0) | ~u).all(axis=1)
-        & (np.isfinite(trial_h).all(axis=-1) | ~u).all(axis=1)
+        & (np.isfinite(h).all(axis=-1) | ~u).all(axis=1)
     )
-    trial_hx = np.where(u, raw["bt"], 0.0)
-    trial_dxb = trial_x - problem.xb[idx]
-    trial_binv_dx = problem.cov.inv_times(trial_dxb, idx)
-    tj = 0.5 * np.einsum("pn,pn->p", trial_dxb, trial_binv_dx)
-    tj += _observation_cost(trial_hx, problem.y[idx], screening.weight[idx])
-    tj = np.where(valid, tj, np.nan)
-    state.trial_cost[idx, it] = tj
+    hx = np.where(u, raw["bt"], 0.0)
+    dxb = x - problem.xb[idx]
+    binv_dx = problem.cov.inv_times(dxb, idx)
+    cost = 0.5 * np.einsum("pn,pn->p", dxb, binv_dx) + _observation_cost(hx, problem.y[idx], screening.weight[idx])
+    return _Trial(cols=cols, x=x, hx=hx, h=h, binv_dx=binv_dx, cost=np.where(valid, cost, np.nan), valid=valid)
+
+
+def _move_to(state: _Iterates, screening, idx, trial: _Trial, accept):
+    """Make the accepted trials the iterates of their columns."""
+    acc = idx[accept]
+    state.x[acc] = trial.x[accept]
+    state.binv_dx[acc] = trial.binv_dx[accept]
+    state.hx[acc] = trial.hx[accept]
+    # Unused rows may hold non-finite values: select first (inf * 0 is NaN).
+    state.h_tilde[acc] = (np.where(screening.used[acc, :, None], trial.h[accept], 0.0)
+                          * screening.sqrt_w[acc, :, None])
+    state.cost_now[acc] = trial.cost[accept]
+    state.cols = _replace_columns(state.cols, acc, trial.cols.subset(np.flatnonzero(accept)))
+
+
+def _iterate(problem, screening, state: _Iterates, idx, it, settings: _Settings):
+    """One iteration of the columns ``idx``: try a step, accept or reject, test convergence."""
+    trial = _try_step(problem, screening, state, idx)
+    state.trial_cost[idx, it] = trial.cost
     state.n_iter[idx] = it
     if settings.damped:
-        accept = valid & (tj <= state.cost_now[idx])
+        accept = trial.valid & (trial.cost <= state.cost_now[idx])
     else:
-        accept = valid
-        _stop(state, idx[~valid], INVALID_TRIAL)
-
+        accept = trial.valid
+        _stop(state, idx[~trial.valid], INVALID_TRIAL)
+    _move_to(state, screening, idx, trial, accept)
+    state.cost[idx, it] = state.cost_now[idx]
     acc = idx[accept]
-    state.x[acc] = trial_x[accept]
-    state.binv_dx[acc] = trial_binv_dx[accept]
-    state.hx[acc] = trial_hx[accept]
-    # Unused rows may hold non-finite values: select first (inf * 0 is NaN).
-    state.h_tilde[acc] = np.where(u[accept, :, None], trial_h[accept], 0.0) * screening.sqrt_w[acc, :, None]
-    state.cost_now[acc] = tj[accept]
-    state.cols = _replace_columns(state.cols, acc, trial_cols.subset(np.flatnonzero(accept)))
     if settings.damped:
         state.gamma[acc] /= settings.lm_factor
-        rej = idx[~accept]
-        state.gamma[rej] *= settings.lm_factor
-        state.n_rejected[rej] += 1
-    state.cost[idx, it] = state.cost_now[idx]
-    n_ctl = problem.xb.shape[1]
-    # A rejected step leaves the iterate (and its d^2) as it was: it has converged when
-    # the cost no longer resolves the decrease still predicted there.
-    rej = idx[~accept & valid] if settings.damped else idx[:0]
-    _stop(state, rej[_unresolved(state.d2[rej], screening.n_used[rej], settings)], CONVERGED)
+        state.gamma[idx[~accept]] *= settings.lm_factor
+        state.n_rejected[idx[~accept]] += 1
+        # A rejected step leaves the iterate (and its d^2) as it was: it has converged
+        # when the cost no longer resolves the decrease still predicted there.
+        rej = idx[~accept & trial.valid]
+        _stop(state, rej[_unresolved(state.d2[rej], screening.n_used[rej], settings)], CONVERGED)
     if acc.size:
         _new_iterate(problem, screening, state, acc)
-        _stop(state, acc[state.d2[acc] < settings.step_tol * n_ctl], CONVERGED)
+        _stop(state, acc[state.d2[acc] < settings.step_tol * problem.xb.shape[1]], CONVERGED)
 
 
 def _unresolved(d2, n_used, settings: _Settings):
