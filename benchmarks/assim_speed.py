@@ -178,8 +178,10 @@ def main(argv=None):
                         help="var1d(diagnostic_matrices=False): no averaging kernel / S matrices")
     parser.add_argument("--no-fallback", action="store_true",
                         help="emulator without physics fallback (the demo uses fallback='physics')")
-    parser.add_argument("--threads", type=int, default=None,
-                        help="onnxruntime intra-op threads of the emulator (default: its own choice)")
+    parser.add_argument("--threads", type=int, default=1,
+                        help="onnxruntime intra-op threads of the emulator (default 1, the runtime's default)")
+    parser.add_argument("--compare-threads", action="store_true",
+                        help="also time the emulator run with 1 and 2 intra-op threads, alternating")
     parser.add_argument("--cprofile", action="store_true", help="profile the emulator run")
     args = parser.parse_args(argv)
 
@@ -218,12 +220,30 @@ def measure(args, model):
           f"{'met' if ratio >= TARGET_RATIO else 'NOT met'}); operator time alone: {bound:.1f}x "
           "(the ratio if var1d's own time were zero)")
     print(f"load average at the end {os.getloadavg()}")
+    if args.compare_threads:
+        compare_threads(model, emulated.fallback, background, observations, b_matrix, sigma_emu, options,
+                        args.repeat)
     if args.cprofile:
         profiler = cProfile.Profile()
         profiler.enable()
         assim.var1d(emulated, background, observations, b_matrix=b_matrix, emulator_error=sigma_emu, **options)
         profiler.disable()
         pstats.Stats(profiler).sort_stats("cumulative").print_stats(30)
+
+
+def compare_threads(model, fallback, background, observations, b_matrix, sigma_emu, options, repeat):
+    """Emulator 1D-Var wall and operator time with 1 and 2 onnxruntime threads, runs alternating."""
+    timed = {t: TimedOperator(EmulatedOperator.load(model, threads=t, fallback=fallback)) for t in (1, 2)}
+    times = {1: [], 2: []}
+    for _ in range(max(repeat, 3)):
+        for t, op in timed.items():
+            best = run(op, background, observations, b_matrix, 1, emulator_error=sigma_emu, **options)
+            times[t].append((best["wall"], best["operator"]))
+    med = {t: np.median(np.array(v), axis=0) for t, v in times.items()}
+    for t in (1, 2):
+        print(f"threads {t}: median wall {med[t][0]:.3f} s, operator {med[t][1]:.3f} s")
+    print(f"2 threads / 1 thread: wall {med[2][0] / med[1][0]:.2f}x, operator {med[2][1] / med[1][1]:.2f}x "
+          f"(load average {os.getloadavg()})")
 
 
 if __name__ == "__main__":

@@ -177,8 +177,9 @@ class EmulatedOperator(_OperatorBase):
         Serve only these channel ids (default: all of the bundle).
     batch_size : int
         Profiles per onnxruntime call [1].
-    threads : int, optional
-        onnxruntime intra-op threads (default: onnxruntime's choice).
+    threads : int or None
+        onnxruntime intra-op threads (default 1, see docs/decisions.md; None:
+        onnxruntime's choice).
     fallback : {None, "physics"}
         * ``None``: flagged profiles keep emulated values (and their flags).
         * ``"physics"``: profiles outside the training envelope (flag bits
@@ -191,7 +192,7 @@ class EmulatedOperator(_OperatorBase):
         Largest accepted difference between the dataset's and the bundle's levels [hPa].
     """
 
-    def __init__(self, *, path, channels=None, batch_size: int = 4096, threads: int | None = None,
+    def __init__(self, *, path, channels=None, batch_size: int = 4096, threads: int | None = 1,
                  fallback: Literal[None, "physics"] = None, errors: ErrorMode = "mask",
                  grid_tolerance_hpa: float = 1e-3):
         from rtemu import bundle as _bundle

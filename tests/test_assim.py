@@ -223,6 +223,41 @@ def test_var1d_levenberg_marquardt_reaches_same_optimum_monotonically():
     assert res.converged.values.all()
 
 
+def _closed_form_over_used(xb, b, h, r, y, hxb, used):
+    """Rodgers (2000) m-form optimum and S^-1 = B^-1 + H^T R^-1 H per column, used channels only."""
+    xa, s_inv = [], []
+    for k in range(len(xb)):
+        u = used[k]
+        ref, _, _ = optimal_estimate(xb[k:k + 1], b, h[u], r[u], y[k:k + 1, u], hxb[k:k + 1, u])
+        xa.append(ref[0])
+        s_inv.append(np.linalg.inv(b) + h[u].T @ np.diag(1.0 / r[u]) @ h[u])
+    return np.array(xa), np.array(s_inv)
+
+
+def test_var1d_defaults_reach_the_closed_form_optimum():
+    """With every setting at its default, Levenberg-Marquardt ends at the linear optimum.
+
+    For a linear problem d^2 = (x - xa)^T S^-1 (x - xa) exactly (Rodgers 2000, section
+    5.6.3, from memory), so the default step tolerance (d^2 < 1e-6 n) bounds the distance
+    to the closed form in units of the analysis error. Before the defaults were changed
+    (lm_damping 1, step_tol 1e-2, cost_tol 1e-3) this case stopped 0.1-0.3 K away.
+    """
+    op, bg, layout, b, h, r, y, hxb, xb, obs = _linear_case(n_prof=12, seed=5)
+    res = assim.var1d(op, bg, obs, b_matrix=b)
+    used = res.qc_reason.values == qc.USED
+    xa_ref, s_inv = _closed_form_over_used(xb, b, h, r, y, hxb, used)
+    xa = control(res.analysis, layout)
+    assert res.converged.values.all()
+    dist2 = np.einsum("pi,pij,pj->p", xa - xa_ref, s_inv, xa - xa_ref)
+    assert (dist2 < 1e-6 * layout.size).all()
+    assert np.abs(xa - xa_ref)[:, layout.temperature].max() < 1e-3  # [K]
+    assert np.abs(xa - xa_ref)[:, layout.surface_temperature].max() < 1e-3  # [K]
+    assert np.abs(xa - xa_ref)[:, layout.ln_humidity].max() < 1e-4  # [1]
+    # Damping still acts: J never increases from one accepted iterate to the next.
+    steps = np.diff(res.cost.values, axis=1)
+    assert (steps[np.isfinite(steps)] <= 0).all()
+
+
 def test_var1d_accepts_labelled_b_and_rejects_mismatched_layout():
     op, bg, layout, b, h, r, y, hxb, xb, obs = _linear_case()
     labelled = covariance_dataarray(b, layout)
@@ -578,7 +613,9 @@ def test_var1d_on_physical_model_converges_and_beats_background():
 
 def test_var1d_levenberg_marquardt_handles_a_strongly_nonlinear_case():
     # Larger background errors: humidity often at saturation, Jacobians change a lot.
-    op, background, obs, b, layout, x_true, x_bg = _physical_case(seed=1, sd_t=3.0, sd_lnq=0.5)
+    # (Since saturated ln q moves along its limit with T, 3 K / 0.5 no longer sends plain
+    # Gauss-Newton uphill here; 4 K / 0.7 does.)
+    op, background, obs, b, layout, x_true, x_bg = _physical_case(seed=1, sd_t=4.0, sd_lnq=0.7)
     lm = assim.var1d(op, background, obs, b_matrix=b, max_iter=30)
     gn = assim.var1d(op, background, obs, b_matrix=b, max_iter=30, lm_damping=0.0)
     steps_gn = np.diff(gn.cost.values, axis=1)
@@ -589,6 +626,51 @@ def test_var1d_levenberg_marquardt_handles_a_strongly_nonlinear_case():
     assert (lm.diagnostics["n_rejected_steps"].values > 0).any()
     x_an = control(lm.analysis, layout)
     assert _mahalanobis(x_an - x_true, b).mean() < _mahalanobis(x_bg - x_true, b).mean()
+
+
+def test_var1d_defaults_converge_on_the_physical_model():
+    """Defaults end at the optimum of J on the nonlinear physical model, saturation included.
+
+    Two checks: the gradient of J at the default analysis, written out densely here from
+    the operator's own Jacobian there, g = B^-1 (x - xb) - H^T R^-1 (y - H(x)), has
+    d^2 = g^T (B^-1 + H^T R^-1 H)^-1 g < 1e-6 n (Rodgers 2000 section 5.6.3, from memory)
+    in every column with no element at a physical limit; and every column, on a limit or
+    not, is within 5 % of its analysis error standard deviation of a run with tolerances
+    tightened by six orders (in the linear limit d^2 < 1e-6 n bounds each element by
+    ~1 % of it; the old defaults stopped up to ~40 % away).
+    """
+    from rtemu.assim._control import control_bounds
+
+    op, background, obs, b, layout, x_true, x_bg = _physical_case(n_prof=40, seed=1, sd_t=3.0, sd_lnq=0.5)
+    res = assim.var1d(op, background, obs, b_matrix=b)
+    ref = assim.var1d(op, background, obs, b_matrix=b, max_iter=60, step_tol=1e-12, cost_tol=0.0)
+    assert res.converged.values.all() and ref.converged.values.all()
+    x_an, x_ref = control(res.analysis, layout), control(ref.analysis, layout)
+    sigma_a = ref.diagnostics["analysis_error_std"].values
+    assert (np.abs(x_an - x_ref) < 0.05 * sigma_a).all()
+    j = (res.diagnostics["cost_background"] + res.diagnostics["cost_observation"]).values
+    j_ref = (ref.diagnostics["cost_background"] + ref.diagnostics["cost_observation"]).values
+    assert (j - j_ref < 1e-3).all()
+
+    cols = read_columns(res.analysis, ("profile",), (), "analysis")
+    lo, hi = control_bounds(cols, layout)
+    interior = ((x_an > lo + 1e-6) & (x_an < hi - 1e-6)).all(axis=1)
+    assert interior.sum() >= 10  # enough columns for the check to mean something
+    out = op.simulate(res.analysis, jacobian=True)
+    used = res.qc_reason.values == qc.USED
+    r = op.instrument.noise_k**2
+    b_inv = np.linalg.inv(b)
+    for p in np.flatnonzero(interior):
+        u = used[p]
+        h = np.concatenate([
+            out["jacobian_air_temperature"].values[p],
+            out["jacobian_specific_humidity"].values[p] * cols.humidity[p],  # d/d ln q = q d/dq
+            out["jacobian_surface_temperature"].values[p][:, None],
+        ], axis=1)[u]
+        dep = (obs.values[p] - out["brightness_temperature"].values[p])[u]
+        g = b_inv @ (x_an[p] - x_bg[p]) - h.T @ (dep / r[u])
+        d2 = g @ np.linalg.solve(b_inv + h.T @ (h / r[u][:, None]), g)
+        assert d2 < 1e-6 * layout.size
 
 
 def test_per_channel_emissivity_follows_channel_labels_not_positions():

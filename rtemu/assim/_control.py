@@ -348,6 +348,21 @@ def control_bounds(cols: Columns, layout: ControlLayout) -> tuple[np.ndarray, np
     return lo, hi
 
 
+def humidity_ceiling_slope(cols: Columns) -> np.ndarray:
+    """d(ln q upper limit)/dT [K-1] at every level of ``cols`` [N, L].
+
+    Where saturation sets the ln q limit it moves with the temperature of the same level
+    (about 0.06 K-1 near 280 K, the Clausius-Clapeyron rate); where the model ceiling
+    or the temperature range sets it, the slope is 0. A centred difference of
+    :func:`humidity_bounds` over +-0.01 K: the slope of exactly the limit
+    :func:`from_control` applies (relative error ~1e-6).
+    """
+    dt = 0.01
+    t = cols.temperature
+    upper = [np.log(humidity_bounds(t + sign * dt, cols.pressure)[1]) for sign in (1.0, -1.0)]
+    return (upper[0] - upper[1]) / (2.0 * dt)
+
+
 def write_columns(
     template: xr.Dataset, cols: Columns, column_dims: tuple[str, ...], control_emissivity: bool
 ) -> xr.Dataset:

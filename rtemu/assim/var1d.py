@@ -21,15 +21,22 @@ values for) a used channel; then gamma is divided by ``lm_factor``, otherwise th
 rejected and gamma multiplied by ``lm_factor``. With ``lm_damping=0`` (or None) this is
 plain Gauss-Newton (Rodgers 2000 eq. 5.9, from memory): every valid step is accepted.
 
-Convergence (tested at every accepted iterate, and at the background):
+Convergence (d^2 tested at every accepted iterate, and at the background):
 
 * step size: the undamped Gauss-Newton step from the iterate has
   d^2 = g^T S g < step_tol * n, with S = (B^-1 + H^T R^-1 H)^-1 (Rodgers 2000 section
-  5.6.3, "d^2 << n"); d^2 / 2 is also the cost decrease the quadratic model still
-  predicts; or
-* cost decrease: the accepted step lowered J by less than cost_tol * max(m, 1) while
-  d^2 < n (the second condition keeps a heavily damped, tiny step from passing for
-  convergence).
+  5.6.3, "d^2 << n"). For a linear problem d^2 = (x - xa)^T S^-1 (x - xa) exactly, so
+  the default 1e-6 puts the iterate within ~1e-3 sqrt(n) analysis standard deviations
+  of the optimum; or
+* cost resolution: a step from the iterate was rejected although the decrease the
+  quadratic model still predicts there, d^2 / 2, is below cost_tol * max(m, 1) for m
+  used observations (a float32 operator resolves J to ~1e-4; the default 1e-5 per
+  observation stops there instead of damping to max_iter).
+
+Active set: an element at a physical limit is held there when descent points outward
+or when the undamped step would leave the limit; a ln q held on its saturation limit
+moves with the temperature of its level (d ln q = d ln q_s/dT dT), so an optimum on a
+saturated level is reached, not approached by clipped steps.
 
 Diagnostics at the analysis, with H the Jacobian there (Rodgers 2000, ch. 2-3):
 
@@ -61,6 +68,7 @@ from rtemu.assim import qc as _qc
 from rtemu.assim._linalg import one_blas_thread
 from rtemu.assim._control import (
     control_bounds,
+    humidity_ceiling_slope,
     from_control,
     layout_for,
     read_columns,
@@ -82,6 +90,12 @@ INVALID_TRIAL = 2
 NO_OBSERVATIONS = 3
 STATUS_VALUES = np.array([CONVERGED, MAX_ITERATIONS, INVALID_TRIAL, NO_OBSERVATIONS], dtype=np.int8)
 STATUS_MEANINGS = "converged max_iterations invalid_trial no_observations"
+
+DEFAULT_MAX_ITER = 10
+DEFAULT_LM_DAMPING = 0.1
+DEFAULT_LM_FACTOR = 10.0
+DEFAULT_COST_TOL = 1e-5
+DEFAULT_STEP_TOL = 1e-6
 
 COST_CONVENTION = "J = 1/2 (x-xb)^T B^-1 (x-xb) + 1/2 (y-H(x))^T R^-1 (y-H(x))"
 
@@ -195,21 +209,70 @@ def _observation_cost(hx, y, weight):
     return 0.5 * np.einsum("pc,pc->p", weight, d * d)
 
 
-def _blocked(x, grad, cols, layout):
-    """Elements held at a physical limit: at the limit with descent (-g) pointing outward.
-
-    This is the active set of a projected Newton method (Bertsekas 1982, SIAM J. Control
-    Optim. 20, 221-246, doi:10.1137/0320018): those elements are fixed for the step and
-    left out of the convergence test, so that an optimum on a limit (e.g. saturation)
-    is recognised as one.
-    """
+def _at_limits(x, cols, layout):
+    """Elements at their upper and at their lower physical limit [k, n] (bool, bool)."""
     lo, hi = control_bounds(cols, layout)
     tol = 1e-9 * np.maximum(1.0, np.abs(x))
-    return ((x >= hi - tol) & (grad < 0)) | ((x <= lo + tol) & (grad > 0))
+    return x >= hi - tol, x <= lo + tol
+
+
+def _saturation_slope(at_upper, cols, layout):
+    """Slope [k, n] of the ln q limit with the temperature of its level [K-1], on the ln q
+    elements at their upper limit (0 elsewhere).
+
+    The ln q ceiling of a saturated level moves with that level's temperature, so a step
+    that holds ln q fixed while T changes would leave the limit (and be clipped by the
+    projection, which raises J by more than the step gains): the optimum on a saturated
+    level is only reached when the step keeps ln q on its limit, d ln q = slope dT.
+    """
+    slope = np.zeros(at_upper.shape)
+    lnq = layout.ln_humidity
+    rows = np.flatnonzero(at_upper[:, lnq].any(axis=1))
+    if rows.size:
+        ceiling = humidity_ceiling_slope(cols.subset(rows))
+        slope[rows, lnq] = np.where(at_upper[rows, lnq], ceiling, 0.0)
+    return slope
+
+
+def _active_set(problem, idx, x, grad, cols, h_tilde, hb):
+    """Blocked elements, their coupling and the step system at the iterates of ``idx``.
+
+    The active set of a projected Newton method (Bertsekas 1982, SIAM J. Control Optim.
+    20, 221-246, doi:10.1137/0320018): an element at a limit is held there for the step
+    when descent (-g) points outward, and then also when the undamped step over the
+    remaining elements would leave the limit (for a ln q on its saturation limit: d ln q
+    > slope dT). Blocked elements are left out of the convergence test, so that an
+    optimum on a limit (e.g. saturation) is recognised as one.
+    """
+    at_hi, at_lo = _at_limits(x, cols, problem.layout)
+    slope_hi = _saturation_slope(at_hi, cols, problem.layout)
+    blocked = (at_hi & (grad < 0)) | (at_lo & (grad > 0))
+    system = list(_step_system(grad, problem.cov, idx, h_tilde, blocked, hb,
+                               (slope_hi * blocked, problem.partner)))
+    dx = -_damped_step(system, np.ones(len(idx)), blocked, (slope_hi * blocked, problem.partner))
+    for _ in range(2):  # one more element blocked per pass is enough in practice
+        outward = ((at_hi & (dx - slope_hi * dx[:, problem.partner] > 0)) | (at_lo & (dx < 0))) & ~blocked
+        rows = np.flatnonzero(outward.any(axis=1))
+        if rows.size == 0:
+            break
+        blocked[rows] |= outward[rows]
+        coupling = (slope_hi[rows] * blocked[rows], problem.partner)
+        parts = _step_system(grad[rows], problem.cov, idx[rows], h_tilde[rows], blocked[rows], None, coupling)
+        for whole, part in zip(system, parts):
+            whole[rows] = part
+        dx[rows] = -_damped_step(parts, np.ones(rows.size), blocked[rows], coupling)
+    return blocked, slope_hi * blocked, system, dx
+
+
+def _partner(layout):
+    """Index of the element each control element is coupled to: ln q[i] -> T[i], else itself."""
+    partner = np.arange(layout.size)
+    partner[layout.ln_humidity] = np.arange(layout.n_levels)
+    return partner
 
 
 @one_blas_thread
-def _step_system(grad, cov: _Covariance, idx, h_tilde, blocked, hb=None):
+def _step_system(grad, cov: _Covariance, idx, h_tilde, blocked, hb=None, coupling=None):
     """The parts of the Newton step from one iterate that do not depend on the damping.
 
     Sherman-Morrison-Woodbury identity (behind Rodgers 2000 eqs. 2.44-2.45, from memory):
@@ -217,14 +280,18 @@ def _step_system(grad, cov: _Covariance, idx, h_tilde, blocked, hb=None):
         [s B^-1 + H~^T H~]^-1 g = (B g - B H~^T w) / s,  (H~ B H~^T + s I) w = H~ B g,
 
     so only C x C systems are solved (C channels), whatever the damping s. Holding the
-    blocked elements b fixed leaves the free ones f with the prior precision
-    (B^-1)_ff = (B_ff - B_fb B_bb^-1 B_bf)^-1 (block inversion, Schur complement): the
-    same formula with B' = B - B_:b B_bb^-1 B_b: (zero on the blocked rows and columns)
-    in place of B gives the step over f and 0 on b. Only the k blocked rows of B enter,
-    as corrections of size n k C per column; no n x n system is formed.
+    blocked elements fixed is a set of linear constraints C^T dx = 0 (one column c per
+    blocked element: its unit vector, or with ``coupling`` e_lnq - slope e_T for a ln q
+    held on a saturation limit that moves with T). The step over the remaining subspace
+    is the same formula with B' = B - B C (C^T B C)^-1 C^T B (B conditioned on the
+    constraints; for unit vectors the Schur complement of the blocked elements) in
+    place of B. Only the k blocked rows C^T B enter, as corrections of size n k C per
+    column; no n x n system is formed.
 
     Parameters: ``grad`` g [k, n], ``h_tilde`` H~ = R^-1/2 H [k, C, n] and ``blocked``
-    [k, n] of the columns ``idx``; ``hb`` = H~ B if already known (it is overwritten).
+    [k, n] of the columns ``idx``; ``hb`` = H~ B if already known (it is overwritten);
+    ``coupling`` = (slope [k, n] [K-1], partner [n]) from :func:`_active_set`
+    and :func:`_partner`, or None (plain bounds).
     Returns B' g [k, n], H~ B' g [k, C], H~ B' [k, C, n] and H~ B' H~^T [k, C, C].
     """
     if hb is None:
@@ -235,37 +302,169 @@ def _step_system(grad, cov: _Covariance, idx, h_tilde, blocked, hb=None):
     rows = np.flatnonzero(blocked.any(axis=1))
     if rows.size == 0:
         return bg, hbg, hb, gmat
-    # Blocked indices first, padded to the largest count with identity rows of B_bb.
+    # Blocked indices first, padded to the largest count with identity rows of C^T B C.
     blk = blocked[rows]
     k = int(blk.sum(axis=1).max())
     order = np.argsort(~blk, axis=1, kind="stable")[:, :k]
     mask = np.take_along_axis(blk, order, axis=1)
-    b_rows = cov.rows(order, idx[rows]) * mask[:, :, None]  # B_b: [r, k, n]
-    b_bb = np.take_along_axis(b_rows, order[:, None, :], axis=2) * mask[:, None, :]
-    b_bb = b_bb + np.eye(k) * ~mask[:, None, :]
-    hb_b = np.take_along_axis(hb[rows], order[:, None, :], axis=2) * mask[:, None, :]  # H~ B_:b
-    bg_b = np.take_along_axis(bg[rows], order, axis=1) * mask  # B_b: g
-    z = np.linalg.solve(b_bb, np.concatenate([_t(hb_b), bg_b[:, :, None]], axis=2))
-    z_h, z_g = z[:, :, :-1], z[:, :, -1:]  # B_bb^-1 B_b: H~^T, B_bb^-1 B_b: g
+    sl = pair = None
+    if coupling is not None:
+        slope, partner = coupling
+        sl = np.take_along_axis(slope[rows], order, axis=1) * mask
+        if sl.any():
+            pair = partner[order]
+        else:
+            sl = None
+
+    b_rows = cov.rows(order, idx[rows])
+    if sl is not None:
+        b_rows = b_rows - sl[:, :, None] * cov.rows(pair, idx[rows])
+    b_rows = b_rows * mask[:, :, None]  # C^T B [r, k, n]
+    b_cc = np.take_along_axis(b_rows, order[:, None, :], axis=2)  # C^T B C
+    if sl is not None:
+        b_cc = b_cc - sl[:, None, :] * np.take_along_axis(b_rows, pair[:, None, :], axis=2)
+    b_cc = b_cc * mask[:, None, :] + np.eye(k) * ~mask[:, None, :]
+    hb_c = h_tilde[rows] @ _t(b_rows)  # H~ B C [r, C, k]: a product, cheaper than a gather
+    bg_c = _mv(b_rows, grad[rows])  # C^T B g [r, k]
+    z = np.linalg.solve(b_cc, np.concatenate([_t(hb_c), bg_c[:, :, None]], axis=2))
+    z_h, z_g = z[:, :, :-1], z[:, :, -1:]  # (C^T B C)^-1 C^T B H~^T, (C^T B C)^-1 C^T B g
     bg[rows] -= (_t(z_g) @ b_rows)[:, 0]
-    hbg[rows] -= (_t(z_h) @ bg_b[:, :, None])[..., 0]
+    hbg[rows] -= (_t(z_h) @ bg_c[:, :, None])[..., 0]
     hb[rows] -= _t(z_h) @ b_rows
-    gmat[rows] -= hb_b @ z_h
+    gmat[rows] -= hb_c @ z_h
     return bg, hbg, hb, gmat
 
 
 @one_blas_thread
-def _damped_step(system, scale, blocked):
-    """[scale B^-1 + H~^T H~]^-1 g over the free elements, blocked elements 0 [k, n].
+def _damped_step(system, scale, blocked, coupling=None):
+    """[scale B^-1 + H~^T H~]^-1 g over the free subspace [k, n].
 
-    ``system`` is the output of :func:`_step_system` for these columns.
+    ``system`` is the output of :func:`_step_system` for these columns (with the same
+    ``coupling``). Blocked elements get exactly 0, or slope x the step of their partner
+    when coupled (the formula gives that up to rounding).
     """
     bg, hbg, hb, gmat = system
     inner = gmat + scale[:, None, None] * np.eye(gmat.shape[-1])
     w = np.linalg.solve(inner, hbg[..., None])  # [k, C, 1]
     step = (bg - (_t(w) @ hb)[:, 0]) / scale[:, None]
     step[blocked] = 0.0
+    if coupling is not None:
+        slope, partner = coupling
+        coupled = slope != 0
+        if coupled.any():
+            step[coupled] = (slope * step[:, partner])[coupled]
     return step
+
+
+# -- settings and iteration state -----------------------------------------------------------
+@dataclasses.dataclass(frozen=True)
+class _Settings:
+    """The options of :func:`var1d`, checked once (see its docstring)."""
+
+    max_iter: int = DEFAULT_MAX_ITER
+    lm_damping: float | None = DEFAULT_LM_DAMPING
+    lm_factor: float = DEFAULT_LM_FACTOR
+    qc_threshold: float | None = _qc.DEFAULT_THRESHOLD
+    control_emissivity: bool = False
+    accept_flags: int = 0
+    cost_tol: float = DEFAULT_COST_TOL
+    step_tol: float = DEFAULT_STEP_TOL
+    diagnostic_matrices: bool = True
+
+    def __post_init__(self):
+        if self.max_iter < 0:
+            raise ValueError(f"max_iter must be >= 0, got {self.max_iter}")
+        if self.gamma0 < 0 or not np.isfinite(self.gamma0):
+            raise ValueError(f"lm_damping must be >= 0 or None, got {self.lm_damping}")
+        if self.damped and not self.lm_factor > 1:
+            raise ValueError(f"lm_factor must be > 1, got {self.lm_factor}")
+        for name in ("cost_tol", "step_tol"):
+            value = getattr(self, name)
+            if not (np.isfinite(value) and value >= 0):
+                raise ValueError(f"{name} must be finite and >= 0, got {value}")
+
+    @property
+    def gamma0(self) -> float:
+        return 0.0 if self.lm_damping is None else float(self.lm_damping)
+
+    @property
+    def damped(self) -> bool:
+        return self.gamma0 > 0
+
+    def attrs(self, tolerated_bits: int) -> dict:
+        """The settings as attributes of the diagnostics dataset."""
+        return dict(
+            max_iter=self.max_iter, lm_damping=self.gamma0, lm_factor=self.lm_factor,
+            qc_threshold="none" if self.qc_threshold is None else float(self.qc_threshold),
+            accept_flags=tolerated_bits, cost_tol=self.cost_tol, step_tol=self.step_tol,
+            control_emissivity=int(self.control_emissivity),
+        )
+
+
+@dataclasses.dataclass
+class _Problem:
+    """What does not change during the minimisation."""
+
+    operator: object
+    channels: tuple
+    layout: object
+    xb: np.ndarray  # [N, n] background control vectors
+    cov: _Covariance
+    y: np.ndarray  # [N, C] [K], NaN missing
+    r: np.ndarray  # [C] [K2]
+    tolerated_bits: int
+    partner: np.ndarray  # [n], see _partner
+    cols_b: object  # Columns of the background
+
+    def run(self, cols):
+        """Operator output at ``cols`` with the tolerated flag bits cleared, and H [k, C, n]."""
+        raw = run_operator(self.operator, cols, self.channels, jacobian=True)
+        raw["flag"] = raw["flag"] & ~self.tolerated_bits
+        return raw, control_jacobian(raw, cols, self.layout)
+
+
+@dataclasses.dataclass
+class _Screening:
+    """The first-guess check: which observations are used, and with what weight."""
+
+    h_xb: np.ndarray  # [N, C] H(xb) [K]
+    departure_std: np.ndarray  # [N, C] sqrt(H B H^T + R)_ii [K]
+    reason: np.ndarray  # [N, C] qc reason codes
+    used: np.ndarray  # [N, C] bool
+    weight: np.ndarray  # [N, C] R^-1 of used observations, else 0 [K-2]
+    sqrt_w: np.ndarray  # [N, C] [K-1]
+    n_used: np.ndarray  # [N]
+
+
+@dataclasses.dataclass
+class _Iterates:
+    """Per-column state at the current (last accepted) iterate, and the histories.
+
+    The observation side is kept as H~ = R^-1/2 H (rows of unused observations zero);
+    ``system`` holds what the steps from the iterate need apart from the damping.
+    """
+
+    x: np.ndarray  # [N, n]
+    cols: object  # Columns at x
+    hx: np.ndarray  # [N, C] H(x), 0 where unused [K]
+    h_tilde: np.ndarray  # [N, C, n]
+    binv_dx: np.ndarray  # [N, n] B^-1 (x - xb)
+    cost_now: np.ndarray  # [N]
+    gamma: np.ndarray  # [N]
+    grad: np.ndarray  # [N, n]
+    blocked: np.ndarray  # [N, n]
+    slope: np.ndarray  # [N, n] saturation coupling [K-1]
+    system: list  # 4 arrays, see _step_system
+    d2: np.ndarray  # [N] g^T S g at the iterate
+    active: np.ndarray  # [N] still iterating
+    status: np.ndarray  # [N]
+    n_iter: np.ndarray  # [N]
+    n_rejected: np.ndarray  # [N]
+    cost: np.ndarray  # [N, max_iter + 1] accepted cost per iteration
+    trial_cost: np.ndarray  # [N, max_iter + 1]
+
+    def coupling(self, idx, problem):
+        return self.slope[idx], problem.partner
 
 
 def var1d(
@@ -276,14 +475,14 @@ def var1d(
     b_matrix,
     observation_error=None,
     emulator_error=None,
-    max_iter: int = 10,
-    lm_damping: float | None = 1.0,
-    lm_factor: float = 10.0,
+    max_iter: int = DEFAULT_MAX_ITER,
+    lm_damping: float | None = DEFAULT_LM_DAMPING,
+    lm_factor: float = DEFAULT_LM_FACTOR,
     qc_threshold: float | None = _qc.DEFAULT_THRESHOLD,
     control_emissivity: bool = False,
     accept_flags: int = 0,
-    cost_tol: float = 1e-3,
-    step_tol: float = 1e-2,
+    cost_tol: float = DEFAULT_COST_TOL,
+    step_tol: float = DEFAULT_STEP_TOL,
     diagnostic_matrices: bool = True,
 ) -> Var1DResult:
     """1D-Var analysis of a batch of columns.
@@ -331,154 +530,174 @@ def var1d(
     -------
     Var1DResult
     """
-    channels = operator_channels(operator)
-    if max_iter < 0:
-        raise ValueError(f"max_iter must be >= 0, got {max_iter}")
-    gamma0 = 0.0 if lm_damping is None else float(lm_damping)
-    if gamma0 < 0 or not np.isfinite(gamma0):
-        raise ValueError(f"lm_damping must be >= 0 or None, got {lm_damping}")
-    damped = gamma0 > 0
-    if damped and not lm_factor > 1:
-        raise ValueError(f"lm_factor must be > 1, got {lm_factor}")
-    tolerated_bits = _qc.check_accept_flags(accept_flags)
-
-    cols_b = read_columns(background, ("profile",), channels, "background")
-    layout = layout_for(cols_b, control_emissivity)
-    xb = to_control(cols_b, layout, "background")
-    n_prof, n_ctl = xb.shape
-    cov = _Covariance(check_b_matrix(b_matrix, layout, n_prof))
-    y = read_observations(observations, channels, n_prof, background.coords.get("profile"))
-    r = observation_error_variance(operator, observation_error, emulator_error)
-    everything = np.arange(n_prof)
-
-    # First guess and quality control.
-    raw = run_operator(operator, cols_b, channels, jacobian=True)
-    raw["flag"] = raw["flag"] & ~tolerated_bits
-    h_xb = raw["bt"]
-    h = control_jacobian(raw, cols_b, layout)
-    finite_h = np.isfinite(h).all(axis=-1)
-    h[~finite_h] = 0.0
-    hb_xb = cov.rows_times(h, everything)  # H B
-    departure_std = np.sqrt(np.einsum("pcn,pcn->pc", h, hb_xb) + r)  # sqrt(H B H^T + R)_ii
-    flag = np.where(finite_h, raw["flag"], raw["flag"] | 1)
-    reason = _qc.screen(y, h_xb, flag, departure_std, qc_threshold)
-    used = reason == _qc.USED
-    weight = np.where(used, 1.0 / r, 0.0)
-    sqrt_w = np.sqrt(weight)
-    n_used = used.sum(axis=1)
-
-    # Per-column state at the current iterate. The observation side is kept as
-    # H~ = R^-1/2 H (rows of unused observations zero), and everything the steps from an
-    # iterate need except the damping (the step system) is built once per iterate.
-    x = xb.copy()
-    cols = cols_b
-    hx = np.where(used, h_xb, 0.0)
-    h_tilde = h * sqrt_w[..., None]
-    del h
-    binv_dx = np.zeros_like(x)  # B^-1 (x - xb)
-    cost_now = _observation_cost(hx, y, weight)
-    cost = np.full((n_prof, max_iter + 1), np.nan)
-    trial_cost = np.full((n_prof, max_iter + 1), np.nan)
-    cost[:, 0] = trial_cost[:, 0] = cost_now
-    gamma = np.full(n_prof, gamma0)
-    status = np.full(n_prof, MAX_ITERATIONS, dtype=np.int8)
-    n_iter = np.zeros(n_prof, dtype=np.int64)
-    n_rejected = np.zeros(n_prof, dtype=np.int64)
-    grad = np.zeros_like(x)
-    blocked = np.zeros(x.shape, dtype=bool)
-    system = (np.zeros_like(x), np.zeros(used.shape), np.zeros_like(h_tilde),
-              np.zeros(used.shape + used.shape[1:]))
-
-    def new_iterate(idx, hb=None):
-        """Gradient, active set and step system at the iterates of ``idx``; returns d^2."""
-        grad[idx] = _gradient(binv_dx[idx], h_tilde[idx], hx[idx], y[idx], sqrt_w[idx])
-        blocked[idx] = _blocked(x[idx], grad[idx], cols.subset(idx), layout)
-        parts = _step_system(grad[idx], cov, idx, h_tilde[idx], blocked[idx], hb)
-        for whole, part in zip(system, parts):
-            whole[idx] = part
-        # d^2 = g^T (B^-1 + H^T R^-1 H)^-1 g of the undamped step over the free elements
-        undamped = _damped_step(parts, np.ones(len(idx)), blocked[idx])
-        return np.einsum("pn,pn->p", grad[idx], undamped)
-
-    status[n_used == 0] = NO_OBSERVATIONS
-    active = n_used > 0
-    idx = np.flatnonzero(active)
-    if idx.size:
-        done = new_iterate(idx, hb_xb[idx] * sqrt_w[idx, :, None]) < step_tol * n_ctl
-        status[idx[done]] = CONVERGED
-        active[idx[done]] = False
-    del hb_xb
-
-    for it in range(1, max_iter + 1):
-        idx = np.flatnonzero(active)
+    settings = _Settings(
+        max_iter=max_iter, lm_damping=lm_damping, lm_factor=lm_factor, qc_threshold=qc_threshold,
+        control_emissivity=control_emissivity, accept_flags=accept_flags, cost_tol=cost_tol,
+        step_tol=step_tol, diagnostic_matrices=diagnostic_matrices,
+    )
+    problem = _read_problem(operator, background, observations, b_matrix, observation_error,
+                            emulator_error, settings)
+    screening, state = _first_guess(problem, settings)
+    for it in range(1, settings.max_iter + 1):
+        idx = np.flatnonzero(state.active)
         if idx.size == 0:
             break
-        dx = -_damped_step([part[idx] for part in system], 1.0 + gamma[idx], blocked[idx])
-        trial_cols, trial_x = from_control(x[idx] + dx, cols.subset(idx), layout)
-        raw = run_operator(operator, trial_cols, channels, jacobian=True)
-        raw["flag"] = raw["flag"] & ~tolerated_bits
-        trial_h = control_jacobian(raw, trial_cols, layout)
-        u = used[idx]
-        valid = (
-            (np.isfinite(raw["bt"]) | ~u).all(axis=1)
-            & ((raw["flag"] == 0) | ~u).all(axis=1)
-            & (np.isfinite(trial_h).all(axis=-1) | ~u).all(axis=1)
-        )
-        trial_hx = np.where(u, raw["bt"], 0.0)
-        trial_dxb = trial_x - xb[idx]
-        trial_binv_dx = cov.inv_times(trial_dxb, idx)
-        tjb = 0.5 * np.einsum("pn,pn->p", trial_dxb, trial_binv_dx)
-        tjo = _observation_cost(trial_hx, y[idx], weight[idx])
-        tj = np.where(valid, tjb + tjo, np.nan)
-        trial_cost[idx, it] = tj
-        n_iter[idx] = it
-        if damped:
-            accept = valid & (tj <= cost_now[idx])
-        else:
-            accept = valid
-            stopped = idx[~valid]
-            status[stopped] = INVALID_TRIAL
-            active[stopped] = False
-
-        acc = idx[accept]
-        decrease = cost_now[acc] - tj[accept]
-        x[acc] = trial_x[accept]
-        binv_dx[acc] = trial_binv_dx[accept]
-        hx[acc] = trial_hx[accept]
-        # Unused rows may hold non-finite values: select first (inf * 0 is NaN).
-        h_tilde[acc] = np.where(u[accept, :, None], trial_h[accept], 0.0) * sqrt_w[acc, :, None]
-        cost_now[acc] = tj[accept]
-        cols = _replace_columns(cols, acc, trial_cols.subset(np.flatnonzero(accept)))
-        gamma[acc] /= lm_factor if damped else 1.0
-        rej = idx[~accept]
-        if damped:
-            gamma[rej] *= lm_factor
-            n_rejected[rej] += 1
-        cost[idx, it] = cost_now[idx]
-
-        if acc.size:
-            d2 = new_iterate(acc)
-            small_decrease = (decrease >= 0) & (decrease < cost_tol * np.maximum(n_used[acc], 1))
-            done = (d2 < step_tol * n_ctl) | (small_decrease & (d2 < n_ctl))
-            status[acc[done]] = CONVERGED
-            active[acc[done]] = False
-
-    analysis = write_columns(background, cols, ("profile",), control_emissivity)
-    diagnostics = _diagnostics(
-        background=background, channels=channels, layout=layout, cov=cov,
-        h_tilde=h_tilde, system=system, blocked=blocked, y=y, h_xb=h_xb, hx=hx, used=used, reason=reason,
-        departure_std=departure_std, r=r, cost_background=0.5 * np.einsum("pn,pn->p", x - xb, binv_dx),
-        cost_observation=_observation_cost(hx, y, weight), cost=cost, trial_cost=trial_cost,
-        status=status, n_iter=n_iter, n_rejected=n_rejected, gamma=gamma,
-        diagnostic_matrices=diagnostic_matrices, settings=dict(
-            max_iter=max_iter, lm_damping=gamma0, lm_factor=lm_factor,
-            qc_threshold="none" if qc_threshold is None else float(qc_threshold),
-            accept_flags=tolerated_bits,
-            cost_tol=cost_tol, step_tol=step_tol,
-            control_emissivity=int(control_emissivity),
-        ),
-    )
+        _iterate(problem, screening, state, idx, it, settings)
+    analysis = write_columns(background, state.cols, ("profile",), settings.control_emissivity)
+    diagnostics = _diagnostics(background, problem, screening, state, settings)
     return Var1DResult(analysis=analysis, diagnostics=diagnostics)
+
+
+def _read_problem(operator, background, observations, b_matrix, observation_error, emulator_error,
+                  settings: _Settings) -> _Problem:
+    channels = operator_channels(operator)
+    tolerated_bits = _qc.check_accept_flags(settings.accept_flags)
+    cols_b = read_columns(background, ("profile",), channels, "background")
+    layout = layout_for(cols_b, settings.control_emissivity)
+    xb = to_control(cols_b, layout, "background")
+    cov = _Covariance(check_b_matrix(b_matrix, layout, xb.shape[0]))
+    y = read_observations(observations, channels, xb.shape[0], background.coords.get("profile"))
+    r = observation_error_variance(operator, observation_error, emulator_error)
+    return _Problem(operator=operator, channels=channels, layout=layout, xb=xb, cov=cov, y=y, r=r,
+                    tolerated_bits=tolerated_bits, partner=_partner(layout), cols_b=cols_b)
+
+
+def _first_guess(problem: _Problem, settings: _Settings) -> tuple[_Screening, _Iterates]:
+    """Operator call at the background, quality control, and the first iterate."""
+    cols_b, cov = problem.cols_b, problem.cov
+    n_prof = len(problem.xb)
+    everything = np.arange(n_prof)
+    raw, h = problem.run(cols_b)
+    finite_h = np.isfinite(h).all(axis=-1)
+    h[~finite_h] = 0.0
+    hb = cov.rows_times(h, everything)  # H B
+    departure_std = np.sqrt(np.einsum("pcn,pcn->pc", h, hb) + problem.r)  # sqrt(H B H^T + R)_ii
+    flag = np.where(finite_h, raw["flag"], raw["flag"] | 1)
+    reason = _qc.screen(problem.y, raw["bt"], flag, departure_std, settings.qc_threshold)
+    used = reason == _qc.USED
+    weight = np.where(used, 1.0 / problem.r, 0.0)
+    sqrt_w = np.sqrt(weight)
+    screening = _Screening(h_xb=raw["bt"], departure_std=departure_std, reason=reason, used=used,
+                           weight=weight, sqrt_w=sqrt_w, n_used=used.sum(axis=1))
+
+    hx = np.where(used, raw["bt"], 0.0)
+    h *= sqrt_w[..., None]
+    cost_now = _observation_cost(hx, problem.y, weight)
+    cost = np.full((n_prof, settings.max_iter + 1), np.nan)
+    trial_cost = cost.copy()
+    cost[:, 0] = trial_cost[:, 0] = cost_now
+    x = problem.xb.copy()
+    state = _Iterates(
+        x=x, cols=cols_b, hx=hx, h_tilde=h, binv_dx=np.zeros_like(x), cost_now=cost_now,
+        gamma=np.full(n_prof, settings.gamma0), grad=np.zeros_like(x),
+        blocked=np.zeros(x.shape, dtype=bool), slope=np.zeros_like(x),
+        system=[np.zeros_like(x), np.zeros(used.shape), np.zeros_like(h), np.zeros(used.shape + used.shape[1:])],
+        d2=np.full(n_prof, np.nan), active=screening.n_used > 0,
+        status=np.where(screening.n_used > 0, MAX_ITERATIONS, NO_OBSERVATIONS).astype(np.int8),
+        n_iter=np.zeros(n_prof, dtype=np.int64), n_rejected=np.zeros(n_prof, dtype=np.int64),
+        cost=cost, trial_cost=trial_cost,
+    )
+    idx = np.flatnonzero(state.active)
+    if idx.size:
+        _new_iterate(problem, screening, state, idx, hb[idx] * sqrt_w[idx, :, None])
+        _stop(state, idx[state.d2[idx] < settings.step_tol * problem.xb.shape[1]], CONVERGED)
+    return screening, state
+
+
+@one_blas_thread  # once here instead of in each of the ~5 linear-algebra calls below
+def _new_iterate(problem, screening, state: _Iterates, idx, hb=None):
+    """Gradient, active set, step system and d^2 at the iterates of ``idx``."""
+    grad = _gradient(state.binv_dx[idx], state.h_tilde[idx], state.hx[idx], problem.y[idx],
+                     screening.sqrt_w[idx])
+    blocked, slope, parts, dx = _active_set(problem, idx, state.x[idx], grad, state.cols.subset(idx),
+                                            state.h_tilde[idx], hb)
+    state.grad[idx], state.blocked[idx], state.slope[idx] = grad, blocked, slope
+    for whole, part in zip(state.system, parts):
+        whole[idx] = part
+    # d^2 = g^T (B^-1 + H^T R^-1 H)^-1 g = -g^T dx of the undamped step over the free subspace
+    state.d2[idx] = -np.einsum("pn,pn->p", grad, dx)
+
+
+def _stop(state: _Iterates, columns, status):
+    state.status[columns] = status
+    state.active[columns] = False
+
+
+@dataclasses.dataclass
+class _Trial:
+    """The projected states tried from the iterates of some columns, and what they cost."""
+
+    cols: object  # Columns
+    x: np.ndarray  # [k, n]
+    hx: np.ndarray  # [k, C] H(x), 0 where unused [K]
+    h: np.ndarray  # [k, C, n] H (raw rows, unweighted)
+    binv_dx: np.ndarray  # [k, n]
+    cost: np.ndarray  # [k], NaN when invalid
+    valid: np.ndarray  # [k] finite and unflagged on every used channel
+
+
+def _try_step(problem, screening, state: _Iterates, idx) -> _Trial:
+    """One damped step from the iterates of ``idx``, projected, and one operator call there."""
+    step = _damped_step([part[idx] for part in state.system], 1.0 + state.gamma[idx],
+                        state.blocked[idx], state.coupling(idx, problem))
+    cols, x = from_control(state.x[idx] - step, state.cols.subset(idx), problem.layout)
+    raw, h = problem.run(cols)
+    u = screening.used[idx]
+    valid = (
+        (np.isfinite(raw["bt"]) | ~u).all(axis=1)
+        & ((raw["flag"] == 0) | ~u).all(axis=1)
+        & (np.isfinite(h).all(axis=-1) | ~u).all(axis=1)
+    )
+    hx = np.where(u, raw["bt"], 0.0)
+    dxb = x - problem.xb[idx]
+    binv_dx = problem.cov.inv_times(dxb, idx)
+    cost = 0.5 * np.einsum("pn,pn->p", dxb, binv_dx) + _observation_cost(hx, problem.y[idx], screening.weight[idx])
+    return _Trial(cols=cols, x=x, hx=hx, h=h, binv_dx=binv_dx, cost=np.where(valid, cost, np.nan), valid=valid)
+
+
+def _move_to(state: _Iterates, screening, idx, trial: _Trial, accept):
+    """Make the accepted trials the iterates of their columns."""
+    acc = idx[accept]
+    state.x[acc] = trial.x[accept]
+    state.binv_dx[acc] = trial.binv_dx[accept]
+    state.hx[acc] = trial.hx[accept]
+    # Unused rows may hold non-finite values: select first (inf * 0 is NaN).
+    state.h_tilde[acc] = (np.where(screening.used[acc, :, None], trial.h[accept], 0.0)
+                          * screening.sqrt_w[acc, :, None])
+    state.cost_now[acc] = trial.cost[accept]
+    state.cols = _replace_columns(state.cols, acc, trial.cols.subset(np.flatnonzero(accept)))
+
+
+def _iterate(problem, screening, state: _Iterates, idx, it, settings: _Settings):
+    """One iteration of the columns ``idx``: try a step, accept or reject, test convergence."""
+    trial = _try_step(problem, screening, state, idx)
+    state.trial_cost[idx, it] = trial.cost
+    state.n_iter[idx] = it
+    if settings.damped:
+        accept = trial.valid & (trial.cost <= state.cost_now[idx])
+    else:
+        accept = trial.valid
+        _stop(state, idx[~trial.valid], INVALID_TRIAL)
+    _move_to(state, screening, idx, trial, accept)
+    state.cost[idx, it] = state.cost_now[idx]
+    acc = idx[accept]
+    if settings.damped:
+        state.gamma[acc] /= settings.lm_factor
+        state.gamma[idx[~accept]] *= settings.lm_factor
+        state.n_rejected[idx[~accept]] += 1
+        # A rejected step leaves the iterate (and its d^2) as it was: it has converged
+        # when the cost no longer resolves the decrease still predicted there.
+        rej = idx[~accept & trial.valid]
+        _stop(state, rej[_unresolved(state.d2[rej], screening.n_used[rej], settings)], CONVERGED)
+    if acc.size:
+        _new_iterate(problem, screening, state, acc)
+        _stop(state, acc[state.d2[acc] < settings.step_tol * problem.xb.shape[1]], CONVERGED)
+
+
+def _unresolved(d2, n_used, settings: _Settings):
+    """The decrease the quadratic model still predicts, d^2 / 2, is below the cost
+    resolution cost_tol * max(m, 1) (m used observations)."""
+    return 0.5 * d2 < settings.cost_tol * np.maximum(n_used, 1)
 
 
 def _replace_columns(cols, index, new):
@@ -508,33 +727,40 @@ def _analysis_matrices(cov: _Covariance, h_tilde, system, blocked, matrices: boo
     and active set there: without blocked elements its H~ B and H~ B H~^T are the
     unconditioned ones and are reused.
     """
-    hb, gmat = system[2].copy(), system[3].copy()
+    hb, gmat = system[2], system[3]
     rows = np.flatnonzero(blocked.any(axis=1))
     if rows.size:
+        hb, gmat = hb.copy(), gmat.copy()
         hb[rows] = cov.rows_times(h_tilde[rows], rows)
         gmat[rows] = hb[rows] @ _t(h_tilde[rows])
-    # With L L^T = H~ B H~^T + I: G~^T = L^-T L^-1 H~ B and G~ H~ B = M^T M, M = L^-1 H~ B
-    # (C x C factors only; S = B - M^T M is symmetric up to the BLAS summation order,
-    # exactly so with OpenBLAS).
+    # With L L^T = H~ B H~^T + I, M = L^-1 H~ B and N = L^-1 H~: G~ = M^T L^-1,
+    # A = G~ H~ = M^T N and S = B - M^T M (C x C factors only; both products in one
+    # matrix product M^T [M | N]).
+    n = hb.shape[-1]
     l_inv = np.linalg.inv(np.linalg.cholesky(gmat + np.eye(gmat.shape[-1])))
-    m = l_inv @ hb
-    gain_t = _t(l_inv) @ m
-    diag_a = np.einsum("pcn,pcn->pn", gain_t, h_tilde)
-    kernel = s_hat = None
-    if matrices:
-        kernel = _t(gain_t) @ h_tilde
-        s_hat = _t(m) @ m
-        np.subtract(cov.b, s_hat, out=s_hat)
-        s_diag = np.einsum("pii->pi", s_hat)
-    else:
+    if not matrices:
+        m, n_ = l_inv @ hb, l_inv @ h_tilde
         s_diag = cov.diagonal(len(hb)) - np.einsum("pcn,pcn->pn", m, m)
-    return diag_a, s_diag, kernel, s_hat
+        return np.einsum("pcn,pcn->pn", m, n_), s_diag, None, None
+    mn = l_inv @ np.concatenate([hb, h_tilde], axis=2)  # [N, C, 2n]
+    m = mn[..., :n]
+    both = _t(m) @ mn  # [N, n, 2n]: M^T M | M^T N
+    s_hat, kernel = both[..., :n], both[..., n:]  # views: no copies of N n^2 arrays
+    np.subtract(cov.b, s_hat, out=s_hat)
+    return np.einsum("pii->pi", kernel), np.einsum("pii->pi", s_hat), kernel, s_hat
 
 
-def _diagnostics(*, background, channels, layout, cov, h_tilde, system, blocked, y, h_xb, hx, used,
-                 reason, departure_std, r, cost_background, cost_observation, cost, trial_cost,
-                 status, n_iter, n_rejected, gamma, diagnostic_matrices, settings) -> xr.Dataset:
-    diag_a, s_diag, kernel, s_hat = _analysis_matrices(cov, h_tilde, system, blocked, diagnostic_matrices)
+def _diagnostics(background, problem: _Problem, screening: _Screening, state: _Iterates,
+                 settings: _Settings) -> xr.Dataset:
+    layout, cov, channels = problem.layout, problem.cov, problem.channels
+    y, hx, used, r = problem.y, state.hx, screening.used, problem.r
+    h_xb, reason, departure_std = screening.h_xb, screening.reason, screening.departure_std
+    cost, trial_cost, status = state.cost, state.trial_cost, state.status
+    diagnostic_matrices = settings.diagnostic_matrices
+    cost_background = 0.5 * np.einsum("pn,pn->p", state.x - problem.xb, state.binv_dx)
+    cost_observation = _observation_cost(hx, y, screening.weight)
+    diag_a, s_diag, kernel, s_hat = _analysis_matrices(cov, state.h_tilde, state.system, state.blocked,
+                                                       diagnostic_matrices)
     groups = np.array(layout.groups)
     group_names = list(dict.fromkeys(layout.groups))
     dfs_by = np.stack([diag_a[:, groups == g].sum(axis=1) for g in group_names], axis=1)
@@ -566,9 +792,12 @@ def _diagnostics(*, background, channels, layout, cov, h_tilde, system, blocked,
         "converged": ("profile", np.isin(status, (CONVERGED, NO_OBSERVATIONS)),
                       {"long_name": "minimisation converged (or nothing to minimise)"}),
         "status": ("profile", status, status_attrs),
-        "n_iterations": ("profile", n_iter, {"long_name": "operator calls after the first guess"}),
-        "n_rejected_steps": ("profile", n_rejected, {"long_name": "Levenberg-Marquardt steps rejected"}),
-        "final_lm_damping": ("profile", gamma, {"long_name": "Levenberg-Marquardt gamma at the end", "units": "1"}),
+        "n_iterations": ("profile", state.n_iter, {"long_name": "operator calls after the first guess"}),
+        "n_rejected_steps": ("profile", state.n_rejected, {"long_name": "Levenberg-Marquardt steps rejected"}),
+        "final_lm_damping": ("profile", state.gamma, {"long_name": "Levenberg-Marquardt gamma at the end", "units": "1"}),
+        "step_size_d2": ("profile", state.d2, {
+            "long_name": "d^2 = g^T S g, the undamped Gauss-Newton step size at the analysis "
+                         "(NaN: no observations)", "units": "1"}),
         "n_used": ("profile", used.sum(axis=1), {"long_name": "observations used"}),
         "qc_reason": (pc, reason, _qc.reason_attrs()),
         "qc_count": ("qc_category", _qc.reason_counts(reason).values,
@@ -584,7 +813,7 @@ def _diagnostics(*, background, channels, layout, cov, h_tilde, system, blocked,
                 {"long_name": "degrees of freedom for signal, trace(A)", "units": "1"}),
         "dfs_by_variable": (("profile", "control_group"), dfs_by,
                             {"long_name": "partial trace of the averaging kernel per variable", "units": "1"}),
-        "background_error_std": (("profile", ROW), np.sqrt(cov.diagonal(len(h_tilde))),
+        "background_error_std": (("profile", ROW), np.sqrt(cov.diagonal(len(y))),
                                  {"long_name": "sqrt(diag(B))", "units": "K or 1 (see control_row)"}),
         "analysis_error_std": (("profile", ROW), np.sqrt(s_diag),
                                {"long_name": "sqrt(diag(S)), S analysis error covariance",
@@ -596,6 +825,6 @@ def _diagnostics(*, background, channels, layout, cov, h_tilde, system, blocked,
         data["analysis_error_covariance"] = (("profile", ROW, COL), s_hat, {
             "long_name": "analysis error covariance S = (B^-1 + H^T R^-1 H)^-1", "units": "K2, K or 1"})
     ds = xr.Dataset(data, coords=coords)
-    ds.attrs.update({f"setting_{k}": v for k, v in settings.items()})
+    ds.attrs.update({f"setting_{k}": v for k, v in settings.attrs(problem.tolerated_bits).items()})
     ds.attrs["cost_convention"] = COST_CONVENTION
     return ds
