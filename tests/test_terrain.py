@@ -249,3 +249,22 @@ def test_physical_operator_and_cli_take_terrain(tmp_path, demo_instrument, profi
     with open_dataset(tmp_path / "out.nc") as out:
         for name in ("brightness_temperature",) + JACOBIANS:
             np.testing.assert_allclose(out[name].values, direct[name].values, rtol=1e-12, atol=0)
+
+
+def test_emulator_flags_an_invalid_ground_like_any_bad_value(tiny_bundle, demo_instrument):
+    """A non-finite or out-of-column surface_air_pressure is invalid input (flagged), not
+    terrain: the emulator masks that profile and computes the others exactly."""
+    from rtemu.runtime import EmulatedOperator
+    from rtemu.sampling import draw_states
+
+    op = EmulatedOperator.load(tiny_bundle)
+    ds = draw_states(3, seed=6, pressure_hpa=op.pressure_hpa, channels=demo_instrument)
+    ds = ds[["air_pressure", "air_temperature", "specific_humidity", "surface_temperature",
+             "surface_emissivity", "sensor_zenith_angle"]]
+    bottom = op.pressure_hpa.max()
+    out = op.simulate(ds.assign(surface_air_pressure=("profile", [bottom, np.nan, bottom + 5.0])))
+    plain = op.simulate(ds)
+    assert (out["quality_flag"].values[1:] & flags.INVALID_INPUT).all()
+    assert np.isnan(out["brightness_temperature"].values[1:]).all()
+    np.testing.assert_array_equal(out["brightness_temperature"].values[0], plain["brightness_temperature"].values[0])
+    assert "surface_air_pressure: non-finite" in out.attrs["invalid_input_summary"]
