@@ -25,8 +25,6 @@ INPUT_VARIABLES = (
     "surface_emissivity",
     "sensor_zenith_angle",
 )
-#: Optional inputs: ``surface_air_pressure`` (profile) [hPa], the ground (terrain).
-OPTIONAL_VARIABLES = ("surface_air_pressure",)
 
 TEMPERATURE_RANGE_K = (100.0, 400.0)
 HUMIDITY_MAX = 0.1  # [kg kg-1], exclusive
@@ -113,7 +111,8 @@ def prepare_inputs(
     Parameters
     ----------
     dataset : xarray.Dataset
-        Variables of :data:`INPUT_VARIABLES` with dims profile, level (and channel).
+        Variables of :data:`INPUT_VARIABLES` with dims profile, level (and channel);
+        optionally ``surface_air_pressure`` (profile) [hPa], the ground.
     channel_ids : tuple of str
         The operator's channels; a ``channel`` coordinate in ``dataset`` must equal them
         (in any order).
