@@ -15,7 +15,7 @@ import xarray as xr
 
 from rtemu._units import unit_conversion
 from rtemu.atmosphere import saturation_specific_humidity
-from rtemu.levels import LevelMap, SurfaceCut, cut_at_surface
+from rtemu.levels import GRID_TOLERANCE_HPA, LevelMap, SurfaceCut, cut_at_surface, surface_on_grid
 
 INPUT_VARIABLES = (
     "air_pressure",
@@ -291,7 +291,7 @@ def _supersaturated(p, t, q, ps, valid) -> np.ndarray:
 
 
 def onto_grid(prep: Prepared, grid_hpa: np.ndarray, errors: ErrorMode = "raise",
-              tolerance_hpa: float = 1e-3) -> tuple[Prepared, LevelMap]:
+              tolerance_hpa: float = GRID_TOLERANCE_HPA) -> tuple[Prepared, LevelMap]:
     """``prep``'s profiles carried onto an operator's grid (:class:`rtemu.levels.LevelMap`).
 
     The result is surface-first on ``grid_hpa``; its ``surface_air_pressure`` is the
@@ -316,7 +316,7 @@ def onto_grid(prep: Prepared, grid_hpa: np.ndarray, errors: ErrorMode = "raise",
     levelmap = LevelMap(prep.pressure_hpa, grid)
     n = prep.valid.size
     ps = levelmap.source_bottom_hpa if prep.surface_air_pressure is None else prep.surface_air_pressure
-    ps = np.where(np.abs(ps - grid[0]) <= tolerance_hpa, grid[0], ps)
+    ps = surface_on_grid(ps, grid, tolerance_hpa)
     outside = ((ps <= grid[-1]) | (ps > grid[0])) & prep.valid
     problems = list(prep.problems)
     if outside.any():

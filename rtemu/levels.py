@@ -29,6 +29,10 @@ import xarray as xr
 
 from rtemu._units import unit_conversion
 
+#: A surface within this distance of a grid's bottom level is taken as that level [hPa]
+#: (the emulator's default tolerance between a dataset's levels and its grid, too).
+GRID_TOLERANCE_HPA = 1e-3
+
 
 def _bracket(source_hpa: np.ndarray, target_hpa: np.ndarray):
     """Lower bracketing level and weight of ln-p interpolation, constant outside.
@@ -240,6 +244,14 @@ class LevelMap:
         return out.reshape(shape[:-1] + (self.n_source,))
 
 
+def surface_on_grid(surface_hpa, grid_hpa, tolerance_hpa: float = GRID_TOLERANCE_HPA) -> np.ndarray:
+    """The surface pressure a profile gets on a grid [hPa]: ``surface_hpa`` [N], or the
+    grid's bottom level where it lies within ``tolerance_hpa`` [hPa] of it."""
+    bottom = np.max(grid_hpa)
+    surface = np.asarray(surface_hpa, dtype=float)
+    return np.where(np.abs(surface - bottom) <= tolerance_hpa, bottom, surface)
+
+
 def _level_map(dataset: xr.Dataset, pressure_hpa) -> LevelMap:
     if "air_pressure" not in dataset.variables:
         raise ValueError("dataset has no air_pressure (rule: the source levels are needed)")
@@ -281,8 +293,10 @@ def regrid_profiles(dataset: xr.Dataset, pressure_hpa) -> xr.Dataset:
     ...) is carried onto the new levels with :class:`LevelMap` (constant beyond the
     source's top and lowest levels); ``air_pressure`` becomes ``pressure_hpa`` (level,)
     [hPa]; ``surface_air_pressure`` (profile) [hPa] is kept, or set to the source's lowest
-    level, so that an operator computes the column above the source's surface only.
-    Variables without a level dimension are kept.
+    level, so that an operator computes the column above the source's surface only
+    (within :data:`GRID_TOLERANCE_HPA` of the grid's bottom: the bottom). A surface under
+    the grid's bottom is left as it is: operators refuse it (the grid does not reach the
+    ground). Variables without a level dimension are kept.
 
     Parameters
     ----------
@@ -302,9 +316,13 @@ def regrid_profiles(dataset: xr.Dataset, pressure_hpa) -> xr.Dataset:
     mapped = _map_level_variables(dataset, levelmap.apply, grid.size)
     out = _replace_levels(dataset, mapped)
     out["air_pressure"] = xr.Variable(("level",), grid, {"units": "hPa"})
-    if "surface_air_pressure" not in dataset.variables:
-        out["surface_air_pressure"] = xr.Variable(
-            ("profile",), levelmap.source_bottom_hpa * np.ones(dataset.sizes["profile"]), {"units": "hPa"})
+    if "surface_air_pressure" in dataset.variables:
+        var = dataset.variables["surface_air_pressure"]
+        scale, offset = unit_conversion("surface_air_pressure", var.attrs.get("units"))
+        surface = var.values * scale + offset
+    else:
+        surface = levelmap.source_bottom_hpa * np.ones(dataset.sizes["profile"])
+    out["surface_air_pressure"] = xr.Variable(("profile",), surface_on_grid(surface, grid), {"units": "hPa"})
     return out
 
 

@@ -31,6 +31,7 @@ from rtemu import flags as _flags
 from rtemu import physics as _physics
 from rtemu._checks import onto_grid, prepare_inputs
 from rtemu.instrument import Instrument, load_instrument
+from rtemu.levels import GRID_TOLERANCE_HPA
 
 ErrorMode = Literal["raise", "mask"]
 
@@ -225,7 +226,7 @@ class EmulatedOperator(_OperatorBase):
 
     def __init__(self, *, path, channels=None, batch_size: int = 4096, threads: int | None = None,
                  fallback: Literal[None, "physics"] = None, errors: ErrorMode = "mask",
-                 grid_tolerance_hpa: float = 1e-3, regrid: bool = False):
+                 grid_tolerance_hpa: float = GRID_TOLERANCE_HPA, regrid: bool = False):
         from rtemu import bundle as _bundle
 
         if fallback not in (None, "physics"):

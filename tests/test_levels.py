@@ -149,6 +149,22 @@ def test_jacobians_on_model_levels_against_finite_differences(demo_instrument, m
     assert np.abs(jac["jacobian_air_temperature"].values[:, :, 0]).max() > 0
 
 
+def test_profiles_already_on_the_grid_are_unchanged(demo_instrument, small_profiles):
+    """Carried onto their own grid (given in either order), profiles compute bit for bit as
+    without the option; a lowest level 1e-4 hPa off the grid's bottom (within the tolerance)
+    counts as the bottom."""
+    ds = small_profiles(n=3, nlev=45, seed=12)
+    grid = ds["air_pressure"].values
+    plain = physics.simulate(demo_instrument, ds, jacobian=True)
+    nudged = ds.copy(deep=True)
+    nudged["air_pressure"].values[0] += 1e-4
+    for op_grid in (grid, grid[::-1]):
+        out = PhysicalOperator(demo_instrument, grid_hpa=op_grid, errors="raise").simulate(ds, jacobian=True)
+        for name in ("brightness_temperature", "jacobian_air_temperature", "jacobian_specific_humidity"):
+            np.testing.assert_array_equal(out[name].values, plain[name].values)
+    assert (regrid_profiles(nudged, grid)["surface_air_pressure"].values == grid[0]).all()
+
+
 def test_surface_below_the_grid_is_invalid(demo_instrument, model_profiles):
     deep = model_profiles.copy(deep=True)
     deep["air_pressure"].values[2] *= 1.2  # profile 2 now reaches 720-1250 hPa: under the grid
@@ -195,6 +211,9 @@ def test_cli_regrid_and_info_grid(tmp_path, tiny_bundle, demo_instrument, model_
     assert main(["simulate", "--model", str(tiny_bundle), "--input", str(tmp_path / "model.nc"),
                  "--output", str(tmp_path / "y.nc"), "--quiet"]) == 2
     assert "regrid" in capsys.readouterr().err
+    assert main(["simulate", "--model", str(tiny_bundle), "--regrid", "--input", str(tmp_path / "model.nc"),
+                 "--output", str(tmp_path / "y.nc"), "--quiet"]) == 2
+    assert "this emulator has no terrain" in capsys.readouterr().err
     assert not (tmp_path / "x.nc").exists() and not (tmp_path / "y.nc").exists()
     assert main(["info", str(tiny_bundle)]) == 0
     text = capsys.readouterr().out
