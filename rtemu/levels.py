@@ -195,13 +195,17 @@ class LevelMap:
         target = np.broadcast_to(target, (n, target.shape[1]))
         if source.shape[1] < 2:
             raise ValueError(f"source levels: {source.shape[1]} level(s) (rule: at least two)")
+        for name, levels in (("source", source), ("target", target)):
+            with np.errstate(invalid="ignore"):
+                bad = ~(np.isfinite(levels) & (levels > 0)).all(axis=1)
+            if bad.any():
+                raise ValueError(f"{name} levels: non-finite or non-positive pressure (rule: finite, > 0 hPa); "
+                                 f"first offending profile index {int(np.flatnonzero(bad)[0])}")
         steps = np.diff(source, axis=1)
-        if not (np.all(source > 0) and np.all(target > 0)):
-            raise ValueError("levels: non-positive pressure (rule: pressure > 0 hPa)")
-        if not ((steps < 0).all(axis=1) | (steps > 0).all(axis=1)).all():
-            bad = int(np.flatnonzero(~((steps < 0).all(axis=1) | (steps > 0).all(axis=1)))[0])
+        monotonic = (steps < 0).all(axis=1) | (steps > 0).all(axis=1)
+        if not monotonic.all():
             raise ValueError(f"source levels: not strictly monotonic (rule: strictly monotonic per "
-                             f"profile); first offending profile index {bad}")
+                             f"profile); first offending profile index {int(np.flatnonzero(~monotonic)[0])}")
         self.n_source = source.shape[1]
         top_first = source[:, 0] < source[:, -1]
         surface_first = np.where(top_first[:, None], source[:, ::-1], source)

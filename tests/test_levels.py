@@ -249,3 +249,24 @@ def test_readme_model_levels_snippet():
     # The adjoint of dy = 1 is the Jacobian summed over channels, on the model's levels.
     np.testing.assert_allclose(grad["air_temperature"].values,
                                out["jacobian_air_temperature"].sum("channel").values, rtol=1e-12, atol=1e-15)
+
+
+@pytest.mark.parametrize("which, value, rule", [
+    ("source", np.nan, "non-finite or non-positive"), ("source", -5.0, "non-finite or non-positive"),
+    ("source", "repeat", "not strictly monotonic"), ("target", 0.0, "non-finite or non-positive")])
+def test_bad_levels_are_refused(which, value, rule):
+    source, _ = _hybrid_levels(3, 10, seed=1)
+    target = np.tile(GRID, (3, 1))
+    arr = source if which == "source" else target
+    arr[1, 4] = arr[1, 3] if value == "repeat" else value
+    with pytest.raises(ValueError, match=rf"^{which} levels: {rule} .*first offending profile index 1$"):
+        LevelMap(source, target)
+
+
+def test_docstring_examples():
+    import doctest
+
+    import rtemu.levels
+
+    result = doctest.testmod(rtemu.levels)
+    assert result.attempted >= 3 and result.failed == 0
