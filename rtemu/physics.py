@@ -450,8 +450,9 @@ def simulate(
         ``surface_air_pressure`` (profile) [hPa], the ground: the transfer then runs on
         the column above it (:func:`rtemu.levels.cut_at_surface`; it must lie in (top
         pressure, bottom pressure] of the profile), and the Jacobians of the levels under
-        the ground are zero (their values are still checked like any other). Other units are converted from each variable's ``units``
-        attribute. Levels surface-first or top-first.
+        the ground are zero (their values are still checked like any other). Other
+        units are converted from each variable's ``units`` attribute. Levels
+        surface-first or top-first.
     jacobian : bool
         Also return ``jacobian_*`` variables (in the caller's level order and units of
         the canonical inputs: K, kg kg-1).
