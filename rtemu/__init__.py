@@ -19,6 +19,11 @@ _LAZY = {
     "draw_states": "rtemu.sampling",
     "sample_to_netcdf": "rtemu.sampling",
     "default_pressure_grid": "rtemu.atmosphere",
+    # model levels and terrain
+    "LevelMap": "rtemu.levels",
+    "regrid_profiles": "rtemu.levels",
+    "regrid_tangent_linear": "rtemu.levels",
+    "regrid_adjoint": "rtemu.levels",
     # training and export
     "train_to_onnx": "rtemu.export",
     "load_recipe": "rtemu.training",
@@ -34,7 +39,7 @@ _LAZY = {
     # demo
     "run_demo": "rtemu.demo",
 }
-_LAZY_MODULES = ("assim", "atmosphere", "sampling", "training", "bundle", "runtime", "audit")
+_LAZY_MODULES = ("assim", "atmosphere", "levels", "sampling", "training", "bundle", "runtime", "audit")
 
 __all__ = [
     "__version__",
@@ -51,6 +56,12 @@ __all__ = [
     "draw_states",
     "sample_to_netcdf",
     "default_pressure_grid",
+    # model levels and terrain
+    "levels",
+    "LevelMap",
+    "regrid_profiles",
+    "regrid_tangent_linear",
+    "regrid_adjoint",
     # training and export
     "train_to_onnx",
     "load_recipe",

@@ -15,6 +15,7 @@ import xarray as xr
 
 from rtemu._units import unit_conversion
 from rtemu.atmosphere import saturation_specific_humidity
+from rtemu.levels import GRID_TOLERANCE_HPA, LevelMap, SurfaceCut, cut_at_surface, surface_on_grid
 
 INPUT_VARIABLES = (
     "air_pressure",
@@ -50,6 +51,14 @@ class Prepared:
     problems: list  # messages for invalid profiles (mask mode)
     emissivity_per_channel: bool  # input emissivity had a channel dim
     scales: dict  # variable -> unit scale (canonical per user unit)
+    surface_air_pressure: np.ndarray | None = None  # [N] hPa, None without terrain
+
+    def surface_cut(self) -> SurfaceCut | None:
+        """The column above the ground (None without ``surface_air_pressure``)."""
+        if self.surface_air_pressure is None:
+            return None
+        return cut_at_surface(self.pressure_hpa, self.air_temperature, self.specific_humidity,
+                              self.surface_air_pressure)
 
     def to_caller_order(self, levels: np.ndarray) -> np.ndarray:
         """Flip the last axis back for profiles that were given top-first."""
@@ -102,7 +111,8 @@ def prepare_inputs(
     Parameters
     ----------
     dataset : xarray.Dataset
-        Variables of :data:`INPUT_VARIABLES` with dims profile, level (and channel).
+        Variables of :data:`INPUT_VARIABLES` with dims profile, level (and channel);
+        optionally ``surface_air_pressure`` (profile) [hPa], the ground.
     channel_ids : tuple of str
         The operator's channels; a ``channel`` coordinate in ``dataset`` must equal them
         (in any order).
@@ -134,6 +144,9 @@ def prepare_inputs(
     for name in ("surface_temperature", "sensor_zenith_angle"):
         _dims(dataset, name, [("profile",)])
     e_order = _dims(dataset, "surface_emissivity", [("profile",), ("profile", "channel")])
+    terrain = "surface_air_pressure" in dataset.variables
+    if terrain:
+        _dims(dataset, "surface_air_pressure", [("profile",)])
     nchan = len(channel_ids)
 
     take = None
@@ -168,6 +181,7 @@ def prepare_inputs(
     zen, z_scale = _values(ds, "sensor_zenith_angle", ("profile",))
     em, e_scale = _values(ds, "surface_emissivity", e_order, take=take)
     em = np.broadcast_to(em.reshape(n, -1), (n, nchan)).copy() if em.ndim == 1 else em
+    ps, ps_scale = _values(ds, "surface_air_pressure", ("profile",)) if terrain else (None, None)
 
     bad = np.zeros(n, dtype=bool)
     problems: list[str] = []
@@ -185,7 +199,7 @@ def prepare_inputs(
 
     for name, arr in (("air_pressure", p), ("air_temperature", t), ("specific_humidity", q),
                       ("surface_temperature", ts), ("surface_emissivity", em),
-                      ("sensor_zenith_angle", zen)):
+                      ("sensor_zenith_angle", zen)) + ((("surface_air_pressure", ps),) if terrain else ()):
         rule(name, ~np.isfinite(arr), "non-finite value (rule: all values finite)")
     lo, hi = TEMPERATURE_RANGE_K
     with np.errstate(invalid="ignore"):
@@ -204,16 +218,13 @@ def prepare_inputs(
 
     rule("air_pressure", p > PRESSURE_MAX_HPA,
          f"above {PRESSURE_MAX_HPA:g} hPa (rule: physical range; Pa labelled hPa?)")
+    if terrain:
+        with np.errstate(invalid="ignore"):
+            outside = (ps <= p.min(axis=1)) | (ps > p.max(axis=1))
+        rule("surface_air_pressure", outside,
+             "outside the profile's levels (rule: top pressure < surface_air_pressure <= bottom pressure)")
 
     valid = ~bad
-    supersaturated = np.zeros(n, dtype=bool)
-    if valid.any():
-        # Not an error: the clear-sky model is defined for any q < 0.1, but a state above
-        # saturation is one it cannot represent; operators flag it (rtemu.flags.SUPERSATURATED).
-        rows = slice(None) if valid.all() else valid  # a slice: no copies in the usual case
-        with np.errstate(invalid="ignore"):
-            q_sat = saturation_specific_humidity(t[rows], p[rows])
-        supersaturated[rows] = (q[rows] > q_sat * (1.0 + SATURATION_TOLERANCE)).any(axis=1)
     if bad.any():
         # Give invalid profiles a harmless valid stand-in so the batch computes; their
         # outputs are set to NaN by the caller. A valid profile of the batch serves if any.
@@ -224,6 +235,8 @@ def prepare_inputs(
             stand_in = (np.geomspace(1000.0, 1.0, nlev), 250.0, 1e-4, 250.0, 0.5, 0.0)
         for arr, value in zip((p, t, q, ts, em, zen), stand_in):
             arr[bad] = value
+        if terrain:
+            ps[bad] = np.max(stand_in[0])  # the stand-in's own bottom: no terrain
 
     flipped = p[:, 0] < p[:, -1]
     if flipped.all():
@@ -232,6 +245,7 @@ def prepare_inputs(
         for arr in (p, t, q):
             arr[flipped] = arr[flipped][:, ::-1]
 
+    supersaturated = _supersaturated(p, t, q, ps, valid)
     return Prepared(
         pressure_hpa=p,
         air_temperature=t,
@@ -251,5 +265,78 @@ def prepare_inputs(
             "surface_temperature": ts_scale,
             "surface_emissivity": e_scale,
             "sensor_zenith_angle": z_scale,
+            **({"surface_air_pressure": ps_scale} if terrain else {}),
         },
+        surface_air_pressure=ps,
     )
+
+
+def _supersaturated(p, t, q, ps, valid) -> np.ndarray:
+    """[N] bool: q above saturation over water at some level of the column above the ground.
+
+    Not an error: the clear-sky model is defined for any q < 0.1, but a state above
+    saturation is one it cannot represent; operators flag it (rtemu.flags.SUPERSATURATED).
+    """
+    supersaturated = np.zeros(p.shape[0], dtype=bool)
+    if not valid.any():
+        return supersaturated
+    if ps is not None:  # the levels the transfer sees (those under the ground do not count)
+        cut = cut_at_surface(p, t, q, ps)
+        p, t, q = cut.pressure_hpa, cut.air_temperature, cut.specific_humidity
+    rows = slice(None) if valid.all() else valid  # a slice: no copies in the usual case
+    with np.errstate(invalid="ignore"):
+        q_sat = saturation_specific_humidity(t[rows], p[rows])
+    supersaturated[rows] = (q[rows] > q_sat * (1.0 + SATURATION_TOLERANCE)).any(axis=1)
+    return supersaturated
+
+
+def onto_grid(prep: Prepared, grid_hpa: np.ndarray, errors: ErrorMode = "raise",
+              tolerance_hpa: float = GRID_TOLERANCE_HPA) -> tuple[Prepared, LevelMap]:
+    """``prep``'s profiles carried onto an operator's grid (:class:`rtemu.levels.LevelMap`).
+
+    The result is surface-first on ``grid_hpa``; its ``surface_air_pressure`` is the
+    source's (or its lowest level) [hPa], within ``tolerance_hpa`` of the grid's bottom
+    taken as the bottom. A surface outside the grid, (top, bottom], makes the profile
+    invalid (ValueError with ``errors="raise"``).
+
+    Parameters
+    ----------
+    prep : Prepared
+        Validated profiles on the caller's levels.
+    grid_hpa : ndarray [K]
+        The operator's levels, surface first [hPa].
+
+    Returns
+    -------
+    (Prepared, LevelMap)
+        The profiles on the grid (``flipped`` all False), and the map from ``prep``'s
+        surface-first levels to the grid (its adjoint takes Jacobians back).
+    """
+    grid = np.asarray(grid_hpa, dtype=float)
+    levelmap = LevelMap(prep.pressure_hpa, grid)
+    n = prep.valid.size
+    ps = levelmap.source_bottom_hpa if prep.surface_air_pressure is None else prep.surface_air_pressure
+    ps = surface_on_grid(ps, grid, tolerance_hpa)
+    outside = ((ps <= grid[-1]) | (ps > grid[0])) & prep.valid
+    problems = list(prep.problems)
+    if outside.any():
+        first = int(np.flatnonzero(outside)[0])
+        message = (f"surface_air_pressure: {ps[first]:.6g} hPa (the profile's surface, or its lowest level) "
+                   f"is outside the operator's grid {grid[-1]:g}-{grid[0]:g} hPa (rule: grid top < surface "
+                   f"<= grid bottom); first offending profile index {first}")
+        if errors == "raise":
+            _fail(message)
+        problems.append(f"{message} ({int(outside.sum())} profile(s))")
+    valid = prep.valid & ~outside
+    ps = np.where(valid, ps, grid[0])
+    on_grid = dataclasses.replace(
+        prep,
+        pressure_hpa=np.broadcast_to(grid, (n, grid.size)).copy(),
+        air_temperature=levelmap.apply(prep.air_temperature),
+        specific_humidity=levelmap.apply(prep.specific_humidity),
+        flipped=np.zeros(n, dtype=bool),
+        valid=valid,
+        problems=problems,
+        surface_air_pressure=ps,
+    )
+    return on_grid, levelmap

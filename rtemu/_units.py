@@ -13,12 +13,14 @@ _TEMPERATURE = {
     **{u: (1.0, 0.0) for u in ("K", "k", "kelvin", "Kelvin", "degK", "deg_K", "degrees_K")},
     **{u: (1.0, 273.15) for u in ("degC", "deg_C", "celsius", "Celsius", "degrees_C", "°C", "C")},
 }
+_PRESSURE = {
+    **{u: (1.0, 0.0) for u in ("hPa", "hpa", "mbar", "mb", "millibar")},
+    **{u: (0.01, 0.0) for u in ("Pa", "pa", "pascal")},
+    "kPa": (10.0, 0.0),
+}
 _UNITS = {
-    "air_pressure": {
-        **{u: (1.0, 0.0) for u in ("hPa", "hpa", "mbar", "mb", "millibar")},
-        **{u: (0.01, 0.0) for u in ("Pa", "pa", "pascal")},
-        "kPa": (10.0, 0.0),
-    },
+    "air_pressure": _PRESSURE,
+    "surface_air_pressure": _PRESSURE,
     "air_temperature": _TEMPERATURE,
     "surface_temperature": _TEMPERATURE,
     "specific_humidity": {
@@ -34,6 +36,7 @@ _UNITS = {
 
 CANONICAL_UNITS = {
     "air_pressure": "hPa",
+    "surface_air_pressure": "hPa",
     "air_temperature": "K",
     "surface_temperature": "K",
     "specific_humidity": "kg kg-1",

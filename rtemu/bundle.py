@@ -374,6 +374,12 @@ def _kernels_summary(features: dict) -> str:
     return "; ".join(parts) + ("; with the reflected-sky term" if features.get("reflection_kernels") else "")
 
 
+def _grid_lines(grid, per_line: int = 10) -> list[str]:
+    """The grid's pressures [hPa], ``per_line`` to a line, in the bundle's order."""
+    values = [f"{x:.7g}" for x in np.asarray(grid, dtype=float)]
+    return ["    " + " ".join(f"{v:>10s}" for v in values[i : i + per_line]) for i in range(0, len(values), per_line)]
+
+
 def describe(path) -> str:
     """Human-readable summary of a bundle's metadata (for ``rtemu info``)."""
     b = read_bundle(path)
@@ -385,7 +391,9 @@ def describe(path) -> str:
         f"  instrument         {b.instrument.name}: {b.instrument.description}",
         f"  channels           {len(b.channel_ids)}: {', '.join(b.channel_ids)}",
         f"  pressure grid      {grid.size} levels, {grid[0]:g} .. {grid[-1]:g} hPa "
-        f"({'surface' if grid[0] > grid[-1] else 'top'} first)",
+        f"({'surface' if grid[0] > grid[-1] else 'top'} first; inputs on other levels: regrid, see "
+        "'rtemu simulate --help')",
+        *_grid_lines(grid),
         f"  recipe             {b.recipe_name} (sha256 {hashlib.sha256(b.recipe_toml.encode()).hexdigest()[:16]}...)",
         f"  training data      sha256 {b.training_data_sha256}",
         f"  weights            sha256 {b.weights_sha256}",

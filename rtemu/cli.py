@@ -24,6 +24,11 @@ def _add_simulate(sub):
     p.add_argument("--input", required=True, help="netCDF file of profiles")
     p.add_argument("--output", required=True, help="netCDF file to write")
     p.add_argument("--jacobian", action="store_true", help="also write the Jacobians")
+    p.add_argument("--regrid", nargs="?", const=True, default=False, metavar="LEVELS_FILE",
+                   help="profiles on other levels (e.g. a model's): carry them onto the operator's grid, "
+                   "linear in ln p, their lowest level (or surface_air_pressure) as the ground; Jacobians "
+                   "come back on the file's levels. With --model the bundle's grid (no file); with "
+                   "--instrument the grid of LEVELS_FILE (as for 'rtemu sample --levels')")
     scale = p.add_mutually_exclusive_group()
     scale.add_argument("--workers", type=int, default=None, help="local worker processes (dask)")
     scale.add_argument("--scheduler", default=None, help="dask.distributed scheduler address")
@@ -35,12 +40,19 @@ def _add_simulate(sub):
 def _run_simulate(args):
     from rtemu import streaming
 
+    grid = None
+    if isinstance(args.regrid, str):
+        from rtemu.sampling import read_levels_file
+
+        grid = read_levels_file(args.regrid)
     streaming.simulate_file(
         input_path=args.input,
         output_path=args.output,
         instrument=args.instrument,
         model=args.model,
         jacobian=args.jacobian,
+        regrid=bool(args.regrid),
+        grid_hpa=grid,
         workers=args.workers,
         scheduler=args.scheduler,
         chunk_size=args.chunk_size,

@@ -30,6 +30,7 @@ Liou, K. N. (2002), An Introduction to Atmospheric Radiation, 2nd ed., Academic 
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 from typing import Literal
 
@@ -38,7 +39,7 @@ import xarray as xr
 from xarray.indexes import PandasIndex
 
 from rtemu import flags as _flags
-from rtemu._checks import prepare_inputs
+from rtemu._checks import onto_grid, prepare_inputs
 from rtemu.constants import COSMIC_BACKGROUND_TEMPERATURE, EPSILON, STANDARD_GRAVITY
 from rtemu.instrument import Instrument, load_instrument
 from rtemu.planck import inverse_planck, planck, planck_coefficients, planck_derivative
@@ -387,14 +388,24 @@ def label_outputs(arrays: dict, dataset: xr.Dataset, channel_ids, flag) -> xr.Da
     return xr.Dataset(data, coords=_carried_coordinates(dataset, channel_ids))
 
 
-def _compute(instrument, dataset, jacobian, errors, block_size):
+def _compute(instrument, dataset, jacobian, errors, block_size, grid_hpa=None):
+    """Validate ``dataset``, run the transfer, return Jacobians on the caller's levels.
+
+    With ``surface_air_pressure`` the transfer runs on the column above the ground
+    (:func:`rtemu.levels.cut_at_surface`); with ``grid_hpa`` (surface first [hPa]) the
+    profiles are first carried onto that grid (:func:`rtemu._checks.onto_grid`).
+    """
     inst = load_instrument(instrument)
-    prep = prepare_inputs(dataset, inst.channel_ids, errors=errors)
+    caller = prepare_inputs(dataset, inst.channel_ids, errors=errors)
+    prep, levelmap = caller, None
+    if grid_hpa is not None:
+        prep, levelmap = onto_grid(caller, grid_hpa, errors)
+    cut = prep.surface_cut()
+    column = (prep.pressure_hpa, prep.air_temperature, prep.specific_humidity) if cut is None else \
+        (cut.pressure_hpa, cut.air_temperature, cut.specific_humidity)
     arrays = transfer(
         inst,
-        prep.pressure_hpa,
-        prep.air_temperature,
-        prep.specific_humidity,
+        *column,
         prep.surface_temperature,
         prep.surface_emissivity,
         prep.sensor_zenith_angle,
@@ -403,11 +414,17 @@ def _compute(instrument, dataset, jacobian, errors, block_size):
     )
     for name in ("jacobian_air_temperature", "jacobian_specific_humidity"):
         if name in arrays:
-            arrays[name] = prep.to_caller_order(arrays[name])
+            if cut is not None:
+                arrays[name] = cut.jacobian_to_input_levels(arrays[name])
+            if levelmap is not None:
+                arrays[name] = levelmap.adjoint(arrays[name])
+            arrays[name] = caller.to_caller_order(arrays[name])
     flag = np.where(prep.valid, 0, _flags.INVALID_INPUT) | np.where(prep.supersaturated, _flags.SUPERSATURATED, 0)
     flag = flag[:, None] * np.ones(len(inst.channels), np.int32)
     for values in arrays.values():
         values[~prep.valid] = np.nan
+    if levelmap is not None:  # the caller's levels, with the validity on the grid
+        prep = dataclasses.replace(caller, valid=prep.valid, problems=prep.problems)
     return inst, prep, arrays, flag
 
 
@@ -429,9 +446,13 @@ def simulate(
         ``air_pressure`` (level) or (profile, level) [hPa]; ``air_temperature`` (profile,
         level) [K]; ``specific_humidity`` (profile, level) [kg kg-1];
         ``surface_temperature`` (profile) [K]; ``surface_emissivity`` (profile) or
-        (profile, channel) [1]; ``sensor_zenith_angle`` (profile) [degree]. Other units
-        are converted from each variable's ``units`` attribute. Levels surface-first or
-        top-first.
+        (profile, channel) [1]; ``sensor_zenith_angle`` (profile) [degree]; optional
+        ``surface_air_pressure`` (profile) [hPa], the ground: the transfer then runs on
+        the column above it (:func:`rtemu.levels.cut_at_surface`; it must lie in (top
+        pressure, bottom pressure] of the profile), and the Jacobians of the levels under
+        the ground are zero (their values are still checked like any other). Other
+        units are converted from each variable's ``units`` attribute. Levels
+        surface-first or top-first.
     jacobian : bool
         Also return ``jacobian_*`` variables (in the caller's level order and units of
         the canonical inputs: K, kg kg-1).
@@ -448,7 +469,12 @@ def simulate(
         ``brightness_temperature`` (profile, channel) [K], ``quality_flag`` (profile,
         channel), and with ``jacobian`` the four ``jacobian_*`` variables.
     """
-    inst, prep, arrays, flag = _compute(instrument, dataset, jacobian, errors, block_size)
+    return _simulate(instrument, dataset, jacobian, errors, block_size)
+
+
+def _simulate(instrument, dataset, jacobian, errors, block_size, grid_hpa=None) -> xr.Dataset:
+    """:func:`simulate`, optionally on the grid ``grid_hpa`` (see :func:`_compute`)."""
+    inst, prep, arrays, flag = _compute(instrument, dataset, jacobian, errors, block_size, grid_hpa)
     out = label_outputs(arrays, dataset, inst.channel_ids, flag)
     if prep.problems:
         out.attrs["invalid_input_summary"] = "; ".join(prep.problems)

@@ -9,6 +9,11 @@ rtemu ONNX bundle through onnxruntime. Both offer
   (J^T dy),
 * ``instrument`` and ``channels``.
 
+Profiles on other levels (a model's, shared or per profile) are carried onto the
+operator's grid with the ``grid_hpa`` (physical) or ``regrid`` (emulated) option, linear
+in ln p (:class:`rtemu.levels.LevelMap`); Jacobians, tangent-linear and adjoint products
+then refer to the caller's levels.
+
 A dask-backed dataset (chunked along ``profile``) stays lazy: each chunk is computed
 independently with :func:`xarray.map_blocks`; the emulator keeps one onnxruntime session
 per process, not one per chunk.
@@ -24,8 +29,9 @@ import xarray as xr
 
 from rtemu import flags as _flags
 from rtemu import physics as _physics
-from rtemu._checks import prepare_inputs
+from rtemu._checks import onto_grid, prepare_inputs
 from rtemu.instrument import Instrument, load_instrument
+from rtemu.levels import GRID_TOLERANCE_HPA
 
 ErrorMode = Literal["raise", "mask"]
 
@@ -122,23 +128,39 @@ class PhysicalOperator(_OperatorBase):
         * ``"raise"``: invalid input raises ValueError.
     block_size : int
         Profiles per vectorised block [1].
+    grid_hpa : array_like [K], optional
+        A pressure grid [hPa] to compute on: profiles on any levels are carried onto it
+        (linear in ln p, :func:`rtemu.levels.regrid_profiles`, the source's surface as
+        ``surface_air_pressure``) and the Jacobians come back on the caller's levels.
+        Default: compute on the caller's levels.
     """
 
-    def __init__(self, instrument, *, errors: ErrorMode = "mask", block_size: int = _physics.DEFAULT_BLOCK_SIZE):
+    def __init__(self, instrument, *, errors: ErrorMode = "mask", block_size: int = _physics.DEFAULT_BLOCK_SIZE,
+                 grid_hpa=None):
         self.instrument = load_instrument(instrument)
         self.errors = errors
         self.block_size = block_size
+        self.grid_hpa = None if grid_hpa is None else np.asarray(grid_hpa, dtype=float)
+        self._grid_surface_first = None
+        if self.grid_hpa is not None:
+            grid = self.grid_hpa
+            if grid.ndim != 1 or grid.size < 2 or not np.all(grid > 0) or not (
+                    np.all(np.diff(grid) < 0) or np.all(np.diff(grid) > 0)):
+                raise ValueError("grid_hpa: not a grid (rule: at least two positive, strictly monotonic "
+                                 "pressures [hPa])")
+            self._grid_surface_first = grid if grid[0] > grid[-1] else grid[::-1]
 
     def __repr__(self):
         return f"PhysicalOperator({self.instrument.name!r}, {len(self.channels)} channels)"
 
     def _simulate_eager(self, dataset, jacobian):
-        return _physics.simulate(
-            self.instrument, dataset, jacobian, errors=self.errors, block_size=self.block_size
-        )
+        return _physics._simulate(self.instrument, dataset, jacobian, self.errors, self.block_size,
+                                  self._grid_surface_first)
 
 
 # -- emulator -----------------------------------------------------------------------------
+_REGRID_HINT = ("profiles on other levels: EmulatedOperator(..., regrid=True) or 'rtemu simulate --regrid' "
+                "carries them onto the grid, linear in ln p, and returns Jacobians on their levels")
 _SESSIONS: dict = {}
 _SESSIONS_LOCK = threading.Lock()
 
@@ -190,11 +212,22 @@ class EmulatedOperator(_OperatorBase):
         * ``"raise"``: invalid input raises ValueError.
     grid_tolerance_hpa : float
         Largest accepted difference between the dataset's and the bundle's levels [hPa].
+    regrid : bool
+        * ``False`` (default): profiles must be on the bundle's grid.
+        * ``True``: profiles on any levels (shared or per profile) are carried onto the
+          bundle's grid, linear in ln p (:func:`rtemu.levels.regrid_profiles`), and the
+          Jacobians come back on the caller's levels. The source's surface (its
+          ``surface_air_pressure``, or its lowest level) must then be the grid's bottom
+          (within ``grid_tolerance_hpa``): the emulator has no terrain yet.
+
+    ``surface_air_pressure`` in a dataset is accepted only where it equals the bundle's
+    bottom level (within ``grid_tolerance_hpa``) for every profile: the emulator was not
+    trained with terrain. Compute columns over terrain with :class:`PhysicalOperator`.
     """
 
     def __init__(self, *, path, channels=None, batch_size: int = 4096, threads: int | None = 1,
                  fallback: Literal[None, "physics"] = None, errors: ErrorMode = "mask",
-                 grid_tolerance_hpa: float = 1e-3):
+                 grid_tolerance_hpa: float = GRID_TOLERANCE_HPA, regrid: bool = False):
         from rtemu import bundle as _bundle
 
         if fallback not in (None, "physics"):
@@ -207,6 +240,7 @@ class EmulatedOperator(_OperatorBase):
         self.fallback = fallback
         self.errors = errors
         self.grid_tolerance_hpa = float(grid_tolerance_hpa)
+        self.regrid = bool(regrid)
         self.bundle = _bundle.read_bundle(self.path)
         self.model_instrument = self.bundle.instrument
         model_ids = self.model_instrument.channel_ids
@@ -254,8 +288,7 @@ class EmulatedOperator(_OperatorBase):
         if diff is None:
             raise ValueError(
                 f"air_pressure: {prep.pressure_hpa.shape[1]} levels, the emulator was trained on "
-                f"{self._grid_surface_first.size} (rule: the bundle's fixed pressure grid; "
-                "interpolate first)"
+                f"{self._grid_surface_first.size} (rule: the bundle's fixed pressure grid; {_REGRID_HINT})"
             )
         bad = (diff > self.grid_tolerance_hpa).any(axis=1) & prep.valid
         if bad.any():
@@ -263,7 +296,22 @@ class EmulatedOperator(_OperatorBase):
             raise ValueError(
                 f"air_pressure: levels differ from the emulator's grid by up to "
                 f"{diff[first].max():.4g} hPa (rule: within {self.grid_tolerance_hpa:g} hPa of "
-                f"the bundle's grid); first offending profile index {first}"
+                f"the bundle's grid; {_REGRID_HINT}); first offending profile index {first}"
+            )
+
+    def _check_terrain(self, prep) -> None:
+        """Refuse terrain: the emulator was trained on columns down to its bottom level."""
+        if prep.surface_air_pressure is None:
+            return
+        bottom = self._grid_surface_first[0]
+        bad = (np.abs(prep.surface_air_pressure - bottom) > self.grid_tolerance_hpa) & prep.valid
+        if bad.any():
+            first = int(np.flatnonzero(bad)[0])
+            raise ValueError(
+                f"surface_air_pressure: {prep.surface_air_pressure[first]:.6g} hPa, but this emulator has no "
+                f"terrain (rule: the surface at the bundle's bottom level {bottom:g} hPa, within "
+                f"{self.grid_tolerance_hpa:g} hPa; compute columns over terrain with PhysicalOperator or "
+                f"'rtemu simulate --instrument'); first offending profile index {first}"
             )
 
     def _run_session(self, prep, jacobian: bool) -> dict:
@@ -317,8 +365,13 @@ class EmulatedOperator(_OperatorBase):
         return arrays
 
     def _simulate_eager(self, dataset, jacobian):
-        prep = prepare_inputs(dataset, self.channels, errors=self.errors)
-        self._check_grid(prep)
+        caller = prepare_inputs(dataset, self.channels, errors=self.errors)
+        if self.regrid:
+            prep, levelmap = onto_grid(caller, self._grid_surface_first, self.errors, self.grid_tolerance_hpa)
+        else:
+            self._check_grid(caller)
+            prep, levelmap = caller, None
+        self._check_terrain(prep)
         raw = self._run_session(prep, jacobian)
         flag = raw.pop("quality_flag")
         flag = (flag if self._subset is None else flag[:, self._subset]).astype(np.int32)
@@ -328,6 +381,10 @@ class EmulatedOperator(_OperatorBase):
             if outside.any():
                 self._recompute_with_physics(prep, outside, arrays, jacobian)
                 flag[outside] |= _flags.PHYSICS_FALLBACK
+        if levelmap is not None:  # Jacobians from the grid (surface first) to the caller's levels
+            for name, values in arrays.items():
+                if values.ndim == 3:
+                    arrays[name] = caller.to_caller_order(levelmap.adjoint(values))
         invalid = ~prep.valid
         if invalid.any():
             flag[invalid] |= _flags.INVALID_INPUT

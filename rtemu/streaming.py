@@ -31,17 +31,26 @@ def _simulate_chunk(operator, input_path: str, jacobian: bool, start: int, stop:
     return operator.simulate(block, jacobian=jacobian)
 
 
-def make_operator(*, instrument=None, model=None):
-    """The physical operator for ``instrument`` or the emulated one for ``model``."""
+def make_operator(*, instrument=None, model=None, regrid: bool = False, grid_hpa=None):
+    """The physical operator for ``instrument`` or the emulated one for ``model``.
+
+    ``regrid`` (emulator) carries profiles onto the bundle's grid; ``grid_hpa`` [hPa]
+    (physics) onto that grid (see :mod:`rtemu.runtime`).
+    """
     if (instrument is None) == (model is None):
         raise ValueError("give exactly one of instrument or model")
     if model is not None:
         from rtemu.runtime import EmulatedOperator
 
-        return EmulatedOperator.load(model)
+        if grid_hpa is not None:
+            raise ValueError("regrid: an emulator computes on its bundle's grid (rule: no levels file with a model)")
+        return EmulatedOperator.load(model, regrid=regrid)
     from rtemu.runtime import PhysicalOperator
 
-    return PhysicalOperator(instrument)
+    if regrid and grid_hpa is None:
+        raise ValueError("regrid: the physical model needs a grid to carry profiles onto (rule: a levels "
+                         "file with --instrument)")
+    return PhysicalOperator(instrument, grid_hpa=grid_hpa)
 
 
 def simulate_file(
@@ -51,6 +60,8 @@ def simulate_file(
     instrument=None,
     model=None,
     jacobian: bool = False,
+    regrid: bool = False,
+    grid_hpa=None,
     workers: int | None = None,
     scheduler: str | None = None,
     chunk_size: int | None = None,
@@ -64,6 +75,9 @@ def simulate_file(
         netCDF file in the input schema of :func:`rtemu.physics.simulate`.
     instrument, model : optional
         Exactly one: an instrument (physical model) or an rtemu ONNX bundle (emulator).
+    regrid, grid_hpa : optional
+        Carry the profiles onto the bundle's grid (``regrid``, emulator) or onto
+        ``grid_hpa`` [hPa] (physical model); Jacobians come back on the file's levels.
     workers, scheduler : optional
         Local dask worker processes, or the address of a dask.distributed scheduler whose
         workers can read ``input_path``.
@@ -73,7 +87,7 @@ def simulate_file(
     input_path = Path(input_path)
     if not input_path.is_file():
         raise FileNotFoundError(f"--input {input_path}: no such file")
-    operator = make_operator(instrument=instrument, model=model)
+    operator = make_operator(instrument=instrument, model=model, regrid=regrid, grid_hpa=grid_hpa)
     chunk_size = chunk_size or DEFAULT_CHUNK_SIZE
     with open_dataset(input_path) as ds:
         if "profile" not in ds.dims or ds.sizes["profile"] == 0:
@@ -91,6 +105,8 @@ def simulate_file(
         "operator": operator_id,
         "jacobian": jacobian,
         "chunk_size": chunk_size,
+        **({"regrid": True} if regrid else {}),
+        **({"grid_hpa": [float(x) for x in grid_hpa]} if grid_hpa is not None else {}),
     }
     attrs = {
         "title": "rtemu simulated brightness temperatures",

@@ -41,12 +41,64 @@ def _physical_case(small_profiles):
     return Case(PhysicalOperator("demo-sounder"), ds, 1e-6, 3.5, 1e-10)
 
 
-@pytest.fixture(params=["physical", "emulated"])
+def _with_terrain(ds, seed):
+    """``ds`` with a ground between levels (one profile exactly on a level, one at the bottom)."""
+    rng = np.random.default_rng(seed)
+    p = ds["air_pressure"].values
+    bottom = p.max(axis=-1) * np.ones(ds.sizes["profile"])
+    ps = np.minimum(rng.uniform(550.0, 1000.0, ds.sizes["profile"]), bottom)
+    ps[0] = bottom[0]
+    ps[1] = (p[1] if p.ndim == 2 else p)[7]  # exactly a level's pressure
+    return ds.assign(surface_air_pressure=(("profile",), ps, {"units": "hPa"}))
+
+
+def _physical_terrain_case(small_profiles):
+    ds = _with_terrain(small_profiles(n=6, nlev=40, seed=3, per_profile_pressure=True), seed=4)
+    return Case(PhysicalOperator("demo-sounder"), ds, 1e-6, 3.5, 1e-10)
+
+
+def _model_levels(ds, seed, nlev=33):
+    """``ds`` carried onto invented per-profile hybrid-like levels: p_k = a_k + b_k ps with a
+    surface pressure ps drawn over terrain (600-1010 hPa), top 0.8 hPa (T, q interpolated
+    linearly in ln p with numpy.interp, an independent route)."""
+    rng = np.random.default_rng(seed)
+    n = ds.sizes["profile"]
+    eta = np.linspace(0.0, 1.0, nlev) ** 1.4  # 0 at the surface, 1 at the top
+    b = (1.0 - eta) ** 3
+    grid = ds["air_pressure"].values
+    out_p = np.empty((n, nlev))
+    t, q = np.empty((n, nlev)), np.empty((n, nlev))
+    for i in range(n):
+        ps = rng.uniform(600.0, 1010.0)
+        a = 0.8 ** eta * ps ** (1 - eta) - b * ps  # hybrid: a_k + b_k ps spans ps .. 0.8 hPa
+        out_p[i] = a + b * ps
+        src = grid if grid.ndim == 1 else grid[i]
+        for name, dest in (("air_temperature", t), ("specific_humidity", q)):
+            dest[i] = np.interp(np.log(out_p[i]), np.log(src[::-1]), ds[name].values[i][::-1])
+    return ds.drop_vars(["air_pressure", "air_temperature", "specific_humidity", "level"], errors="ignore").assign(
+        air_pressure=(("profile", "level"), out_p, {"units": "hPa"}),
+        air_temperature=(("profile", "level"), t, {"units": "K"}),
+        specific_humidity=(("profile", "level"), q, {"units": "kg kg-1"}))
+
+
+def _physical_model_levels_case(small_profiles):
+    from conftest import demo_pressure_grid
+
+    ds = _model_levels(small_profiles(n=6, nlev=60, seed=3), seed=5)
+    op = PhysicalOperator("demo-sounder", grid_hpa=demo_pressure_grid(45, 1050.0, 0.5))
+    return Case(op, ds, 1e-6, 3.5, 1e-10)
+
+
+@pytest.fixture(params=["physical", "physical-terrain", "physical-model-levels", "emulated",
+                        "emulated-model-levels"])
 def operator_case(request, small_profiles):
     if request.param == "physical":
         return _physical_case(small_profiles)
-    emulated = request.getfixturevalue("emulated_case")
-    return emulated
+    if request.param == "physical-terrain":
+        return _physical_terrain_case(small_profiles)
+    if request.param == "physical-model-levels":
+        return _physical_model_levels_case(small_profiles)
+    return request.getfixturevalue(request.param.replace("-", "_") + "_case")
 
 
 def _direction(ds, seed, scale=1.0):
@@ -188,6 +240,32 @@ def test_lazy_equals_eager(operator_case):
 
 
 @pytest.fixture
+def emulated_model_levels_case(emulated_case):
+    """The emulator fed profiles on other levels with the same bottom (it has no terrain):
+    the bundle's grid thinned and shifted between its levels."""
+    from rtemu.runtime import EmulatedOperator
+
+    ds = emulated_case.profiles
+    grid = emulated_case.operator.pressure_hpa
+    surface_first = grid if grid[0] > grid[-1] else grid[::-1]
+    ln = np.log(surface_first)
+    src = np.exp(np.concatenate([[ln[0]], 0.5 * (ln[1:-2:2] + ln[2:-1:2]), [ln[-1]]]))
+    t = np.stack([np.interp(-np.log(src), -ln, row) for row in _surface_first(ds, "air_temperature", grid)])
+    q = np.stack([np.interp(-np.log(src), -ln, row) for row in _surface_first(ds, "specific_humidity", grid)])
+    moved = ds.drop_vars(["air_pressure", "air_temperature", "specific_humidity"]).assign(
+        air_pressure=(("level",), src, {"units": "hPa"}),
+        air_temperature=(("profile", "level"), t, {"units": "K"}),
+        specific_humidity=(("profile", "level"), q, {"units": "kg kg-1"}))
+    op = EmulatedOperator.load(emulated_case.operator.path, regrid=True)
+    return dataclasses.replace(emulated_case, operator=op, profiles=moved)
+
+
+def _surface_first(ds, name, grid):
+    values = ds[name].values
+    return values if grid[0] > grid[-1] else values[:, ::-1]
+
+
+@pytest.fixture
 def emulated_case(tiny_bundle, demo_instrument):
     from rtemu.runtime import EmulatedOperator
     from rtemu.sampling import draw_states
@@ -234,12 +312,17 @@ def _assert_labelled_like_physics(op, out, ds, jacobian):
     the physical operator; for the emulator with its own values put in)."""
     from rtemu import physics
 
-    reference = physics.simulate(op.instrument, ds, jacobian=jacobian, errors="mask")
+    reference = physics.simulate(op.instrument, ds, jacobian=jacobian, errors="mask") \
+        if not _regrids(op) else op.simulate(ds, jacobian=jacobian)
     if isinstance(op, PhysicalOperator):
         xr.testing.assert_identical(out, reference)
         return
     assert {k: v.dtype for k, v in out.variables.items()} == {k: v.dtype for k, v in reference.variables.items()}
     xr.testing.assert_identical(out, reference.copy(data={k: out[k].values for k in reference.data_vars}))
+
+
+def _regrids(op) -> bool:
+    return getattr(op, "grid_hpa", None) is not None or getattr(op, "regrid", False)
 
 
 def test_outputs_labelled_like_the_physics_function(operator_case):
