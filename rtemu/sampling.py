@@ -105,7 +105,7 @@ _REGIMES = {
         tropopause_pressure=(80.0, 120.0), tropopause_temperature_offset=(-6.0, 4.0),
         tropopause_temperature=(185.0, 200.0),
         stratopause_pressure=(0.7, 1.5), stratopause_temperature=(255.0, 275.0),
-        mesospheric_lapse_rate=(0.0, 2.8),
+        mesospheric_lapse_rate=(1.0, 2.8),
         relative_humidity_surface=(0.70, 0.85), relative_humidity_boundary_layer_top=(0.75, 0.92),
         relative_humidity_free_troposphere=(0.30, 0.80), relative_humidity_tropopause=(0.2, 0.7),
         skin_minus_air_temperature=(-2.0, 3.0)),
@@ -122,7 +122,7 @@ _REGIMES = {
         tropopause_pressure=(90.0, 160.0), tropopause_temperature_offset=(-5.0, 5.0),
         tropopause_temperature=(190.0, 212.0),
         stratopause_pressure=(0.7, 1.5), stratopause_temperature=(255.0, 280.0),
-        mesospheric_lapse_rate=(0.0, 2.8),
+        mesospheric_lapse_rate=(1.0, 2.8),
         relative_humidity_surface=(0.70, 0.85), relative_humidity_boundary_layer_top=(0.80, 0.98),
         relative_humidity_free_troposphere=(0.05, 0.35), relative_humidity_tropopause=(0.05, 0.5),
         skin_minus_air_temperature=(-1.0, 2.0)),
@@ -138,7 +138,7 @@ _REGIMES = {
         tropopause_pressure=(90.0, 150.0), tropopause_temperature_offset=(-4.0, 6.0),
         tropopause_temperature=(190.0, 212.0),
         stratopause_pressure=(0.7, 1.5), stratopause_temperature=(260.0, 285.0),
-        mesospheric_lapse_rate=(0.0, 2.8),
+        mesospheric_lapse_rate=(1.0, 2.8),
         relative_humidity_surface=(0.05, 0.35), relative_humidity_boundary_layer_top=(0.05, 0.40),
         relative_humidity_free_troposphere=(0.05, 0.40), relative_humidity_tropopause=(0.05, 0.4),
         skin_minus_air_temperature=(-5.0, 25.0)),
@@ -154,7 +154,7 @@ _REGIMES = {
         tropopause_pressure=(150.0, 260.0), tropopause_temperature_offset=(-4.0, 6.0),
         tropopause_temperature=(200.0, 228.0),
         stratopause_pressure=(0.7, 1.5), stratopause_temperature=(265.0, 285.0),
-        mesospheric_lapse_rate=(0.0, 2.8),
+        mesospheric_lapse_rate=(1.0, 2.8),
         relative_humidity_surface=(0.45, 0.90), relative_humidity_boundary_layer_top=(0.50, 0.95),
         relative_humidity_free_troposphere=(0.50, 0.95), relative_humidity_tropopause=(0.1, 0.8),
         skin_minus_air_temperature=(-3.0, 12.0)),
@@ -170,7 +170,7 @@ _REGIMES = {
         tropopause_pressure=(200.0, 350.0), tropopause_temperature_offset=(-10.0, 4.0),
         tropopause_temperature=(205.0, 230.0),
         stratopause_pressure=(0.7, 2.0), stratopause_temperature=(245.0, 275.0),
-        mesospheric_lapse_rate=(0.0, 2.8),
+        mesospheric_lapse_rate=(1.0, 2.8),
         relative_humidity_surface=(0.60, 0.95), relative_humidity_boundary_layer_top=(0.60, 0.95),
         relative_humidity_free_troposphere=(0.60, 0.95), relative_humidity_tropopause=(0.1, 0.8),
         skin_minus_air_temperature=(-8.0, 3.0)),
@@ -186,7 +186,7 @@ _REGIMES = {
         tropopause_pressure=(230.0, 330.0), tropopause_temperature_offset=(-6.0, 2.0),
         tropopause_temperature=(210.0, 228.0),
         stratopause_pressure=(0.7, 1.5), stratopause_temperature=(275.0, 292.0),
-        mesospheric_lapse_rate=(0.0, 2.8),
+        mesospheric_lapse_rate=(1.0, 2.8),
         relative_humidity_surface=(0.70, 0.95), relative_humidity_boundary_layer_top=(0.70, 0.98),
         relative_humidity_free_troposphere=(0.70, 0.98), relative_humidity_tropopause=(0.2, 0.8),
         skin_minus_air_temperature=(-3.0, 5.0)),
@@ -202,7 +202,7 @@ _REGIMES = {
         tropopause_pressure=(250.0, 400.0), tropopause_temperature_offset=(-18.0, -5.0),
         tropopause_temperature=(200.0, 226.0),
         stratopause_pressure=(0.7, 2.0), stratopause_temperature=(235.0, 270.0),
-        mesospheric_lapse_rate=(0.0, 2.8),
+        mesospheric_lapse_rate=(1.0, 2.8),
         relative_humidity_surface=(0.50, 0.85), relative_humidity_boundary_layer_top=(0.50, 0.90),
         relative_humidity_free_troposphere=(0.50, 0.90), relative_humidity_tropopause=(0.2, 0.7),
         skin_minus_air_temperature=(-6.0, 2.0)),
@@ -218,7 +218,7 @@ _REGIMES = {
         tropopause_pressure=(100.0, 300.0), tropopause_temperature_offset=(-10.0, 6.0),
         tropopause_temperature=(188.0, 228.0),
         stratopause_pressure=(0.7, 2.0), stratopause_temperature=(245.0, 285.0),
-        mesospheric_lapse_rate=(0.0, 2.8),
+        mesospheric_lapse_rate=(1.0, 2.8),
         relative_humidity_surface=(0.15, 0.85), relative_humidity_boundary_layer_top=(0.15, 0.90),
         relative_humidity_free_troposphere=(0.15, 0.90), relative_humidity_tropopause=(0.1, 0.7),
         skin_minus_air_temperature=(-8.0, 20.0)),
@@ -540,7 +540,7 @@ def _boundary_layer(p, v, kind, u_offset):
 
     rows = kind == "inversion"
     if rows.any():
-        frac = np.clip(np.log(ps[rows] / pp) / np.log(ps[rows] / p_b[rows]), 0.0, 1.0)
+        frac = np.minimum(np.log(ps[rows] / pp) / np.log(ps[rows] / p_b[rows]), 1.0)  # < 0 below ground
         t[rows] = t0[rows] + strength[rows] * frac
         p_f[rows], t_f[rows] = p_b[rows, 0], (t0[rows] + strength[rows])[:, 0]
     rows = kind == "mixed"
@@ -555,7 +555,7 @@ def _boundary_layer(p, v, kind, u_offset):
         q0 = atm.specific_humidity_from_relative_humidity(v["relative_humidity_surface"][rows],
                                                           t0[rows, 0], ps[rows, 0])
         p_blend = v["tropopause_pressure"][rows] * np.exp(_MOIST_BLEND_LN_P)
-        targets = np.concatenate([np.clip(pp, p_blend[:, None], ps[rows]), p_blend[:, None]], axis=1)
+        targets = np.concatenate([np.maximum(pp, p_blend[:, None]), p_blend[:, None]], axis=1)
         parcel = atm.parcel_temperature(t0[rows, 0], q0, ps[rows, 0], targets)
         weight = np.clip(np.log(ps[rows] / targets) / np.log(ps[rows] / _MOIST_OFFSET_TOP_HPA), 0.0, 1.0)
         env = parcel - v["moist_adiabat_offset"][rows, None] * weight
@@ -638,10 +638,14 @@ def _temperature(p, v, kind, regime, rng_noise):
     kappa = np.log(t_f / t_t) / np.log(p_f / p_t)
     free = t_f[:, None] * (pp / p_f[:, None]) ** kappa[:, None]
     troposphere = np.where(pp >= p_f[:, None], bl, free)
-    below_ground = ps[:, None] < pp
-    t_surface = v["surface_air_temperature"][:, None]
+    # Below the ground: the boundary layer's own formula down to the first level under the
+    # surface (so that interpolating to ps in ln p meets the drawn surface air), 6.5 K/km
+    # further down.
+    first_below = np.maximum(np.sum(pp > ps[:, None], axis=1) - 1, 0)
+    p_k = p[first_below][:, None]
+    t_k = np.take_along_axis(troposphere, first_below[:, None], axis=1)
     kappa_ground = _KAPPA_PER_LAPSE * _BELOW_GROUND_LAPSE_K_PER_KM * 1e-3
-    troposphere = np.where(below_ground, t_surface * (pp / ps[:, None]) ** kappa_ground, troposphere)
+    troposphere = np.where(pp > p_k, t_k * (pp / p_k) ** kappa_ground, troposphere)
 
     p_sp = v["stratopause_pressure"]
     t_sp = np.maximum(v["stratopause_temperature"], t_t + 5.0)
