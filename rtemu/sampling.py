@@ -2,10 +2,10 @@
 
 Two parts:
 
-* :func:`draw_states` builds clear-sky atmospheric states from a space-filling design
-  (scrambled Sobol' points for the scalars) plus vertically correlated Gaussian
-  perturbations; the construction is described in :func:`draw_states` and the nominal
-  ranges in :func:`envelope_description`.
+* :func:`draw_states` builds clear-sky atmospheric states from a mixture of climate
+  regimes (docs/generator.md), a space-filling design (scrambled Sobol' points for the
+  scalars) plus vertically correlated Gaussian perturbations; the construction is
+  described in :func:`draw_states` and the nominal ranges in :func:`envelope_description`.
 * :func:`sample_to_netcdf` draws states chunk by chunk, runs the physical model
   (:func:`rtemu.physics.simulate`) on each chunk, optionally in parallel on
   dask.distributed, keeps finished chunks so that an interrupted run resumes, and
@@ -528,7 +528,7 @@ def _scale_global(u: np.ndarray, name: str, log: bool = False) -> np.ndarray:
     return lo + u * (hi - lo)
 
 
-def _boundary_layer(p, v, kind, u_offset):
+def _boundary_layer(p, v, kind):
     """Temperature below the free troposphere [K] (N, L) and the free troposphere's base
     (pressure [hPa], temperature [K]) per profile (see :func:`draw_states`, step 2)."""
     pp = p[None, :]
@@ -617,7 +617,7 @@ def _temperature(p, v, kind, regime, rng_noise):
     pp = p[None, :]
     ln_p = np.log(p)
     ps = v["surface_air_pressure"]
-    bl, p_f, t_f = _boundary_layer(p, v, kind, v["moist_adiabat_offset"])
+    bl, p_f, t_f = _boundary_layer(p, v, kind)
     gamma_lo = v["tropospheric_lapse_rate_lo"] * 1e-3
     gamma_hi = v["tropospheric_lapse_rate_hi"] * 1e-3
     # The tropical column's free troposphere starts at a fixed ln-p distance below p_t, so
@@ -851,39 +851,34 @@ STATE_VARIABLES = ("air_temperature", "specific_humidity", "surface_temperature"
 def draw_states(count: int, *, seed: int, pressure_hpa=None, start: int = 0, channels) -> xr.Dataset:
     """Draw ``count`` clear-sky atmospheric states (profiles ``start .. start+count-1``).
 
-    Construction (surface-first grid, bottom pressure ps; drawn quantities in the
-    nominal ranges of :func:`envelope_description`, scalars from a scrambled Sobol'
-    sequence):
+    A mixture of nine climate regimes with stated weights (moist-adiabatic tropics,
+    subtropical subsidence, hot desert, mid-latitude summer and winter, polar summer and
+    winter, high terrain, stratospheric warming); docs/generator.md describes each, its
+    ranges and their sources, and measures the result. Per profile (surface-first grid):
 
-    1. Free troposphere with constant lapse rate: T = T0' (p/ps)^kappa, T0' = T0 + dI
-       (T0 surface air temperature, dI inversion strength), kappa from the drawn
-       tropopause (p_t log-uniform; T_t within 8 K of a line in ln p_t through the US 1976
-       tropopause, :func:`tropopause_temperature_band`, and inside the range the lapse-rate
-       limits allow: where the two do not meet, the limit nearest the band); lapse rate =
-       kappa g / R_d.
-    2. Surface layer of drawn depth D: T = T_free - dI * clip((p - (ps - D)) / D, 0, 1),
-       so the bottom level holds T0 exactly (inversion for dI > 0).
-    3. Stratosphere (p < p_t): T = T_t + (T_sp - T_t) * shape, shape a drawn mix of the
-       US 1976 warming profile (0 below 20 km', 1 at 1.1 hPa) and a ramp linear in ln p
-       from the tropopause to 1.1 hPa; above 1.1 hPa the US 1976 shape for both.
-    4. Vertically correlated Gaussian perturbations, correlation exp(-d^2 / (2 L^2)) with
-       d the ln-p distance: temperature L = 0.35, std 1 K in the troposphere rising to
-       3 K in the stratosphere (blend over 0.1 in ln p), tapered to 0 at the bottom level.
-    5. Humidity: RH = logistic(-a s(p) + 0.7 n(p) + c), s = (ps - p) / (ps - p_t) clipped
-       to [0, 1.2], a the drawn decay, n a unit correlated perturbation (L = 0.25);
-       q_trop = eps e / (p - (1-eps) e), e = RH es(T) (Bolton). ln q is blended over 0.1
-       in ln p around p_t into a stratospheric profile ln q_s + g h(p) + 0.15 m(p): q_s
-       the drawn value at the tropopause, g the drawn gradient reached at 1 hPa, h the
-       height ln(p_t/p) / ln(p_t/1 hPa), m a unit correlated perturbation (L = 0.5); q is capped at
-       RH = 1 - 1e-6 and floored at 1e-7 kg kg-1 (temperatures are floored so the two
-       limits never cross). The shift c is solved by bisection so that the column
-       (trapezoidal, as the model) equals the target lo (hi/lo)^f, lo = max(0.1,
-       0.003 W_sat), hi = min(75, W_sat), W_sat the saturated column; f is the Sobol'
-       coordinate mapped through the inverse of P(f < x) = 0.25 x + 0.75 x^2.5 (the
-       x^2.5 part moves weight to moist columns, the log-uniform quarter keeps warm
-       very dry columns covered).
-    6. Skin temperature T0 + U(-12, 12) K; emissivity per profile for microwave and for
-       infrared channels plus N(0, 0.03) / N(0, 0.005) per channel, clipped to
+    1. regime from one scrambled Sobol' coordinate (cumulative weights), the other
+       coordinates mapped onto the regime's ranges (:func:`envelope_description`);
+    2. surface pressure ps and surface air temperature T_s (high terrain: T_s reduced to
+       1013.25 hPa at 6.5 K/km);
+    3. boundary layer: "parcel" (dry adiabat to the lifting condensation level, then the
+       pseudo-adiabat, :func:`rtemu.atmosphere.parcel_temperature`, cooled by a drawn
+       offset reached at 500 hPa), "mixed" (dry adiabat capped by an inversion) or
+       "inversion" (linear in ln p to T_s + the drawn strength);
+    4. free troposphere at a constant lapse rate to the tropopause (p_t, T_t), T_t in the
+       regime's band about 216.65 K + 29 K ln(p_t / 226.32 hPa)
+       (:func:`tropopause_temperature_band`) and in reach of the regime's lapse-rate range
+       (p_t moved as little as needed, then the nearest lapse-rate limit);
+    5. stratosphere: a drawn mix of the US 1976 warming stretched onto (p_t, p_sp) and a
+       ramp in ln p, cooling at a drawn rate above the stratopause p_sp;
+    6. below the ground: the boundary-layer formula to the first level under it, 6.5 K/km
+       further down (these levels are dropped by a ``surface_air_pressure``-aware model);
+    7. correlated Gaussian perturbations (temperature 1 K / 3 K, L = 0.35 in ln p;
+       logit(RH) 0.5, L = 0.25; both zero at the ground);
+    8. humidity: logit(RH) linear in p between the regime's surface, boundary-layer-top,
+       free-troposphere and tropopause values, q from Bolton (1980) e_s over water,
+       blended into a drawn stratospheric ln q profile; RH <= 1 - 1e-6, q >= 1e-7 kg kg-1;
+    9. skin T_s + the regime's skin-air difference; emissivity per profile for microwave
+       and infrared channels plus N(0, 0.03) / N(0, 0.005) per channel, clipped to
        [0.4, 1] / [0.9, 1]; sensor zenith angle U(0, 65) degree.
 
     Parameters
@@ -894,7 +889,8 @@ def draw_states(count: int, *, seed: int, pressure_hpa=None, start: int = 0, cha
         Seed [1], 0 <= seed < 2**63.
     pressure_hpa : array_like, optional
         Level pressures [hPa], strictly monotonic in either order, bottom level between
-        400 and 1100 hPa. Default :func:`rtemu.atmosphere.default_pressure_grid`.
+        400 and 1100 hPa; surface pressures beyond the bottom level sit on it. Default
+        :func:`rtemu.atmosphere.default_pressure_grid` (1100 to 0.5 hPa).
     start : int
         Index of the first profile [1]; profile ``i`` is the same whatever ``start`` and
         ``count`` (see the module docstring).
@@ -907,12 +903,14 @@ def draw_states(count: int, *, seed: int, pressure_hpa=None, start: int = 0, cha
         The physics input schema, levels in the order given: ``air_pressure`` (level)
         [hPa], ``air_temperature`` (profile, level) [K], ``specific_humidity`` (profile,
         level) [kg kg-1], ``surface_temperature`` (profile) [K], ``surface_emissivity``
-        (profile, channel) [1], ``sensor_zenith_angle`` (profile) [degree]; also
-        ``total_column_water_vapour`` (profile) [kg m-2] and the drawn construction
-        parameters ``tropopause_pressure`` [hPa], ``tropopause_temperature`` [K],
-        ``tropospheric_lapse_rate`` [K km-1], ``inversion_strength`` [K],
-        ``inversion_depth`` [hPa], ``stratopause_temperature`` [K],
-        ``relative_humidity_decay`` [1] (profile).
+        (profile, channel) [1], ``sensor_zenith_angle`` (profile) [degree],
+        ``surface_air_pressure`` (profile) [hPa]; also ``total_column_water_vapour``
+        (profile) [kg m-2] above the ground, ``climate_regime`` (profile) [flag, names in
+        its ``flag_meanings``] and the construction parameters ``surface_air_temperature``
+        [K], ``tropopause_pressure`` [hPa], ``tropopause_temperature`` [K],
+        ``tropospheric_lapse_rate`` [K km-1], ``boundary_layer_top_pressure`` [hPa],
+        ``inversion_strength`` [K], ``stratopause_pressure`` [hPa],
+        ``stratopause_temperature`` [K] (profile).
         Coordinates ``profile`` (global indices) and, for an instrument, ``channel``
         (ids). Attributes ``rtemu_envelope`` and ``rtemu_covered_envelope`` (JSON).
     """
@@ -1301,7 +1299,7 @@ def sample_to_netcdf(
     seed : int
         Generator seed [1], 0 <= seed < 2**63.
     pressure_hpa : array_like, optional
-        Level grid [hPa] (see :func:`draw_states`); default the 60-level demo grid.
+        Level grid [hPa] (see :func:`draw_states`); default the 64-level demo grid.
     jacobian : bool
         Also write the ``jacobian_*`` variables.
     workers : int, optional
