@@ -64,10 +64,16 @@ def test_surface_air_temperature_and_pressure_cover_ranges(states):
     assert ps.min() < 510.0 and ps.max() > 1055.0
     # every surface lies inside the default grid (bottom 1100 hPa)
     assert np.all(ps <= states.air_pressure.values[0])
-    # the air temperature at the surface pressure (linear in ln p) is the drawn one, but for
-    # the 1 K perturbation of the level above the ground (tapered to 0 at the ground)
-    t_at = atm.value_at_pressure(states.air_pressure.values, states.air_temperature.values, ps)
-    assert np.percentile(np.abs(t_at - t0), 99) < 0.5
+    # below the ground the levels hold the surface air temperature, so the air interpolated
+    # to the ground (linear in ln p) lies between it and the first level above the ground
+    p = states.air_pressure.values
+    t = states.air_temperature.values
+    t_at = atm.value_at_pressure(p, t, ps)
+    above = np.argmax(p[None, :] < ps[:, None], axis=1)
+    t_above = t[np.arange(t.shape[0]), above]
+    assert np.all((t_at - np.minimum(t0, t_above) >= -1e-9) & (t_at - np.maximum(t0, t_above) <= 1e-9))
+    below = p[None, :] >= ps[:, None]
+    assert np.all(np.where(below, t == t0[:, None], True))
 
 
 def test_column_water_matches_trapezoid_above_the_ground(states):
@@ -248,11 +254,12 @@ def test_envelope_description_and_covered_envelope(states, inst):
         assert covered[key]["min"] >= ranges[key]["min"]
         assert covered[key]["max"] <= ranges[key]["max"]
     assert covered["tropopause_pressure"]["min"] >= 80.0 and covered["tropopause_pressure"]["max"] <= 400.0
-    # skin minus the air at the surface pressure (interpolated in ln p) stays within 1 K of
-    # the range: the interpolation crosses the 1 K temperature perturbation of the level
-    # above the ground (measured: at most 0.9 K on these 4,096 draws)
-    assert covered["skin_minus_air_temperature"]["min"] >= ranges["skin_minus_air_temperature"]["min"] - 1.0
-    assert covered["skin_minus_air_temperature"]["max"] <= ranges["skin_minus_air_temperature"]["max"] + 1.0
+    # skin minus the air at the surface pressure (interpolated in ln p, between the drawn
+    # surface air and the level above the ground) stays within 4 K of the range (measured:
+    # the interpolated air departs from the drawn one by at most 3.4 K on 4,096 draws, in
+    # thin strong inversions)
+    assert covered["skin_minus_air_temperature"]["min"] >= ranges["skin_minus_air_temperature"]["min"] - 4.0
+    assert covered["skin_minus_air_temperature"]["max"] <= ranges["skin_minus_air_temperature"]["max"] + 4.0
     assert covered["relative_humidity"]["max"] <= 1.0
     assert covered["specific_humidity"]["min"] >= ranges["specific_humidity_floor"]["min"]
 
