@@ -3,7 +3,10 @@
 Scenario (invented for demonstration): a late-autumn pass of the invented `demo-sounder`
 over the invented archipelago of Kerrow, from a cold, dry polar air mass in the north to
 a moist subtropical one in the south. The profiles are drawn with rtemu's own state
-generator on the demo level grid; nothing here is observed data.
+generator on the demo level grid, keeping the first 24 columns of its sea-level ocean
+regimes (polar and mid-latitude winter, subtropical subsidence, moist tropics); nothing
+here is observed data. The file carries each column's ``surface_air_pressure``: the grid
+reaches 1100 hPa, and the levels below the ground hold extrapolated values.
 
 Usage:  python examples/make_example_profiles.py [OUTPUT]   (default examples/data/example_profiles.nc)
 """
@@ -23,14 +26,21 @@ HERE = Path(__file__).resolve().parent
 DEFAULT_OUTPUT = HERE / "data" / "example_profiles.nc"
 COUNT = 24
 SEED = 20261201
+#: The regimes a late-autumn ocean pass from polar to subtropical air crosses.
+REGIMES = ("polar_winter", "midlatitude_winter", "subtropical_subsidence", "tropical_moist")
+DRAWN = 256
 
 
 def make_profiles():
-    states = draw_states(COUNT, seed=SEED, channels=load_instrument("demo-sounder"))
+    states = draw_states(DRAWN, seed=SEED, channels=load_instrument("demo-sounder"))
+    names = states["climate_regime"].attrs["flag_meanings"].split()
+    wanted = [names.index(r) for r in REGIMES]
+    chosen = np.flatnonzero(np.isin(states["climate_regime"].values, wanted))[:COUNT]
+    states = states.isel(profile=chosen)
     # Order the pass from the driest (north) to the moistest (south) column.
     order = np.argsort(states["total_column_water_vapour"].values)
     keep = ["air_pressure", "air_temperature", "specific_humidity", "surface_temperature",
-            "surface_emissivity", "sensor_zenith_angle", "total_column_water_vapour"]
+            "surface_emissivity", "sensor_zenith_angle", "surface_air_pressure", "total_column_water_vapour"]
     ds = states[keep].isel(profile=order)
     ds = ds.assign_coords(profile=np.arange(COUNT))
     ds.attrs = {

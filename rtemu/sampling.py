@@ -2,10 +2,10 @@
 
 Two parts:
 
-* :func:`draw_states` builds clear-sky atmospheric states from a space-filling design
-  (scrambled Sobol' points for the scalars) plus vertically correlated Gaussian
-  perturbations; the construction is described in :func:`draw_states` and the nominal
-  ranges in :func:`envelope_description`.
+* :func:`draw_states` builds clear-sky atmospheric states from a mixture of climate
+  regimes (docs/generator.md), a space-filling design (scrambled Sobol' points for the
+  scalars) plus vertically correlated Gaussian perturbations; the construction is
+  described in :func:`draw_states` and the nominal ranges in :func:`envelope_description`.
 * :func:`sample_to_netcdf` draws states chunk by chunk, runs the physical model
   (:func:`rtemu.physics.simulate`) on each chunk, optionally in parallel on
   dask.distributed, keeps finished chunks so that an interrupted run resumes, and
@@ -56,60 +56,237 @@ __all__ = [
 ]
 
 #: Version of the state construction; changes whenever the same seed would give other numbers.
-GENERATOR_VERSION = "4"
+GENERATOR_VERSION = "5"
 #: Profiles per deterministic block (see the module docstring).
 BLOCK_SIZE = 1024
 #: Largest profile index + 1 (scipy's Sobol' sequences hold 2**30 points).
 MAX_PROFILES = 2**30
 
 _KAPPA_PER_LAPSE = DRY_AIR_GAS_CONSTANT / STANDARD_GRAVITY  # d ln T / d ln p per (K m-1)
+_KAPPA_DRY = DRY_AIR_GAS_CONSTANT / atm.DRY_AIR_HEAT_CAPACITY  # Poisson exponent R_d / c_pd [1]
+#: High ground: the regime's surface air temperature range is for air reduced to sea level
+#: at 6.5 K/km (the US 1976 lowest layer; the usual choice when reducing pressure to sea
+#: level, common practice).
+_SEA_LEVEL_REDUCTION_LAPSE_K_PER_KM = 6.5
 
 # Tropopause temperature follows tropopause pressure: a line in ln p through the US 1976
 # tropopause (U.S. Standard Atmosphere 1976, 11 km': 226.32 hPa, 216.65 K) rising 29 K per
 # e-fold of pressure, which puts a 100 hPa tropopause at 193 K (tropical tropopause about
-# 190-195 K: textbook value, from memory). Generator v3 drew T_t anywhere in 180-240 K
-# whatever p_t: a polar column warmed 30 K throughout was then a state it drew itself, and
-# the emulator's envelope flag could not call it outside (DEVELOPERS.md, "Generator v4").
+# 190-195 K: textbook value, from memory). Each regime draws an offset from it in its own
+# range (the polar ones well below it: a 300 hPa polar-night tropopause is at about
+# 210-220 K, from memory), and its own absolute limits apply.
 _TROPOPAUSE_LINE = {"reference_hpa": 226.32, "reference_k": 216.65, "slope_k_per_ln_p": 29.0}
 
+# --- the regimes --------------------------------------------------------------------------
+# Each regime: weight [1], a description, and for every drawn quantity a (low, high) range
+# (uniform in it; tropopause and stratopause pressure log-uniform). Values are typical
+# figures from textbook climatology (Wallace & Hobbs 2006 ch. 1 and 3; Holton 2004; the
+# U.S. Standard Atmosphere Supplements 1966 tropical/mid-latitude/subarctic models), all
+# from memory and rounded: docs/generator.md says which and measures the result.
+# boundary_layer: "parcel" (dry adiabat to the lifting condensation level of the surface
+# air, pseudo-adiabat above, cooled by moist_adiabat_offset from 500 hPa up), "mixed" (dry
+# adiabat from the surface to the layer top, then an inversion of inversion_strength over
+# inversion_thickness), "inversion" (T linear in ln p from the surface to the layer top,
+# inversion_strength warmer there; negative: a lapse). surface_temperature_at_sea_level: the
+# surface_air_temperature range is for air reduced to 1013.25 hPa at 6.5 K/km, and the
+# surface air is T (ps / 1013.25) ** (6.5e-3 R_d / g) (high ground is colder).
+# inversion_top_temperature_max [K]: an "inversion" layer's top is at most this warm (strong
+# surface inversions form over cold ground, below mild air aloft).
+_REGIMES = {
+    "tropical_moist": dict(
+        inversion_top_temperature_max=400.0,
+        surface_temperature_at_sea_level=False,
+        weight=0.25, boundary_layer="parcel", humidity_jump=True,
+        description="deep tropics over warm ocean: the troposphere follows the pseudo-adiabat of the "
+                    "surface air up to about twice the tropopause pressure, then a constant lapse rate to a "
+                    "cold, high tropopause",
+        surface_air_pressure=(1000.0, 1015.0), surface_air_temperature=(297.0, 303.0),
+        boundary_layer_depth=(40.0, 100.0), inversion_strength=(0.0, 0.0), inversion_thickness=(10.0, 30.0),
+        moist_adiabat_offset=(0.0, 3.0), tropospheric_lapse_rate=(4.0, 9.0),
+        tropopause_pressure=(80.0, 120.0), tropopause_temperature_offset=(-6.0, 4.0),
+        tropopause_temperature=(185.0, 200.0),
+        stratopause_pressure=(0.7, 1.5), stratopause_temperature=(255.0, 275.0),
+        mesospheric_lapse_rate=(1.0, 2.8),
+        relative_humidity_surface=(0.70, 0.85), relative_humidity_boundary_layer_top=(0.75, 0.92),
+        relative_humidity_free_troposphere=(0.30, 0.80), relative_humidity_tropopause=(0.2, 0.7),
+        skin_minus_air_temperature=(-2.0, 3.0)),
+    "subtropical_subsidence": dict(
+        inversion_top_temperature_max=400.0,
+        surface_temperature_at_sea_level=False,
+        weight=0.15, boundary_layer="mixed", humidity_jump=True,
+        description="subtropical oceans under the descending branch of the Hadley cell: a moist, "
+                    "well-mixed marine boundary layer capped by a trade-wind or stratocumulus inversion, "
+                    "very dry subsiding air above",
+        surface_air_pressure=(1010.0, 1030.0), surface_air_temperature=(286.0, 300.0),
+        boundary_layer_depth=(80.0, 250.0), inversion_strength=(2.0, 12.0), inversion_thickness=(10.0, 30.0),
+        moist_adiabat_offset=(0.0, 0.0), tropospheric_lapse_rate=(5.5, 7.5),
+        tropopause_pressure=(90.0, 160.0), tropopause_temperature_offset=(-5.0, 5.0),
+        tropopause_temperature=(190.0, 212.0),
+        stratopause_pressure=(0.7, 1.5), stratopause_temperature=(255.0, 280.0),
+        mesospheric_lapse_rate=(1.0, 2.8),
+        relative_humidity_surface=(0.70, 0.85), relative_humidity_boundary_layer_top=(0.80, 0.98),
+        relative_humidity_free_troposphere=(0.05, 0.35), relative_humidity_tropopause=(0.05, 0.5),
+        skin_minus_air_temperature=(-1.0, 2.0)),
+    "hot_desert": dict(
+        inversion_top_temperature_max=400.0,
+        surface_temperature_at_sea_level=False,
+        weight=0.06, boundary_layer="mixed", humidity_jump=True,
+        description="subtropical deserts on low plateaus: a deep dry-adiabatic mixed layer, very low "
+                    "humidity, the ground up to 25 K hotter than the air by day and cooler by night",
+        surface_air_pressure=(900.0, 1010.0), surface_air_temperature=(290.0, 318.0),
+        boundary_layer_depth=(100.0, 400.0), inversion_strength=(0.0, 3.0), inversion_thickness=(10.0, 30.0),
+        moist_adiabat_offset=(0.0, 0.0), tropospheric_lapse_rate=(6.0, 8.5),
+        tropopause_pressure=(90.0, 150.0), tropopause_temperature_offset=(-4.0, 6.0),
+        tropopause_temperature=(190.0, 212.0),
+        stratopause_pressure=(0.7, 1.5), stratopause_temperature=(260.0, 285.0),
+        mesospheric_lapse_rate=(1.0, 2.8),
+        relative_humidity_surface=(0.05, 0.35), relative_humidity_boundary_layer_top=(0.05, 0.40),
+        relative_humidity_free_troposphere=(0.05, 0.40), relative_humidity_tropopause=(0.05, 0.4),
+        skin_minus_air_temperature=(-5.0, 25.0)),
+    "midlatitude_summer": dict(
+        inversion_top_temperature_max=400.0,
+        surface_temperature_at_sea_level=False,
+        weight=0.14, boundary_layer="mixed", humidity_jump=False,
+        description="mid-latitude land and sea in summer: a mixed boundary layer under a weak capping "
+                    "inversion, about 6-7 K/km above, tropopause near 200 hPa",
+        surface_air_pressure=(995.0, 1025.0), surface_air_temperature=(285.0, 305.0),
+        boundary_layer_depth=(50.0, 200.0), inversion_strength=(-1.0, 3.0), inversion_thickness=(10.0, 30.0),
+        moist_adiabat_offset=(0.0, 0.0), tropospheric_lapse_rate=(5.5, 7.5),
+        tropopause_pressure=(150.0, 260.0), tropopause_temperature_offset=(-4.0, 6.0),
+        tropopause_temperature=(200.0, 228.0),
+        stratopause_pressure=(0.7, 1.5), stratopause_temperature=(265.0, 285.0),
+        mesospheric_lapse_rate=(1.0, 2.8),
+        relative_humidity_surface=(0.45, 0.90), relative_humidity_boundary_layer_top=(0.50, 0.95),
+        relative_humidity_free_troposphere=(0.50, 0.95), relative_humidity_tropopause=(0.1, 0.8),
+        skin_minus_air_temperature=(-3.0, 12.0)),
+    "midlatitude_winter": dict(
+        inversion_top_temperature_max=285.0,
+        surface_temperature_at_sea_level=False,
+        weight=0.12, boundary_layer="inversion", humidity_jump=False,
+        description="mid-latitude winter: cold surfaces with weak inversions or a shallow lapse layer, "
+                    "5-7.5 K/km above, a low and relatively warm tropopause",
+        surface_air_pressure=(980.0, 1050.0), surface_air_temperature=(258.0, 288.0),
+        boundary_layer_depth=(30.0, 150.0), inversion_strength=(-3.0, 8.0), inversion_thickness=(10.0, 30.0),
+        moist_adiabat_offset=(0.0, 0.0), tropospheric_lapse_rate=(5.0, 7.5),
+        tropopause_pressure=(200.0, 350.0), tropopause_temperature_offset=(-10.0, 4.0),
+        tropopause_temperature=(205.0, 230.0),
+        stratopause_pressure=(0.7, 2.0), stratopause_temperature=(245.0, 275.0),
+        mesospheric_lapse_rate=(1.0, 2.8),
+        relative_humidity_surface=(0.60, 0.95), relative_humidity_boundary_layer_top=(0.60, 0.95),
+        relative_humidity_free_troposphere=(0.60, 0.95), relative_humidity_tropopause=(0.1, 0.8),
+        skin_minus_air_temperature=(-8.0, 3.0)),
+    "polar_summer": dict(
+        inversion_top_temperature_max=290.0,
+        surface_temperature_at_sea_level=False,
+        weight=0.06, boundary_layer="inversion", humidity_jump=False,
+        description="sub-arctic and polar summer: cool, moist low levels, weak inversions over sea ice "
+                    "and cold water, a tropopause near 300 hPa, a warm summer stratopause",
+        surface_air_pressure=(990.0, 1025.0), surface_air_temperature=(268.0, 285.0),
+        boundary_layer_depth=(30.0, 120.0), inversion_strength=(-2.0, 6.0), inversion_thickness=(10.0, 30.0),
+        moist_adiabat_offset=(0.0, 0.0), tropospheric_lapse_rate=(5.0, 7.5),
+        tropopause_pressure=(230.0, 330.0), tropopause_temperature_offset=(-6.0, 2.0),
+        tropopause_temperature=(210.0, 228.0),
+        stratopause_pressure=(0.7, 1.5), stratopause_temperature=(275.0, 292.0),
+        mesospheric_lapse_rate=(1.0, 2.8),
+        relative_humidity_surface=(0.70, 0.95), relative_humidity_boundary_layer_top=(0.70, 0.98),
+        relative_humidity_free_troposphere=(0.70, 0.98), relative_humidity_tropopause=(0.2, 0.8),
+        skin_minus_air_temperature=(-3.0, 5.0)),
+    "polar_winter": dict(
+        inversion_top_temperature_max=262.0,
+        surface_temperature_at_sea_level=False,
+        weight=0.09, boundary_layer="inversion", humidity_jump=False,
+        description="polar night over snow and sea ice: surface-based inversions of up to 25 K, a low, "
+                    "cold and weak tropopause, a cold stratosphere inside the polar vortex",
+        surface_air_pressure=(990.0, 1060.0), surface_air_temperature=(225.0, 258.0),
+        boundary_layer_depth=(40.0, 200.0), inversion_strength=(0.0, 25.0), inversion_thickness=(10.0, 30.0),
+        moist_adiabat_offset=(0.0, 0.0), tropospheric_lapse_rate=(4.0, 7.0),
+        tropopause_pressure=(250.0, 400.0), tropopause_temperature_offset=(-18.0, -5.0),
+        tropopause_temperature=(200.0, 226.0),
+        stratopause_pressure=(0.7, 2.0), stratopause_temperature=(235.0, 270.0),
+        mesospheric_lapse_rate=(1.0, 2.8),
+        relative_humidity_surface=(0.50, 0.85), relative_humidity_boundary_layer_top=(0.50, 0.90),
+        relative_humidity_free_troposphere=(0.50, 0.90), relative_humidity_tropopause=(0.2, 0.7),
+        skin_minus_air_temperature=(-6.0, 2.0)),
+    "high_terrain": dict(
+        inversion_top_temperature_max=285.0,
+        surface_temperature_at_sea_level=True,
+        weight=0.08, boundary_layer="inversion", humidity_jump=False,
+        description="high plateaus and mountains (surface 500-850 hPa): dry, thin columns, strong "
+                    "night-time or winter inversions, a hot ground by day",
+        surface_air_pressure=(500.0, 850.0), surface_air_temperature=(240.0, 305.0),
+        boundary_layer_depth=(20.0, 100.0), inversion_strength=(-3.0, 15.0), inversion_thickness=(10.0, 30.0),
+        moist_adiabat_offset=(0.0, 0.0), tropospheric_lapse_rate=(5.0, 8.0),
+        tropopause_pressure=(100.0, 300.0), tropopause_temperature_offset=(-10.0, 6.0),
+        tropopause_temperature=(188.0, 228.0),
+        stratopause_pressure=(0.7, 2.0), stratopause_temperature=(245.0, 285.0),
+        mesospheric_lapse_rate=(1.0, 2.8),
+        relative_humidity_surface=(0.15, 0.85), relative_humidity_boundary_layer_top=(0.15, 0.90),
+        relative_humidity_free_troposphere=(0.15, 0.90), relative_humidity_tropopause=(0.1, 0.7),
+        skin_minus_air_temperature=(-8.0, 20.0)),
+    "stratospheric_warming": dict(
+        inversion_top_temperature_max=270.0,
+        surface_temperature_at_sea_level=False,
+        weight=0.05, boundary_layer="inversion", humidity_jump=False,
+        description="winter high latitudes during a sudden stratospheric warming: a cold troposphere, "
+                    "the stratopause lowered to 5-10 hPa and warm, a cold mesosphere above",
+        surface_air_pressure=(990.0, 1050.0), surface_air_temperature=(235.0, 275.0),
+        boundary_layer_depth=(30.0, 150.0), inversion_strength=(0.0, 12.0), inversion_thickness=(10.0, 30.0),
+        moist_adiabat_offset=(0.0, 0.0), tropospheric_lapse_rate=(4.5, 7.0),
+        tropopause_pressure=(220.0, 350.0), tropopause_temperature_offset=(-12.0, 0.0),
+        tropopause_temperature=(205.0, 226.0),
+        stratopause_pressure=(5.0, 10.0), stratopause_temperature=(260.0, 300.0),
+        mesospheric_lapse_rate=(1.0, 2.5),
+        relative_humidity_surface=(0.55, 0.90), relative_humidity_boundary_layer_top=(0.55, 0.90),
+        relative_humidity_free_troposphere=(0.55, 0.90), relative_humidity_tropopause=(0.2, 0.7),
+        skin_minus_air_temperature=(-6.0, 2.0)),
+}
+_REGIME_NAMES = tuple(_REGIMES)
+_REGIME_UNITS = {
+    "surface_air_pressure": ("hPa", "surface pressure; below the default grid's bottom (1100 hPa)"),
+    "surface_air_temperature": ("K", "air temperature at the surface pressure"),
+    "boundary_layer_depth": ("hPa", "surface pressure minus the pressure of the boundary-layer top"),
+    "inversion_strength": ("K", "temperature rise across the inversion (negative: a lapse)"),
+    "inversion_thickness": ("hPa", "depth of the inversion capping a mixed layer"),
+    "moist_adiabat_offset": ("K", "how much colder than the surface air's pseudo-adiabat the "
+                             "tropical column is at and above 500 hPa"),
+    "tropospheric_lapse_rate": ("K km-1", "limits of the constant lapse rate from the boundary-layer top "
+                                "to the tropopause"),
+    "tropopause_pressure": ("hPa", "log-uniform"),
+    "tropopause_temperature_offset": ("K", "tropopause temperature minus the line "
+                                      f"{_TROPOPAUSE_LINE['reference_k']:g} K + {_TROPOPAUSE_LINE['slope_k_per_ln_p']:g} "
+                                      f"K * ln(p_t / {_TROPOPAUSE_LINE['reference_hpa']:g} hPa); where the "
+                                      "lapse-rate limits do not reach it, the limit nearest it"),
+    "tropopause_temperature": ("K", "absolute limits of the tropopause temperature"),
+    "stratopause_pressure": ("hPa", "log-uniform"),
+    "stratopause_temperature": ("K", "at the stratopause; at least tropopause + 5 K"),
+    "mesospheric_lapse_rate": ("K km-1", "cooling above the stratopause"),
+    "relative_humidity_surface": ("1", "over liquid water at the surface"),
+    "relative_humidity_boundary_layer_top": ("1", "at the top of the boundary layer"),
+    "relative_humidity_free_troposphere": ("1", "just above the boundary layer (regimes with a humidity "
+                                           "jump; the others continue from the layer top)"),
+    "relative_humidity_tropopause": ("1", "at the tropopause (logit(RH) linear in p in between)"),
+    "skin_minus_air_temperature": ("K", "surface_temperature minus surface air temperature"),
+}
+
 # --- nominal envelope -------------------------------------------------------------------
-# Each entry: (low, high, units, meaning). All generator constants live here so that the
-# file attribute describes exactly what produced the data.
-_RANGES = {
-    "surface_air_temperature": (220.0, 320.0, "K", "air temperature of the lowest level"),
-    "total_column_water_vapour": (0.1, 75.0, "kg m-2", "target lo*(hi/lo)**f, f in [0, 1] with "
-                                  "P(f < x) = 0.25 x + 0.75 x**2.5, lo = max(0.1, 0.003*saturated), "
-                                  "hi = min(75, saturated); a column whose saturated value is below "
-                                  "0.1 is saturated"),  # constants: _COLUMN_* below (a test checks)
+# Each entry: (low, high, units, meaning): the quantities every regime shares, drawn the
+# same way in all of them.
+_GLOBAL_RANGES = {
     "relative_humidity": (0.0, 1.0, "1", "over liquid water (Bolton 1980 eq. 10); never above 1"),
     "specific_humidity_floor": (1e-7, 1e-7, "kg kg-1", "smallest specific humidity anywhere"),
-    "skin_minus_air_temperature": (-12.0, 12.0, "K", "surface_temperature minus lowest-level air temperature"),
     "surface_emissivity_microwave": (0.4, 1.0, "1", "per-profile value + N(0, 0.03) per channel, clipped"),
     "surface_emissivity_infrared": (0.90, 1.0, "1", "per-profile value + N(0, 0.005) per channel, clipped"),
     "sensor_zenith_angle": (0.0, 65.0, "degree", "uniform in angle"),
-    "tropopause_pressure": (80.0, 300.0, "hPa", "log-uniform"),
-    "tropopause_temperature": (180.0, 240.0, "K", "further limited by the lapse-rate range and the "
-                               "tropopause_temperature_offset band"),
-    "tropopause_temperature_offset": (-8.0, 8.0, "K", "tropopause temperature minus the line "
-                                      f"{_TROPOPAUSE_LINE['reference_k']:g} K + {_TROPOPAUSE_LINE['slope_k_per_ln_p']:g} "
-                                      f"K * ln(p_t / {_TROPOPAUSE_LINE['reference_hpa']:g} hPa); where the "
-                                      "lapse-rate range does not reach the band, the lapse-rate limit nearest it"),
-    "tropospheric_lapse_rate": (2.0, 9.5, "K km-1", "constant lapse rate of the free troposphere"),
-    "inversion_strength": (-2.0, 15.0, "K", "free-troposphere temperature extrapolated to the "
-                           "surface minus surface air temperature (negative: superadiabatic layer)"),
-    "inversion_depth": (10.0, 150.0, "hPa", "depth of the surface layer carrying the inversion"),
-    "stratopause_temperature": (235.0, 295.0, "K", "at 1.1 hPa; at least tropopause + 5 K"),
     "stratospheric_specific_humidity": (1.5e-6, 6e-6, "kg kg-1", "value at the tropopause; log-uniform, "
                                         "capped by saturation"),
     "stratospheric_humidity_gradient": (-0.3, 0.9, "1", "change of ln q from the tropopause to 1 hPa, linear "
                                         "in ln p (positive: moister aloft)"),
-    "relative_humidity_decay": (-1.0, 4.0, "1", "decrease of logit(RH) from surface to tropopause"),
     "stratospheric_shape_mix": (0.0, 1.0, "1", "0: US 1976 stratosphere shape, 1: linear in ln p"),
 }
 # Vertically correlated Gaussian perturbations: correlation exp(-d^2 / (2 L^2)), d in ln p.
 _TEMPERATURE_NOISE = {"troposphere_std_k": 1.0, "stratosphere_std_k": 3.0, "correlation_length_ln_p": 0.35,
                       "surface_taper_ln_p": 0.03}
-_HUMIDITY_NOISE = {"logit_std": 0.7, "correlation_length_ln_p": 0.25}
+_HUMIDITY_NOISE = {"logit_std": 0.5, "correlation_length_ln_p": 0.25}
 # Stratospheric ln q varies with height too: without it every stratospheric humidity profile
 # lay on one line (a single drawn value), and any background with a little vertical
 # structure there was "novel" to the emulator (measured: 62 % of the demo's backgrounds).
@@ -117,26 +294,28 @@ _STRATOSPHERIC_HUMIDITY_NOISE = {"ln_q_std": 0.15, "correlation_length_ln_p": 0.
 _STRATOSPHERIC_GRADIENT_TOP_HPA = 1.0  # [hPa]: where the drawn gradient is reached
 _EMISSIVITY_CHANNEL_STD = {"microwave": 0.03, "infrared": 0.005}
 _TRANSITION_WIDTH_LN_P = 0.1  # troposphere/stratosphere blend width [ln p]
-_US76_STRATOSPHERE_BASE = (54.7489, 1.10906)  # [hPa]: US 1976 20 km' and 47 km' levels
+_US76_STRATOSPHERE_BASE = (226.32, 54.7489, 1.10906)  # [hPa]: US 1976 11, 20 and 47 km' levels
+_MOIST_BLEND_LN_P = 0.7  # the tropical column leaves its pseudo-adiabat 0.7 in ln p below p_t
+_MOIST_OFFSET_TOP_HPA = 500.0  # [hPa]: the moist-adiabat offset is reached here
+_TROPOPAUSE_DEPTH_RATIO = 0.7  # p_t at most 0.7 x the boundary-layer top pressure
+_TROPOPAUSE_PRESSURE_LIMITS = (80.0, 400.0)  # [hPa]: how far a tropopause may be moved
 _Q_FLOOR = 1e-7  # [kg kg-1]
 _RH_CAP = 1.0 - 1e-6  # [1]; strictly subsaturated after round-off
 _Q_MAX = 0.099  # [kg kg-1]; the physical model requires q < 0.1
-_COLUMN_FRACTION_LOW = 0.003  # lowest column water as a fraction of the saturated column
-#: Target column water = lo * (hi/lo)**f, f drawn from the mixture
-#: P(f < x) = w x + (1 - w) x**(1/power): the power part moves weight to moist columns,
-#: which a log-uniform draw leaves sparse; the log-uniform part (weight w) keeps warm, very
-#: dry columns from being rare. Generator v2 used f = u**0.4 and lo = 0.01 W_sat: of its
-#: columns under 1 kg m-2, 99 % had T0 below 281 K, and the emulator erred 5-7 times more
-#: on warm dry columns (30 K-warmed test profiles) than on the test set (DEVELOPERS.md).
-_COLUMN_WATER_POWER = 0.4
-_COLUMN_WATER_LOG_UNIFORM_WEIGHT = 0.25
-_SOBOL_NAMES = (
-    "surface_air_temperature", "inversion_strength", "inversion_depth", "tropopause_pressure",
-    "tropopause_temperature", "stratopause_temperature", "stratospheric_shape_mix",
-    "relative_humidity_decay", "total_column_water_vapour", "stratospheric_specific_humidity",
-    "stratospheric_humidity_gradient", "skin_minus_air_temperature", "surface_emissivity_microwave",
-    "surface_emissivity_infrared", "sensor_zenith_angle",
-)
+_LOG_UNIFORM = ("tropopause_pressure", "stratopause_pressure")
+_SOBOL_NAMES = ("climate_regime",) + tuple(_REGIME_UNITS) + (
+    "stratospheric_specific_humidity", "stratospheric_humidity_gradient", "stratospheric_shape_mix",
+    "surface_emissivity_microwave", "surface_emissivity_infrared", "sensor_zenith_angle")
+
+
+def _regime_ranges() -> dict:
+    """Union over the regimes of each regime quantity: (low, high, units, meaning)."""
+    out = {}
+    for name, (units, meaning) in _REGIME_UNITS.items():
+        lows = [r[name][0] for r in _REGIMES.values()]
+        highs = [r[name][1] for r in _REGIMES.values()]
+        out[name] = (min(lows), max(highs), units, meaning + " (union over the regimes)")
+    return out
 
 
 def envelope_description() -> dict:
@@ -145,16 +324,28 @@ def envelope_description() -> dict:
     Returns
     -------
     dict
-        ``{"generator_version": str, "ranges": {name: {"min", "max", "units", "meaning"}},
-        "temperature_perturbation": {...}, "humidity_perturbation": {...},
-        "emissivity_channel_std": {...}}``. Written to file attributes as
-        ``rtemu_envelope`` (JSON).
+        ``{"generator_version": str, "regimes": {name: {"weight", "description",
+        "boundary_layer", "humidity_jump", "ranges": {quantity: [low, high]}}},
+        "ranges": {name: {"min", "max", "units", "meaning"}}`` (regime quantities: the
+        union over the regimes), ``"temperature_perturbation"``, ``"humidity_perturbation"``,
+        ``"stratospheric_humidity_perturbation"``, ``"emissivity_channel_std"``}. Written to
+        file attributes as ``rtemu_envelope`` (JSON).
     """
+    ranges = {**_regime_ranges(), **_GLOBAL_RANGES}
+    regimes = {
+        name: {"weight": r["weight"], "description": r["description"], "boundary_layer": r["boundary_layer"],
+               "humidity_jump": r["humidity_jump"],
+               "surface_temperature_at_sea_level": r["surface_temperature_at_sea_level"],
+               "inversion_top_temperature_max": r["inversion_top_temperature_max"],
+               "ranges": {q: list(r[q]) for q in _REGIME_UNITS}}
+        for name, r in _REGIMES.items()
+    }
     return {
         "generator_version": GENERATOR_VERSION,
+        "regimes": regimes,
         "ranges": {
             name: {"min": lo, "max": hi, "units": units, "meaning": meaning}
-            for name, (lo, hi, units, meaning) in _RANGES.items()
+            for name, (lo, hi, units, meaning) in ranges.items()
         },
         "temperature_perturbation": dict(_TEMPERATURE_NOISE),
         "humidity_perturbation": dict(_HUMIDITY_NOISE),
@@ -164,13 +355,27 @@ def envelope_description() -> dict:
 
 
 # --- input validation -----------------------------------------------------------------------
+def _tropopause_line(p_t):
+    line = _TROPOPAUSE_LINE
+    return line["reference_k"] + line["slope_k_per_ln_p"] * np.log(p_t / line["reference_hpa"])
+
+
+def _regime_tropopause_band(regime: dict, p_t):
+    """(lowest, highest) tropopause temperature [K] one regime draws at p_t [hPa]."""
+    centre = _tropopause_line(p_t)
+    off_lo, off_hi = regime["tropopause_temperature_offset"]
+    t_lo, t_hi = regime["tropopause_temperature"]
+    return np.clip(centre + off_lo, t_lo, t_hi), np.clip(centre + off_hi, t_lo, t_hi)
+
+
 def tropopause_temperature_band(tropopause_pressure_hpa):
     """Range of tropopause temperature the generator draws at a tropopause pressure.
 
-    The line T = 216.65 K + 29 K ln(p_t / 226.32 hPa) through the US 1976 tropopause [1],
-    plus and minus the half-width of ``tropopause_temperature_offset`` (8 K), kept
-    inside the ``tropopause_temperature`` range. The lapse-rate range narrows it further
-    per profile (:func:`draw_states`).
+    Each regime draws T_t = 216.65 K + 29 K ln(p_t / 226.32 hPa) + offset, the line through
+    the US 1976 tropopause [1] plus an offset in the regime's range, kept inside the
+    regime's absolute tropopause-temperature limits; the band is the union over the regimes
+    whose tropopause-pressure range holds p_t. The lapse-rate limits narrow it further per
+    profile (:func:`draw_states`).
 
     Parameters
     ----------
@@ -180,7 +385,8 @@ def tropopause_temperature_band(tropopause_pressure_hpa):
     Returns
     -------
     (numpy.ndarray, numpy.ndarray)
-        Lowest and highest tropopause temperature [K], shape of the input.
+        Lowest and highest tropopause temperature [K], shape of the input; NaN where no
+        regime draws p_t.
 
     References
     ----------
@@ -188,11 +394,15 @@ def tropopause_temperature_band(tropopause_pressure_hpa):
         22,632 Pa and 216.65 K.
     """
     p_t = np.asarray(tropopause_pressure_hpa, dtype=float)
-    line = _TROPOPAUSE_LINE
-    centre = line["reference_k"] + line["slope_k_per_ln_p"] * np.log(p_t / line["reference_hpa"])
-    off_lo, off_hi = _RANGES["tropopause_temperature_offset"][:2]
-    t_lo, t_hi = _RANGES["tropopause_temperature"][:2]
-    return np.clip(centre + off_lo, t_lo, t_hi), np.clip(centre + off_hi, t_lo, t_hi)
+    lo, hi = np.full(p_t.shape, np.inf), np.full(p_t.shape, -np.inf)
+    for regime in _REGIMES.values():
+        p_lo, p_hi = regime["tropopause_pressure"]
+        inside = (p_t >= p_lo) & (p_t <= p_hi)
+        r_lo, r_hi = _regime_tropopause_band(regime, p_t)
+        lo = np.where(inside, np.minimum(lo, r_lo), lo)
+        hi = np.where(inside, np.maximum(hi, r_hi), hi)
+    none = ~np.isfinite(lo)
+    return np.where(none, np.nan, lo), np.where(none, np.nan, hi)
 
 
 def _check_count(count) -> int:
@@ -278,90 +488,179 @@ def _correlated_noise(rng: np.random.Generator, root: np.ndarray, n: int) -> np.
     return np.stack([np.sum(z * row, axis=1) for row in root], axis=1)
 
 
-def _us76_stratosphere_shape(p: np.ndarray) -> np.ndarray:
-    """US 1976 stratosphere warming, 0 at and below 20 km', 1 at the stratopause [1]."""
-    lower, stratopause = _US76_STRATOSPHERE_BASE
-    t_lower = atm.us_standard_atmosphere_1976(lower)
-    t_top = atm.us_standard_atmosphere_1976(stratopause)
-    shape = (atm.us_standard_atmosphere_1976(p) - t_lower) / (t_top - t_lower)
-    return np.where(p >= lower, 0.0, shape)
+def _us76_stratosphere_shape(p: np.ndarray, p_t: np.ndarray, p_sp: np.ndarray) -> np.ndarray:
+    """The US 1976 stratospheric warming [1], 0 at the tropopause and 1 at the stratopause,
+    stretched in ln p from the standard's (226.32 hPa, 1.109 hPa) onto (p_t, p_sp) [hPa]."""
+    base, _, top = _US76_STRATOSPHERE_BASE
+    stretch = np.log(base / top) / np.log(p_t / p_sp)
+    mapped = np.exp(np.log(base) + (np.log(p) - np.log(p_t)) * stretch)
+    mapped = np.clip(mapped, top, base)
+    t_base = atm.us_standard_atmosphere_1976(base)
+    t_top = atm.us_standard_atmosphere_1976(top)
+    return (atm.us_standard_atmosphere_1976(mapped) - t_base) / (t_top - t_base)
 
 
-def _scale(u: np.ndarray, name: str, log: bool = False) -> np.ndarray:
-    lo, hi = _RANGES[name][:2]
+def _sigmoid(x: np.ndarray) -> np.ndarray:
+    # scipy's expit keeps relative precision far into the tails, where RH ~ exp(x).
+    return special.expit(x)
+
+
+def _logit(x: np.ndarray) -> np.ndarray:
+    return np.log(x / (1.0 - x))
+
+
+def _regime_values(u: dict, regime: np.ndarray) -> dict:
+    """Per-profile values of every regime quantity from its Sobol' coordinate."""
+    values = {}
+    for name in _REGIME_UNITS:
+        table = np.array([_REGIMES[r][name] for r in _REGIME_NAMES])  # (regimes, 2)
+        lo, hi = table[regime, 0], table[regime, 1]
+        if name in _LOG_UNIFORM:
+            values[name] = np.exp(np.log(lo) + u[name] * (np.log(hi) - np.log(lo)))
+        else:
+            values[name] = lo + u[name] * (hi - lo)
+    return values
+
+
+def _scale_global(u: np.ndarray, name: str, log: bool = False) -> np.ndarray:
+    lo, hi = _GLOBAL_RANGES[name][:2]
     if log:
         return np.exp(np.log(lo) + u * (np.log(hi) - np.log(lo)))
     return lo + u * (hi - lo)
 
 
-def _column_fraction(u: np.ndarray) -> np.ndarray:
-    """f in [0, 1] [1] with P(f < x) = w x + (1 - w) x**(1/power) for u uniform on [0, 1].
+def _boundary_layer(p, v, kind):
+    """Temperature below the free troposphere [K] (N, L) and the free troposphere's base
+    (pressure [hPa], temperature [K]) per profile (see :func:`draw_states`, step 2)."""
+    pp = p[None, :]
+    ps, t0 = v["surface_air_pressure"][:, None], v["surface_air_temperature"][:, None]
+    p_b = ps - v["boundary_layer_depth"][:, None]
+    strength = v["inversion_strength"][:, None]
+    t = np.empty((ps.shape[0], p.size))
+    p_f, t_f = np.empty(ps.shape[0]), np.empty(ps.shape[0])
 
-    The inverse of the increasing mixture CDF, by bisection (60 halvings: exact to round-off,
-    and the same numbers on every machine).
-    """
-    w, exponent = _COLUMN_WATER_LOG_UNIFORM_WEIGHT, 1.0 / _COLUMN_WATER_POWER
-    lo, hi = np.zeros_like(u), np.ones_like(u)
-    for _ in range(60):
-        mid = 0.5 * (lo + hi)
-        below = w * mid + (1.0 - w) * mid**exponent < u
-        lo, hi = np.where(below, mid, lo), np.where(below, hi, mid)
-    return 0.5 * (lo + hi)
+    rows = kind == "inversion"
+    if rows.any():
+        frac = np.minimum(np.log(ps[rows] / pp) / np.log(ps[rows] / p_b[rows]), 1.0)  # < 0 below ground
+        t[rows] = t0[rows] + strength[rows] * frac
+        p_f[rows], t_f[rows] = p_b[rows, 0], (t0[rows] + strength[rows])[:, 0]
+    rows = kind == "mixed"
+    if rows.any():
+        p_i = p_b[rows] - v["inversion_thickness"][rows, None]  # top of the capping inversion
+        t_b = t0[rows] * (p_b[rows] / ps[rows]) ** _KAPPA_DRY
+        jump = np.clip(np.log(p_b[rows] / pp) / np.log(p_b[rows] / p_i), 0.0, 1.0)
+        t[rows] = np.where(pp >= p_b[rows], t0[rows] * (pp / ps[rows]) ** _KAPPA_DRY, t_b + strength[rows] * jump)
+        p_f[rows], t_f[rows] = p_i[:, 0], (t_b + strength[rows])[:, 0]
+    rows = kind == "parcel"
+    if rows.any():
+        q0 = atm.specific_humidity_from_relative_humidity(v["relative_humidity_surface"][rows],
+                                                          t0[rows, 0], ps[rows, 0])
+        p_blend = v["tropopause_pressure"][rows] * np.exp(_MOIST_BLEND_LN_P)
+        targets = np.concatenate([np.maximum(pp, p_blend[:, None]), p_blend[:, None]], axis=1)
+        parcel = atm.parcel_temperature(t0[rows, 0], q0, ps[rows, 0], targets)
+        weight = np.clip(np.log(ps[rows] / targets) / np.log(ps[rows] / _MOIST_OFFSET_TOP_HPA), 0.0, 1.0)
+        env = parcel - v["moist_adiabat_offset"][rows, None] * weight
+        t[rows] = env[:, :-1]
+        p_f[rows], t_f[rows] = p_blend, env[:, -1]
+    return t, p_f, t_f
 
 
-def _sigmoid(x: np.ndarray) -> np.ndarray:
-    # scipy's expit keeps relative precision far into the tails, where RH ~ exp(x); the
-    # tanh form loses it to cancellation and makes the column a step function of c there.
-    return special.expit(x)
+def _band_of(regime: np.ndarray, p_t: np.ndarray):
+    """Each profile's regime tropopause band [K] at p_t [hPa]."""
+    lo, hi = np.empty(p_t.shape), np.empty(p_t.shape)
+    for index, name in enumerate(_REGIME_NAMES):
+        rows = regime == index
+        lo[rows], hi[rows] = _regime_tropopause_band(_REGIMES[name], p_t[rows])
+    return lo, hi
 
 
-def _temperature(p, u, rng_noise):
-    """Temperature profiles [K] (N, L), surface-first, and the drawn parameters."""
-    ps = p[0]
+def _increasing_root(func, lo: np.ndarray, hi: np.ndarray, iterations: int = 50) -> np.ndarray:
+    """x in [lo, hi] with func(x) = 0 for an increasing func (bisection); the nearer end
+    where the bracket holds no sign change."""
+    f_lo, f_hi = func(lo), func(hi)
+    a, b = lo.copy(), hi.copy()
+    for _ in range(iterations):
+        mid = 0.5 * (a + b)
+        below = func(mid) < 0.0
+        a, b = np.where(below, mid, a), np.where(below, b, mid)
+    root = 0.5 * (a + b)
+    return np.where(f_lo >= 0.0, lo, np.where(f_hi <= 0.0, hi, root))
+
+
+def _reachable_tropopause(regime, p_t, p_f, t_f, gamma_lo, gamma_hi):
+    """Move p_t [hPa] as little as needed for the regime's band to be reachable from the
+    free troposphere's base (p_f [hPa], t_f [K]) with a lapse rate in [gamma_lo, gamma_hi]
+    [K m-1]: up where even the steepest lapse rate stays warmer than the band (a warm column
+    has a high tropopause), down (to at most 0.7 p_f and 400 hPa) where even the gentlest
+    one is colder."""
+    x0 = np.log(p_t)
+
+    def miss(x, rows, gamma, side):
+        base = t_f[rows] * np.exp(_KAPPA_PER_LAPSE * gamma[rows] * (x - np.log(p_f[rows])))
+        return base - _band_of(regime[rows], np.exp(x))[side]
+
+    lowest = np.full(x0.shape, np.log(_TROPOPAUSE_PRESSURE_LIMITS[0]))
+    highest = np.maximum(np.minimum(np.log(_TROPOPAUSE_PRESSURE_LIMITS[1]),
+                                    np.log(_TROPOPAUSE_DEPTH_RATIO * p_f)), x0)
+    x = x0.copy()
+    everyone = np.ones(x0.shape, dtype=bool)
+    warm = miss(x0, everyone, gamma_hi, 1) > 0.0
+    if warm.any():
+        x[warm] = _increasing_root(lambda y: miss(y, warm, gamma_hi, 1), lowest[warm], x0[warm])
+    cold = miss(x0, everyone, gamma_lo, 0) < 0.0
+    if cold.any():
+        x[cold] = _increasing_root(lambda y: miss(y, cold, gamma_lo, 0), x0[cold], highest[cold])
+    return np.exp(x)
+
+
+def _temperature(p, v, kind, regime, rng_noise):
+    """Temperature profiles [K] (N, L), surface-first, and the construction's parameters."""
+    pp = p[None, :]
     ln_p = np.log(p)
-    t0 = _scale(u["surface_air_temperature"], "surface_air_temperature")
-    inversion = _scale(u["inversion_strength"], "inversion_strength")
-    depth = _scale(u["inversion_depth"], "inversion_depth")
-    p_trop = _scale(u["tropopause_pressure"], "tropopause_pressure", log=True)
-    t_free0 = t0 + inversion  # free troposphere extrapolated to the bottom level
+    ps = v["surface_air_pressure"]
+    bl, p_f, t_f = _boundary_layer(p, v, kind)
+    gamma_lo = v["tropospheric_lapse_rate_lo"] * 1e-3
+    gamma_hi = v["tropospheric_lapse_rate_hi"] * 1e-3
+    # The tropical column's free troposphere starts at a fixed ln-p distance below p_t, so
+    # its tropopause stays where it was drawn.
+    p_t = np.where(kind == "parcel", v["tropopause_pressure"],
+                   _reachable_tropopause(regime, v["tropopause_pressure"], p_f, t_f, gamma_lo, gamma_hi))
 
-    # Tropopause temperature, limited so that the implied lapse rate stays in range ...
-    gamma_lo, gamma_hi = (g * 1e-3 for g in _RANGES["tropospheric_lapse_rate"][:2])
-    tt_lo_abs, tt_hi_abs = _RANGES["tropopause_temperature"][:2]
-    log_ratio = np.log(p_trop / ps)
-    lapse_lo = np.maximum(tt_lo_abs, t_free0 * np.exp(_KAPPA_PER_LAPSE * gamma_hi * log_ratio))
-    lapse_hi = np.minimum(tt_hi_abs, t_free0 * np.exp(_KAPPA_PER_LAPSE * gamma_lo * log_ratio))
-    # ... and within the band about the tropopause line; where the two do not meet, the
-    # lapse-rate limit nearest the band.
-    band_lo, band_hi = tropopause_temperature_band(p_trop)
+    # Tropopause temperature in the regime's band, limited so that the free-tropospheric
+    # lapse rate stays in the regime's range; where the two do not meet, the lapse-rate
+    # limit nearest the band.
+    log_ratio = np.log(p_t / p_f)
+    lapse_lo = t_f * np.exp(_KAPPA_PER_LAPSE * gamma_hi * log_ratio)
+    lapse_hi = t_f * np.exp(_KAPPA_PER_LAPSE * gamma_lo * log_ratio)
+    band_lo, band_hi = _band_of(regime, p_t)
     tt_lo = np.maximum(lapse_lo, np.minimum(band_lo, lapse_hi))
     tt_hi = np.minimum(lapse_hi, np.maximum(band_hi, lapse_lo))
-    t_trop = tt_lo + u["tropopause_temperature"] * (tt_hi - tt_lo)
-    kappa = np.log(t_free0 / t_trop) / np.log(ps / p_trop)  # T = T0' (p/ps)^kappa
+    t_t = tt_lo + v["tropopause_temperature_u"] * (tt_hi - tt_lo)
+    kappa = np.log(t_f / t_t) / np.log(p_f / p_t)
+    free = t_f[:, None] * (pp / p_f[:, None]) ** kappa[:, None]
+    troposphere = np.where(pp >= p_f[:, None], bl, free)
+    # Below the ground the surface air temperature, unchanged: the levels there are dropped
+    # by a surface-aware model, and a constant adds no kink of its own (continuing the
+    # boundary layer to the first level under the ground and 6.5 K/km below it raised the
+    # largest off-subspace residual of a training set 1.7 times; docs/decisions.md).
+    troposphere = np.where(pp > ps[:, None], v["surface_air_temperature"][:, None], troposphere)
+    p_sp = v["stratopause_pressure"]
+    t_sp = np.maximum(v["stratopause_temperature"], t_t + 5.0)
+    mix = v["stratospheric_shape_mix"][:, None]
+    linear = np.clip(np.log(p_t[:, None] / pp) / np.log(p_t / p_sp)[:, None], 0.0, 1.0)
+    shape = (1.0 - mix) * _us76_stratosphere_shape(pp, p_t[:, None], p_sp[:, None]) + mix * linear
+    stratosphere = t_t[:, None] + (t_sp - t_t)[:, None] * shape
+    scale_height_km = DRY_AIR_GAS_CONSTANT * t_sp / STANDARD_GRAVITY * 1e-3
+    mesosphere = t_sp[:, None] - (v["mesospheric_lapse_rate"] * scale_height_km)[:, None] * np.log(p_sp[:, None] / pp)
+    stratosphere = np.where(pp < p_sp[:, None], mesosphere, stratosphere)
+    temperature = np.where(pp >= p_t[:, None], troposphere, stratosphere)
 
-    t_sp_lo = np.maximum(_RANGES["stratopause_temperature"][0], t_trop + 5.0)
-    t_sp = t_sp_lo + u["stratopause_temperature"] * (_RANGES["stratopause_temperature"][1] - t_sp_lo)
-    mix = u["stratospheric_shape_mix"]
-
-    pp = p[None, :]
-    free = t_free0[:, None] * (pp / ps) ** kappa[:, None]
-    surface_weight = np.clip((pp - (ps - depth[:, None])) / depth[:, None], 0.0, 1.0)
-    troposphere = free - inversion[:, None] * surface_weight
-
-    us_shape = _us76_stratosphere_shape(p)[None, :]
-    stratopause = _US76_STRATOSPHERE_BASE[1]
-    linear = np.clip(np.log(p_trop[:, None] / pp) / np.log(p_trop[:, None] / stratopause), 0.0, None)
-    linear = np.where(pp < stratopause, us_shape, linear)
-    shape = (1.0 - mix[:, None]) * us_shape + mix[:, None] * linear
-    stratosphere = t_trop[:, None] + (t_sp - t_trop)[:, None] * shape
-    in_troposphere = pp >= p_trop[:, None]
-    temperature = np.where(in_troposphere, troposphere, stratosphere)
-
-    tropo_weight = _sigmoid((ln_p[None, :] - np.log(p_trop)[:, None]) / _TRANSITION_WIDTH_LN_P)
+    tropo_weight = _sigmoid((ln_p[None, :] - np.log(p_t)[:, None]) / _TRANSITION_WIDTH_LN_P)
     std = (_TEMPERATURE_NOISE["troposphere_std_k"] * tropo_weight
            + _TEMPERATURE_NOISE["stratosphere_std_k"] * (1.0 - tropo_weight))
-    taper = 1.0 - np.exp(-(np.log(ps) - ln_p) / _TEMPERATURE_NOISE["surface_taper_ln_p"])
-    temperature = temperature + std * taper[None, :] * rng_noise
+    height = np.clip(np.log(ps)[:, None] - ln_p[None, :], 0.0, None)
+    taper = 1.0 - np.exp(-height / _TEMPERATURE_NOISE["surface_taper_ln_p"])
+    temperature = temperature + std * taper * rng_noise
 
     # Keep saturation above the humidity floor (q_sat >= 2 * floor) so RH <= 1 and
     # q >= floor can both hold; binds only in extreme corners of the design.
@@ -369,69 +668,46 @@ def _temperature(p, u, rng_noise):
     temperature = np.maximum(temperature, atm.dewpoint_from_vapour_pressure(e_needed)[None, :])
     temperature = np.clip(temperature, 150.0, 390.0)
     params = {
-        "tropopause_pressure": p_trop, "tropopause_temperature": t_trop,
+        "tropopause_pressure": p_t, "tropopause_temperature": t_t,
         "tropospheric_lapse_rate": kappa / _KAPPA_PER_LAPSE * 1e3,
-        "inversion_strength": inversion, "inversion_depth": depth,
-        "stratopause_temperature": t_sp,
+        "boundary_layer_top_pressure": p_f,
+        "stratopause_pressure": p_sp, "stratopause_temperature": t_sp,
     }
     return temperature, tropo_weight, params
 
 
-class _Humidity:
-    """Specific humidity as a monotone function of one shift c of logit(RH)."""
-
-    def __init__(self, p, temperature, tropo_weight, shape_logit, ln_q_strat):
-        self.p = p
-        self.weight = tropo_weight
-        es = atm.saturation_vapour_pressure(temperature)
-        self.es = es
-        self.shape = shape_logit
-        # Where es approaches p (warm air aloft) the tropospheric branch is capped; it is
-        # blended out there anyway.
-        self.e_limit = 0.5 * p[None, :]
-        self.strat_part = (1.0 - tropo_weight) * ln_q_strat
-        e_cap = _RH_CAP * es
-        reachable = e_cap < 0.99 * p[None, :]
-        q_cap = atm.specific_humidity_from_vapour_pressure(np.where(reachable, e_cap, 0.0), p[None, :])
-        self.q_max = np.where(reachable, np.minimum(q_cap, _Q_MAX), _Q_MAX)
-
-    def specific_humidity(self, shift: np.ndarray) -> np.ndarray:
-        rh = _sigmoid(self.shape + shift[:, None])
-        e = np.minimum(rh * self.es, self.e_limit)
-        q_trop = EPSILON * e / (self.p[None, :] - (1.0 - EPSILON) * e)  # e < p/2: always valid
-        ln_q = self.weight * np.log(np.maximum(q_trop, 1e-300)) + self.strat_part
-        return np.clip(np.exp(ln_q), _Q_FLOOR, self.q_max)
-
-    def column(self, shift: np.ndarray) -> np.ndarray:
-        return atm.total_column_water_vapour(self.p, self.specific_humidity(shift))
+def _specific_humidity(p, temperature, tropo_weight, logit_rh, ln_q_strat) -> np.ndarray:
+    """q [kg kg-1] (N, L): RH = logistic(logit_rh) below the tropopause, ln q blended over
+    0.1 in ln p into ``ln_q_strat`` above it; capped at RH = 1 - 1e-6 and q < 0.099,
+    floored at 1e-7 kg kg-1."""
+    pp = p[None, :]
+    es = atm.saturation_vapour_pressure(temperature)
+    # Where es approaches p (warm air aloft) the tropospheric branch is capped; it is
+    # blended out there anyway.
+    e = np.minimum(_sigmoid(logit_rh) * es, 0.5 * pp)
+    q_trop = EPSILON * e / (pp - (1.0 - EPSILON) * e)  # e < p/2: always valid
+    ln_q = tropo_weight * np.log(np.maximum(q_trop, 1e-300)) + (1.0 - tropo_weight) * ln_q_strat
+    e_cap = _RH_CAP * es
+    reachable = e_cap < 0.99 * pp
+    q_cap = atm.specific_humidity_from_vapour_pressure(np.where(reachable, e_cap, 0.0), pp)
+    q_max = np.where(reachable, np.minimum(q_cap, _Q_MAX), _Q_MAX)
+    return np.clip(np.exp(ln_q), _Q_FLOOR, q_max)
 
 
-def _solve_shift(humidity: _Humidity, target, lo, hi, column_lo, column_hi, tolerance=1e-12,
-                 iterations=60) -> np.ndarray:
-    """Shift c in [lo, hi] with column(c) = target: Illinois regula falsi on ln column.
-
-    ln column is nearly linear in c while the air is far from saturation, so this takes
-    ~10 evaluations where bisection takes ~40; the bracket keeps it safe elsewhere.
-    """
-    a, b = np.full(target.shape, lo), np.full(target.shape, hi)
-    ln_target = np.log(target)
-    fa, fb = np.log(column_lo) - ln_target, np.log(column_hi) - ln_target
-    c = np.where(np.abs(fa) <= np.abs(fb), a, b)
-    last_side = np.zeros(target.shape, dtype=np.int8)
-    for _ in range(iterations):
-        width = fb - fa
-        secant = np.where(width > 0, (a * fb - b * fa) / np.where(width > 0, width, 1.0), 0.5 * (a + b))
-        c = np.clip(secant, a, b)
-        fc = np.log(humidity.column(c)) - ln_target
-        if np.all(np.abs(fc) <= tolerance):
-            break
-        moves_b = fc > 0  # fa <= 0 <= fb throughout
-        fa = np.where(moves_b & (last_side == 1), 0.5 * fa, fa)  # Illinois: halve the stale end
-        fb = np.where(~moves_b & (last_side == -1), 0.5 * fb, fb)
-        b, fb = np.where(moves_b, c, b), np.where(moves_b, fc, fb)
-        a, fa = np.where(moves_b, a, c), np.where(moves_b, fa, fc)
-        last_side = np.where(moves_b, 1, -1).astype(np.int8)
-    return c
+def _relative_humidity_logit(p, v, jump, p_t, noise):
+    """logit(RH) [1] (N, L): linear in p between the regime's nodes (see :func:`draw_states`)."""
+    pp = p[None, :]
+    ps = v["surface_air_pressure"][:, None]
+    p_b = ps - v["boundary_layer_depth"][:, None]
+    l_s = _logit(v["relative_humidity_surface"])[:, None]
+    l_bt = _logit(v["relative_humidity_boundary_layer_top"])[:, None]
+    l_f = np.where(jump, _logit(v["relative_humidity_free_troposphere"]), l_bt[:, 0])[:, None]
+    l_u = _logit(v["relative_humidity_tropopause"])[:, None]
+    inside = l_s + (l_bt - l_s) * np.clip((ps - pp) / (ps - p_b), 0.0, 1.0)
+    above = l_f + (l_u - l_f) * np.clip((p_b - pp) / (p_b - p_t[:, None]), 0.0, 1.2)
+    height = np.clip(np.log(ps) - np.log(pp), 0.0, None)
+    taper = 1.0 - np.exp(-height / _TEMPERATURE_NOISE["surface_taper_ln_p"])
+    return np.where(pp >= p_b, inside, above) + _HUMIDITY_NOISE["logit_std"] * taper * noise
 
 
 def _draw_block(seed: int, block: int, p: np.ndarray, kinds: tuple[bool, ...]) -> dict:
@@ -455,37 +731,52 @@ def _draw_block(seed: int, block: int, p: np.ndarray, kinds: tuple[bool, ...]) -
     e_noise = rng.standard_normal((n, kind.size))
     s_noise = _correlated_noise(rng, roots[2], n)
 
-    temperature, tropo_weight, params = _temperature(p, u, t_noise)
+    weights = np.cumsum([_REGIMES[r]["weight"] for r in _REGIME_NAMES])
+    regime = np.minimum(np.searchsorted(weights / weights[-1], u["climate_regime"], side="right"),
+                        len(_REGIME_NAMES) - 1)
+    v = _regime_values(u, regime)
+    at_sea_level = np.array([_REGIMES[r]["surface_temperature_at_sea_level"] for r in _REGIME_NAMES])[regime]
+    v["surface_air_temperature"] = np.where(
+        at_sea_level, v["surface_air_temperature"] * (v["surface_air_pressure"] / atm.DEFAULT_SURFACE_PRESSURE_HPA)
+        ** (_KAPPA_PER_LAPSE * _SEA_LEVEL_REDUCTION_LAPSE_K_PER_KM * 1e-3), v["surface_air_temperature"])
+    # A surface below the grid's bottom level sits on it (custom grids only).
+    v["surface_air_pressure"] = np.minimum(v["surface_air_pressure"], p[0])
+    v["boundary_layer_depth"] = np.minimum(v["boundary_layer_depth"], 0.5 * (v["surface_air_pressure"] - p[-1]))
+    bl_kind = np.array([_REGIMES[r]["boundary_layer"] for r in _REGIME_NAMES])[regime]
+    top_max = np.array([_REGIMES[r]["inversion_top_temperature_max"] for r in _REGIME_NAMES])[regime]
+    v["inversion_strength"] = np.where(
+        bl_kind == "inversion",
+        np.minimum(v["inversion_strength"], np.maximum(top_max - v["surface_air_temperature"], 0.0)),
+        v["inversion_strength"])
+    jump = np.array([_REGIMES[r]["humidity_jump"] for r in _REGIME_NAMES])[regime]
+    # The tropopause lies well above the boundary layer (at most 0.7 x its top pressure).
+    bl_top = v["surface_air_pressure"] - v["boundary_layer_depth"] - np.where(
+        bl_kind == "mixed", v["inversion_thickness"], 0.0)
+    v["tropopause_pressure"] = np.where(bl_kind == "parcel", v["tropopause_pressure"],
+                                        np.minimum(v["tropopause_pressure"], _TROPOPAUSE_DEPTH_RATIO * bl_top))
+    lapse = np.array([_REGIMES[r]["tropospheric_lapse_rate"] for r in _REGIME_NAMES])[regime]
+    v["tropospheric_lapse_rate_lo"], v["tropospheric_lapse_rate_hi"] = lapse[:, 0], lapse[:, 1]
+    v["tropopause_temperature_u"] = u["tropopause_temperature_offset"]
+    v["stratospheric_shape_mix"] = _scale_global(u["stratospheric_shape_mix"], "stratospheric_shape_mix")
 
-    ps = p[0]
-    p_trop = params["tropopause_pressure"]
-    height_fraction = np.clip((ps - p[None, :]) / (ps - p_trop[:, None]), 0.0, 1.2)
-    decay = _scale(u["relative_humidity_decay"], "relative_humidity_decay")
-    shape = -decay[:, None] * height_fraction + _HUMIDITY_NOISE["logit_std"] * h_noise
-    q_strat = _scale(u["stratospheric_specific_humidity"], "stratospheric_specific_humidity", log=True)
-    gradient = _scale(u["stratospheric_humidity_gradient"], "stratospheric_humidity_gradient")
-    height = np.clip(np.log(p_trop[:, None] / p[None, :]) / np.log(p_trop / _STRATOSPHERIC_GRADIENT_TOP_HPA)[:, None],
+    temperature, tropo_weight, params = _temperature(p, v, bl_kind, regime, t_noise)
+    p_t = params["tropopause_pressure"]
+    logit_rh = _relative_humidity_logit(p, v, jump, p_t, h_noise)
+    q_strat = _scale_global(u["stratospheric_specific_humidity"], "stratospheric_specific_humidity", log=True)
+    gradient = _scale_global(u["stratospheric_humidity_gradient"], "stratospheric_humidity_gradient")
+    height = np.clip(np.log(p_t[:, None] / p[None, :]) / np.log(p_t / _STRATOSPHERIC_GRADIENT_TOP_HPA)[:, None],
                      0.0, None)
     ln_q_strat = (np.log(q_strat)[:, None] + gradient[:, None] * height
                   + _STRATOSPHERIC_HUMIDITY_NOISE["ln_q_std"] * s_noise)
-    humidity = _Humidity(p, temperature, tropo_weight, shape, ln_q_strat)
+    q = _specific_humidity(p, temperature, tropo_weight, logit_rh, ln_q_strat)
 
-    w_dry = humidity.column(np.full(n, -40.0))
-    w_sat = humidity.column(np.full(n, 40.0))
-    w_lo_abs, w_hi_abs = _RANGES["total_column_water_vapour"][:2]
-    w_hi = np.minimum(w_hi_abs, w_sat)
-    w_lo = np.minimum(np.maximum(w_lo_abs, _COLUMN_FRACTION_LOW * w_sat), w_hi)
-    w_lo = np.maximum(w_lo, w_dry)
-    fraction = _column_fraction(u["total_column_water_vapour"])
-    target = np.exp(np.log(w_lo) + fraction * (np.log(w_hi) - np.log(w_lo)))
-    q = humidity.specific_humidity(_solve_shift(humidity, target, -40.0, 40.0, w_dry, w_sat))
-
-    skin = temperature[:, 0] + _scale(u["skin_minus_air_temperature"], "skin_minus_air_temperature")
+    ps = v["surface_air_pressure"]
+    skin = v["surface_air_temperature"] + v["skin_minus_air_temperature"]
     emissivity = np.empty((n, kind.size))
     for is_mw, name, std in ((True, "surface_emissivity_microwave", _EMISSIVITY_CHANNEL_STD["microwave"]),
                              (False, "surface_emissivity_infrared", _EMISSIVITY_CHANNEL_STD["infrared"])):
-        lo, hi = _RANGES[name][:2]
-        base = _scale(u[name], name)
+        lo, hi = _GLOBAL_RANGES[name][:2]
+        base = _scale_global(u[name], name)
         cols = kind == is_mw
         emissivity[:, cols] = np.clip(base[:, None] + std * e_noise[:, cols], lo, hi)
     return {
@@ -493,9 +784,12 @@ def _draw_block(seed: int, block: int, p: np.ndarray, kinds: tuple[bool, ...]) -
         "specific_humidity": q,
         "surface_temperature": skin,
         "surface_emissivity": emissivity,
-        "sensor_zenith_angle": _scale(u["sensor_zenith_angle"], "sensor_zenith_angle"),
-        "total_column_water_vapour": atm.total_column_water_vapour(p, q),
-        "relative_humidity_decay": decay,
+        "sensor_zenith_angle": _scale_global(u["sensor_zenith_angle"], "sensor_zenith_angle"),
+        "surface_air_pressure": ps,
+        "total_column_water_vapour": atm.total_column_water_vapour(p, q, ps),
+        "climate_regime": regime.astype(np.int8),
+        "surface_air_temperature": v["surface_air_temperature"],
+        "inversion_strength": np.where(bl_kind == "parcel", 0.0, v["inversion_strength"]),
         **params,
     }
 
@@ -521,62 +815,67 @@ _INPUT_ATTRS = {
                            "long_name": "surface emissivity per channel", "units": "1"},
     "sensor_zenith_angle": {"standard_name": "sensor_zenith_angle",
                             "long_name": "sensor zenith angle at the surface", "units": "degree"},
+    "surface_air_pressure": {"standard_name": "surface_air_pressure", "long_name": "surface air pressure",
+                             "units": "hPa"},
     "total_column_water_vapour": {"standard_name": "atmosphere_mass_content_of_water_vapor",
-                                  "long_name": "total column water vapour (trapezoidal, as the model)",
+                                  "long_name": "total column water vapour above the surface pressure "
+                                  "(trapezoidal, as the model)",
                                   "units": "kg m-2"},
 }
 _PARAMETER_ATTRS = {
+    "climate_regime": {"long_name": "climate regime the generator drew the profile from",
+                       "flag_values": np.arange(len(_REGIME_NAMES), dtype=np.int8),
+                       "flag_meanings": " ".join(_REGIME_NAMES)},
+    "surface_air_temperature": {"long_name": "air temperature at the surface pressure drawn by the generator",
+                                "units": "K"},
     "tropopause_pressure": {"long_name": "tropopause pressure drawn by the generator", "units": "hPa"},
     "tropopause_temperature": {"long_name": "tropopause temperature drawn by the generator", "units": "K"},
     "tropospheric_lapse_rate": {"long_name": "free-tropospheric lapse rate of the construction",
                                 "units": "K km-1"},
-    "inversion_strength": {"long_name": "surface inversion strength drawn by the generator", "units": "K"},
-    "inversion_depth": {"long_name": "surface inversion depth drawn by the generator", "units": "hPa"},
+    "boundary_layer_top_pressure": {"long_name": "pressure where the construction's free troposphere begins",
+                                    "units": "hPa"},
+    "inversion_strength": {"long_name": "temperature rise across the boundary-layer inversion drawn by the "
+                           "generator", "units": "K"},
+    "stratopause_pressure": {"long_name": "stratopause pressure drawn by the generator", "units": "hPa"},
     "stratopause_temperature": {"long_name": "stratopause temperature drawn by the generator", "units": "K"},
-    "relative_humidity_decay": {"long_name": "decrease of logit(relative humidity) from the surface to the "
-                                "tropopause drawn by the generator", "units": "1"},
 }
 #: Variables written to the training file, in file order.
 STATE_VARIABLES = ("air_temperature", "specific_humidity", "surface_temperature",
-                   "surface_emissivity", "sensor_zenith_angle", "total_column_water_vapour")
+                   "surface_emissivity", "sensor_zenith_angle", "surface_air_pressure",
+                   "total_column_water_vapour")
 
 
 def draw_states(count: int, *, seed: int, pressure_hpa=None, start: int = 0, channels) -> xr.Dataset:
     """Draw ``count`` clear-sky atmospheric states (profiles ``start .. start+count-1``).
 
-    Construction (surface-first grid, bottom pressure ps; drawn quantities in the
-    nominal ranges of :func:`envelope_description`, scalars from a scrambled Sobol'
-    sequence):
+    A mixture of nine climate regimes with stated weights (moist-adiabatic tropics,
+    subtropical subsidence, hot desert, mid-latitude summer and winter, polar summer and
+    winter, high terrain, stratospheric warming); docs/generator.md describes each, its
+    ranges and their sources, and measures the result. Per profile (surface-first grid):
 
-    1. Free troposphere with constant lapse rate: T = T0' (p/ps)^kappa, T0' = T0 + dI
-       (T0 surface air temperature, dI inversion strength), kappa from the drawn
-       tropopause (p_t log-uniform; T_t within 8 K of a line in ln p_t through the US 1976
-       tropopause, :func:`tropopause_temperature_band`, and inside the range the lapse-rate
-       limits allow: where the two do not meet, the limit nearest the band); lapse rate =
-       kappa g / R_d.
-    2. Surface layer of drawn depth D: T = T_free - dI * clip((p - (ps - D)) / D, 0, 1),
-       so the bottom level holds T0 exactly (inversion for dI > 0).
-    3. Stratosphere (p < p_t): T = T_t + (T_sp - T_t) * shape, shape a drawn mix of the
-       US 1976 warming profile (0 below 20 km', 1 at 1.1 hPa) and a ramp linear in ln p
-       from the tropopause to 1.1 hPa; above 1.1 hPa the US 1976 shape for both.
-    4. Vertically correlated Gaussian perturbations, correlation exp(-d^2 / (2 L^2)) with
-       d the ln-p distance: temperature L = 0.35, std 1 K in the troposphere rising to
-       3 K in the stratosphere (blend over 0.1 in ln p), tapered to 0 at the bottom level.
-    5. Humidity: RH = logistic(-a s(p) + 0.7 n(p) + c), s = (ps - p) / (ps - p_t) clipped
-       to [0, 1.2], a the drawn decay, n a unit correlated perturbation (L = 0.25);
-       q_trop = eps e / (p - (1-eps) e), e = RH es(T) (Bolton). ln q is blended over 0.1
-       in ln p around p_t into a stratospheric profile ln q_s + g h(p) + 0.15 m(p): q_s
-       the drawn value at the tropopause, g the drawn gradient reached at 1 hPa, h the
-       height ln(p_t/p) / ln(p_t/1 hPa), m a unit correlated perturbation (L = 0.5); q is capped at
-       RH = 1 - 1e-6 and floored at 1e-7 kg kg-1 (temperatures are floored so the two
-       limits never cross). The shift c is solved by bisection so that the column
-       (trapezoidal, as the model) equals the target lo (hi/lo)^f, lo = max(0.1,
-       0.003 W_sat), hi = min(75, W_sat), W_sat the saturated column; f is the Sobol'
-       coordinate mapped through the inverse of P(f < x) = 0.25 x + 0.75 x^2.5 (the
-       x^2.5 part moves weight to moist columns, the log-uniform quarter keeps warm
-       very dry columns covered).
-    6. Skin temperature T0 + U(-12, 12) K; emissivity per profile for microwave and for
-       infrared channels plus N(0, 0.03) / N(0, 0.005) per channel, clipped to
+    1. regime from one scrambled Sobol' coordinate (cumulative weights), the other
+       coordinates mapped onto the regime's ranges (:func:`envelope_description`);
+    2. surface pressure ps and surface air temperature T_s (high terrain: T_s reduced to
+       1013.25 hPa at 6.5 K/km);
+    3. boundary layer: "parcel" (dry adiabat to the lifting condensation level, then the
+       pseudo-adiabat, :func:`rtemu.atmosphere.parcel_temperature`, cooled by a drawn
+       offset reached at 500 hPa), "mixed" (dry adiabat capped by an inversion) or
+       "inversion" (linear in ln p to T_s + the drawn strength);
+    4. free troposphere at a constant lapse rate to the tropopause (p_t, T_t), T_t in the
+       regime's band about 216.65 K + 29 K ln(p_t / 226.32 hPa)
+       (:func:`tropopause_temperature_band`) and in reach of the regime's lapse-rate range
+       (p_t moved as little as needed, then the nearest lapse-rate limit);
+    5. stratosphere: a drawn mix of the US 1976 warming stretched onto (p_t, p_sp) and a
+       ramp in ln p, cooling at a drawn rate above the stratopause p_sp;
+    6. below the ground: the surface air temperature (these levels are dropped by a
+       ``surface_air_pressure``-aware model);
+    7. correlated Gaussian perturbations (temperature 1 K / 3 K, L = 0.35 in ln p;
+       logit(RH) 0.5, L = 0.25; both zero at the ground);
+    8. humidity: logit(RH) linear in p between the regime's surface, boundary-layer-top,
+       free-troposphere and tropopause values, q from Bolton (1980) e_s over water,
+       blended into a drawn stratospheric ln q profile; RH <= 1 - 1e-6, q >= 1e-7 kg kg-1;
+    9. skin T_s + the regime's skin-air difference; emissivity per profile for microwave
+       and infrared channels plus N(0, 0.03) / N(0, 0.005) per channel, clipped to
        [0.4, 1] / [0.9, 1]; sensor zenith angle U(0, 65) degree.
 
     Parameters
@@ -587,7 +886,8 @@ def draw_states(count: int, *, seed: int, pressure_hpa=None, start: int = 0, cha
         Seed [1], 0 <= seed < 2**63.
     pressure_hpa : array_like, optional
         Level pressures [hPa], strictly monotonic in either order, bottom level between
-        400 and 1100 hPa. Default :func:`rtemu.atmosphere.default_pressure_grid`.
+        400 and 1100 hPa; surface pressures beyond the bottom level sit on it. Default
+        :func:`rtemu.atmosphere.default_pressure_grid` (1100 to 0.5 hPa).
     start : int
         Index of the first profile [1]; profile ``i`` is the same whatever ``start`` and
         ``count`` (see the module docstring).
@@ -600,12 +900,14 @@ def draw_states(count: int, *, seed: int, pressure_hpa=None, start: int = 0, cha
         The physics input schema, levels in the order given: ``air_pressure`` (level)
         [hPa], ``air_temperature`` (profile, level) [K], ``specific_humidity`` (profile,
         level) [kg kg-1], ``surface_temperature`` (profile) [K], ``surface_emissivity``
-        (profile, channel) [1], ``sensor_zenith_angle`` (profile) [degree]; also
-        ``total_column_water_vapour`` (profile) [kg m-2] and the drawn construction
-        parameters ``tropopause_pressure`` [hPa], ``tropopause_temperature`` [K],
-        ``tropospheric_lapse_rate`` [K km-1], ``inversion_strength`` [K],
-        ``inversion_depth`` [hPa], ``stratopause_temperature`` [K],
-        ``relative_humidity_decay`` [1] (profile).
+        (profile, channel) [1], ``sensor_zenith_angle`` (profile) [degree],
+        ``surface_air_pressure`` (profile) [hPa]; also ``total_column_water_vapour``
+        (profile) [kg m-2] above the ground, ``climate_regime`` (profile) [flag, names in
+        its ``flag_meanings``] and the construction parameters ``surface_air_temperature``
+        [K], ``tropopause_pressure`` [hPa], ``tropopause_temperature`` [K],
+        ``tropospheric_lapse_rate`` [K km-1], ``boundary_layer_top_pressure`` [hPa],
+        ``inversion_strength`` [K], ``stratopause_pressure`` [hPa],
+        ``stratopause_temperature`` [K] (profile).
         Coordinates ``profile`` (global indices) and, for an instrument, ``channel``
         (ids). Attributes ``rtemu_envelope`` and ``rtemu_covered_envelope`` (JSON).
     """
@@ -665,8 +967,10 @@ def covered_envelope(states: xr.Dataset, kinds: Sequence[bool] | None = None) ->
     dict
         ``{name: {"min": float, "max": float, "units": str}}`` for air_temperature [K],
         specific_humidity [kg kg-1], relative_humidity [1], surface_temperature [K],
-        skin_minus_air_temperature [K], surface_emissivity (per kind) [1],
-        sensor_zenith_angle [degree], total_column_water_vapour [kg m-2] and
+        skin_minus_air_temperature [K] (against the air temperature at the surface
+        pressure, linear in ln p, when ``surface_air_pressure`` is present, else at the
+        bottom level), surface_emissivity (per kind) [1], sensor_zenith_angle [degree],
+        total_column_water_vapour [kg m-2], and surface_air_pressure [hPa] and
         tropopause_pressure [hPa] when present.
     """
     arrays = {name: states[name].values for name in states.variables}
@@ -677,16 +981,22 @@ def _envelope_of(arrays, kinds: Sequence[bool] | None) -> dict:
     p = arrays["air_pressure"]
     t = arrays["air_temperature"]
     q = arrays["specific_humidity"]
-    bottom = int(np.argmax(p))
+    if "surface_air_pressure" in arrays:
+        ps = arrays["surface_air_pressure"]
+        surface_air = atm.value_at_pressure(p, t, ps)
+    else:
+        surface_air = t[:, int(np.argmax(p))]
     values = {
         "air_temperature": (t, "K"),
         "specific_humidity": (q, "kg kg-1"),
         "relative_humidity": (atm.relative_humidity(q, t, p[None, :]), "1"),
         "surface_temperature": (arrays["surface_temperature"], "K"),
-        "skin_minus_air_temperature": (arrays["surface_temperature"] - t[:, bottom], "K"),
+        "skin_minus_air_temperature": (arrays["surface_temperature"] - surface_air, "K"),
         "sensor_zenith_angle": (arrays["sensor_zenith_angle"], "degree"),
         "total_column_water_vapour": (arrays["total_column_water_vapour"], "kg m-2"),
     }
+    if "surface_air_pressure" in arrays:
+        values["surface_air_pressure"] = (arrays["surface_air_pressure"], "hPa")
     emissivity = arrays["surface_emissivity"]
     if kinds is None:
         values["surface_emissivity"] = (emissivity, "1")
@@ -799,7 +1109,7 @@ def _compute_chunk(instrument_toml: str, seed: int, start: int, count: int, grid
     inst = Instrument.from_toml(instrument_toml, source="<sampling job>")
     states = draw_states(count, seed=seed, pressure_hpa=grid, start=start, channels=inst)
     inputs = states[["air_pressure", "air_temperature", "specific_humidity", "surface_temperature",
-                     "surface_emissivity", "sensor_zenith_angle"]]
+                     "surface_emissivity", "sensor_zenith_angle", "surface_air_pressure"]]
     out = physics.simulate(inst, inputs, jacobian=jacobian)
     arrays = {name: states[name].values for name in STATE_VARIABLES}
     for name in out.data_vars:
@@ -986,7 +1296,7 @@ def sample_to_netcdf(
     seed : int
         Generator seed [1], 0 <= seed < 2**63.
     pressure_hpa : array_like, optional
-        Level grid [hPa] (see :func:`draw_states`); default the 60-level demo grid.
+        Level grid [hPa] (see :func:`draw_states`); default the 64-level demo grid.
     jacobian : bool
         Also write the ``jacobian_*`` variables.
     workers : int, optional
@@ -1076,7 +1386,7 @@ def sample_to_netcdf(
 
 
 _FILE_ORDER = ("air_temperature", "specific_humidity", "surface_temperature", "surface_emissivity",
-               "sensor_zenith_angle", "total_column_water_vapour", "brightness_temperature",
+               "sensor_zenith_angle", "surface_air_pressure", "total_column_water_vapour", "brightness_temperature",
                "quality_flag", "jacobian_air_temperature", "jacobian_specific_humidity",
                "jacobian_surface_temperature", "jacobian_surface_emissivity")
 

@@ -7,6 +7,7 @@ import pytest
 from fluids.atmosphere import ATMOSPHERE_1976
 
 from rtemu import atmosphere as atm
+from rtemu import sampling
 from rtemu.constants import EPSILON, STANDARD_GRAVITY
 
 # --- U.S. Standard Atmosphere 1976 ----------------------------------------------------
@@ -182,9 +183,11 @@ def test_total_column_water_vapour_analytic():
 
 def test_default_pressure_grid_properties():
     p = atm.default_pressure_grid()
-    assert p.shape == (60,)
-    assert p[0] == 1013.25 and p[-1] == 0.5
+    assert p.shape == (64,)
+    assert p[0] == 1100.0 and p[-1] == 0.5
     assert np.all(np.diff(p) < 0)
+    # the bottom lies below the highest surface pressure the generator draws
+    assert p[0] >= sampling.envelope_description()["ranges"]["surface_air_pressure"]["max"]
     # boundary layer spacing <= 25 hPa below 850 hPa
     near_surface = p[p > 850.0]
     assert np.all(-np.diff(near_surface) <= 25.0)
@@ -194,7 +197,123 @@ def test_default_pressure_grid_properties():
     assert step.max() < 0.4
     # the documented coordinate is equally spaced
     eta = 15.0 * (1.0 - p / 1013.25) + np.log(1013.25 / p)
-    assert np.diff(eta) == pytest.approx(np.full(59, eta[-1] / 59), rel=1e-9)
+    assert np.diff(eta) == pytest.approx(np.full(63, (eta[-1] - eta[0]) / 63), rel=1e-9)
+
+
+# --- column water above a surface, interpolation in ln p ------------------------------------
+
+def test_value_at_pressure_is_linear_in_ln_p():
+    p = np.array([1100.0, 1000.0, 800.0, 500.0])
+    v = 3.0 + 2.0 * np.log(p)  # linear in ln p: exact anywhere
+    for target in (1100.0, 1013.25, 900.0, 500.0, 640.0):
+        assert atm.value_at_pressure(p, v, target) == pytest.approx(3.0 + 2.0 * np.log(target), rel=1e-12)
+    # either level order, a batch
+    assert atm.value_at_pressure(p[::-1], v[::-1], 900.0) == pytest.approx(3.0 + 2.0 * np.log(900.0))
+    batch = atm.value_at_pressure(p, np.stack([v, 2 * v]), np.array([900.0, 700.0]))
+    np.testing.assert_allclose(batch, [3 + 2 * np.log(900.0), 2 * (3 + 2 * np.log(700.0))], rtol=1e-12)
+
+
+def test_column_water_above_a_surface():
+    # A constant q: the column is q (ps - p_top) 100 / g exactly (hydrostatic mass).
+    p = np.linspace(1100.0, 100.0, 41)
+    q = np.full(41, 0.004)
+    for ps in (1100.0, 1013.25, 612.5):
+        expected = 0.004 * (ps - 100.0) * 100.0 / STANDARD_GRAVITY
+        assert atm.total_column_water_vapour(p, q, ps) == pytest.approx(expected, rel=1e-12)
+    # the levels below the surface do not count, whatever they hold
+    q2 = q.copy()
+    q2[p > 950.0] = 0.05
+    assert atm.total_column_water_vapour(p, q2, 900.0) == pytest.approx(
+        atm.total_column_water_vapour(p, q, 900.0), rel=1e-12)
+    # ps at the bottom: the whole column
+    assert atm.total_column_water_vapour(p, q2, 1100.0) == pytest.approx(atm.total_column_water_vapour(p, q2))
+    with pytest.raises(ValueError, match="surface_pressure_hpa"):
+        atm.total_column_water_vapour(p, q, 1200.0)
+
+
+# --- saturated ascent ------------------------------------------------------------------------
+
+def test_pseudo_adiabatic_gradient_limits_and_textbook_values():
+    # Dry limit: with no vapour the gradient is R_d T / c_pd (Poisson); at 150 K and
+    # 1000 hPa e_s is 6e-6 hPa, so the moist terms vanish to 1e-6.
+    t = 150.0
+    assert atm.pseudo_adiabatic_gradient(t, 1000.0) == pytest.approx(287.05 * t / 1005.7, rel=1e-6)
+    # Saturated lapse rates at 1000 hPa (textbook tables, e.g. Wallace & Hobbs 2006 fig. 3.x /
+    # Smithsonian Meteorological Tables; values from memory): about 6.4 K/km at 0 degC,
+    # 5.3 at 10 degC, 4.3 at 20 degC, 3.6 at 30 degC. Converted with dz = R_d T / g d ln p.
+    for celsius, expected in ((0.0, 6.4), (10.0, 5.3), (20.0, 4.3), (30.0, 3.6)):
+        tk = 273.15 + celsius
+        per_km = atm.pseudo_adiabatic_gradient(tk, 1000.0) * STANDARD_GRAVITY / (287.05 * tk) * 1e3
+        assert per_km == pytest.approx(expected, abs=0.15), celsius
+    # scalar, profile and batch shapes
+    assert np.ndim(atm.pseudo_adiabatic_gradient(280.0, 900.0)) == 0
+    assert atm.pseudo_adiabatic_gradient(np.full((3, 4), 280.0), np.full(4, 900.0)).shape == (3, 4)
+
+
+def test_pseudo_adiabat_against_scipy_solve_ivp():
+    # An independent integration of the same equation (scipy.integrate.solve_ivp, RK45 at
+    # rtol 1e-10) from 1000 hPa up to 100 hPa: the fixed-step RK4 agrees to 1e-3 K.
+    from scipy.integrate import solve_ivp
+
+    targets = np.array([1000.0, 850.0, 700.0, 500.0, 300.0, 200.0, 100.0])
+    for t0 in (275.0, 290.0, 300.0, 305.0):
+        ivp = solve_ivp(lambda x, y: atm.pseudo_adiabatic_gradient(y, np.exp(x)), (np.log(1000.0), np.log(100.0)),
+                        [t0], t_eval=np.log(targets), rtol=1e-10, atol=1e-8)
+        ours = atm.pseudo_adiabat(t0, 1000.0, targets)
+        np.testing.assert_allclose(ours, ivp.y[0], atol=1e-3)
+    # batch of parcels, each with its own start
+    batch = atm.pseudo_adiabat(np.array([290.0, 300.0]), np.array([1000.0, 950.0]), targets)
+    assert batch.shape == (2, targets.size)
+    assert batch[1, 0] > 300.0  # going down from 950 to 1000 hPa warms
+
+
+def _bolton_theta_e(t, p, r):
+    """Pseudo-equivalent potential temperature, Bolton (1980) eq. 43, for saturated air
+    (T_L = T); r mixing ratio [g kg-1], p [hPa], T [K]."""
+    return (t * (1000.0 / p) ** (0.2854 * (1 - 0.28e-3 * r))
+            * np.exp((3.376 / t - 0.00254) * r * (1 + 0.81e-3 * r)))
+
+
+def test_pseudo_adiabat_conserves_bolton_theta_e():
+    # Bolton's eq. 43 is an independent empirical fit to pseudo-adiabats (stated accuracy
+    # about 0.3 K in theta_e, from memory). Along our pseudo-adiabat from 1000 to 200 hPa it
+    # changes by less than 0.6 K (measured: 0.07, 0.09, 0.34 K at 280, 295, 303 K); our
+    # equation neglects the vapour's heat capacity, which Bolton's pseudo-adiabats include.
+    targets = np.array([1000.0, 900.0, 800.0, 700.0, 600.0, 500.0, 400.0, 300.0, 200.0])
+    for t0 in (280.0, 295.0, 303.0):
+        t = atm.pseudo_adiabat(t0, 1000.0, targets)
+        es = atm.saturation_vapour_pressure(t)
+        r = 1000.0 * EPSILON * es / (targets - es)
+        theta_e = _bolton_theta_e(t, targets, r)
+        assert np.ptp(theta_e) < 0.6, (t0, theta_e)
+
+
+def test_lifting_condensation_level_saturates_the_parcel():
+    # Lifted dry-adiabatically with its mixing ratio kept, the parcel's vapour pressure
+    # falls with p; at the LCL it must equal e_s(T_L). Bolton's eq. 21 is a fit (0.1 K,
+    # from memory): e_s(T_L) matches the carried vapour pressure to 0.5 %.
+    p0 = 1000.0
+    for t0, rh in ((300.0, 0.8), (290.0, 0.5), (275.0, 0.3), (310.0, 0.2)):
+        q = atm.specific_humidity_from_relative_humidity(rh, t0, p0)
+        t_l, p_l = atm.lifting_condensation_level(t0, q, p0)
+        e_carried = atm.vapour_pressure(q, p_l)
+        assert atm.saturation_vapour_pressure(t_l) == pytest.approx(e_carried, rel=5e-3)
+        # Poisson: the parcel kept its potential temperature
+        assert t_l * (1000.0 / p_l) ** (287.05 / 1005.7) == pytest.approx(t0, rel=1e-12)
+    # a saturated parcel is at its LCL
+    q = atm.saturation_specific_humidity(295.0, 950.0)
+    t_l, p_l = atm.lifting_condensation_level(295.0, q, 950.0)
+    assert t_l == pytest.approx(295.0, abs=0.2) and p_l == pytest.approx(950.0, rel=3e-3)
+
+
+def test_parcel_temperature_dry_then_moist():
+    q = atm.specific_humidity_from_relative_humidity(0.6, 300.0, 1000.0)
+    t_l, p_l = atm.lifting_condensation_level(300.0, q, 1000.0)
+    targets = np.array([1000.0, 0.5 * (1000.0 + p_l), 700.0, 500.0])
+    t = atm.parcel_temperature(300.0, q, 1000.0, targets)
+    assert t[0] == pytest.approx(300.0)
+    assert t[1] == pytest.approx(300.0 * (targets[1] / 1000.0) ** (287.05 / 1005.7), rel=1e-12)  # dry adiabat
+    np.testing.assert_allclose(t[2:], atm.pseudo_adiabat(t_l, p_l, targets[2:]), rtol=1e-12)
 
 
 # --- lapse-rate tropopause ---------------------------------------------------------------------

@@ -461,26 +461,35 @@ def test_flags_on_crafted_inputs(trained):
 
 
 def test_novelty_flag_off_subspace_within_bounds(trained):
-    """A level-to-level zigzag of +-4 K on training profiles, kept only where it stays
-    inside every per-level range, leaves the PCA subspace: novel_state, not bounds."""
+    """A level-to-level zigzag of +-5 K on training profiles, kept only where it stays
+    inside every per-level range, leaves the PCA subspace: novel_state, not bounds.
+
+    +-5 K since generator v5: its regimes and terrain (ground at 500-1060 hPa, boundary-layer
+    kinks anywhere in the lower troposphere) widen the training states' own off-subspace
+    residuals. Measured on this 1,200-profile set (constant_opacity bundle): +-5 K flags
+    all 99 in-range rows, +-4 K 81 % of 201 (generator v4: all at +-4 K); docs/decisions.md."""
     from rtemu.training import humidity_index
 
     data = trained["data"]
     b = read_bundle(trained["path"])
     env = {k: (np.asarray(v["lower"], float), np.asarray(v["upper"], float)) for k, v in b.envelope.items()}
-    zig = np.where(np.arange(data.pressure_hpa.size) % 2 == 0, 4.0, -4.0)
-    T = data.air_temperature + zig
-    h = humidity_index(T, data.specific_humidity, data.pressure_hpa)
-    contrast = data.surface_temperature - T[:, 0]
-    inside = ((T >= env["air_temperature"][0]) & (T <= env["air_temperature"][1])).all(axis=1)
-    inside &= ((h >= env["humidity_index"][0]) & (h <= env["humidity_index"][1])).all(axis=1)
-    inside &= (contrast >= env["skin_minus_air_temperature"][0]) & (contrast <= env["skin_minus_air_temperature"][1])
-    rows = np.flatnonzero(inside)[:20]
-    assert rows.size >= 5
-    feeds = _feeds(data, rows, _columns(trained))
-    feeds["air_temperature"] = T[rows].astype(np.float32)
-    flag = _run(make_session(trained["path"]), feeds, ["quality_flag"])["quality_flag"]
-    assert np.all(flag == flags.NOVEL_STATE)
+
+    def zigzag_flags(amplitude, limit):
+        zig = np.where(np.arange(data.pressure_hpa.size) % 2 == 0, amplitude, -amplitude)
+        T = data.air_temperature + zig
+        h = humidity_index(T, data.specific_humidity, data.pressure_hpa)
+        contrast = data.surface_temperature - T[:, 0]
+        inside = ((T >= env["air_temperature"][0]) & (T <= env["air_temperature"][1])).all(axis=1)
+        inside &= ((h >= env["humidity_index"][0]) & (h <= env["humidity_index"][1])).all(axis=1)
+        inside &= (contrast >= env["skin_minus_air_temperature"][0]) & (contrast <= env["skin_minus_air_temperature"][1])
+        rows = np.flatnonzero(inside)[:limit]
+        assert rows.size >= 5
+        feeds = _feeds(data, rows, _columns(trained))
+        feeds["air_temperature"] = T[rows].astype(np.float32)
+        return _run(make_session(trained["path"]), feeds, ["quality_flag"])["quality_flag"]
+
+    assert np.all(zigzag_flags(5.0, 40) == flags.NOVEL_STATE)
+    assert np.mean((zigzag_flags(4.0, 200) == flags.NOVEL_STATE).all(axis=1)) > 0.75
 
 
 def test_tropopause_ranges_cover_every_training_state(trained):
@@ -571,5 +580,7 @@ def test_flags_catch_supersaturation_and_skin_contrast(trained):
     wet["specific_humidity"] = q.astype(np.float32)
     assert np.all(_run(session, wet, ["quality_flag"])["quality_flag"] & flags.OUTSIDE_TRAINING_BOUNDS)
     hot = dict(feeds)
-    hot["surface_temperature"] = (data.air_temperature[rows, 0] + 25.0).astype(np.float32)
+    # 40 K: generator v5 draws hot-desert ground up to 25 K above the air (25.8 K measured,
+    # docs/generator.md), so 25 K is no longer far from the training states
+    hot["surface_temperature"] = (data.air_temperature[rows, 0] + 40.0).astype(np.float32)
     assert np.all(_run(session, hot, ["quality_flag"])["quality_flag"] & flags.OUTSIDE_TRAINING_BOUNDS)
