@@ -249,9 +249,8 @@ def test_no_channels():
     check_error("channels = []\n" + head, "at least one [[channels]]")
 
 
-@pytest.mark.parametrize("bands", ["bands = []", ""])
-def test_no_bands(bands):
-    check_error(with_alpha_bands(bands), "channel 'alpha'", "'bands'", "non-empty list")
+def test_empty_bands_list():
+    check_error(with_alpha_bands("bands = []"), "channel 'alpha'", "'bands'", "non-empty list")
 
 
 def test_missing_channel_id():
