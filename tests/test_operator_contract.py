@@ -16,6 +16,7 @@ import numpy as np
 import pytest
 import xarray as xr
 
+import physics_instruments
 from rtemu import flags
 from rtemu.runtime import PhysicalOperator
 
@@ -36,15 +37,33 @@ class Case:
     adjoint_rel_tol: float
 
 
-def _physical_case(small_profiles):
-    ds = small_profiles(n=6, nlev=40, seed=3)
-    return Case(PhysicalOperator("demo-sounder"), ds, 1e-6, 3.5, 1e-10)
+def _physical_case(small_profiles, instrument="demo-sounder"):
+    ds = small_profiles(n=6, nlev=40, seed=3, instrument=instrument)
+    return Case(PhysicalOperator(instrument), ds, 1e-6, 3.5, 1e-10)
 
 
-@pytest.fixture(params=["physical", "emulated"])
+#: The physics over small INVENTED instruments of each kind of sub-band (tests/physics_instruments.py):
+#: per-band power laws; (ln p, T) tables from a file written by the test; sidebands over
+#: default-law, per-band-law and table bands in one channel.
+_BAND_INSTRUMENTS = {
+    "physical-per-band-laws": physics_instruments.law_instrument,
+    "physical-tables": physics_instruments.table_instrument,
+    "physical-sidebands": physics_instruments.sideband_instrument,
+}
+
+
+@pytest.fixture(scope="module")
+def band_instruments(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("band-instruments")
+    return {name: build(folder) for name, build in _BAND_INSTRUMENTS.items()}
+
+
+@pytest.fixture(params=["physical", "emulated", *_BAND_INSTRUMENTS])
 def operator_case(request, small_profiles):
     if request.param == "physical":
         return _physical_case(small_profiles)
+    if request.param in _BAND_INSTRUMENTS:
+        return _physical_case(small_profiles, request.getfixturevalue("band_instruments")[request.param])
     emulated = request.getfixturevalue("emulated_case")
     return emulated
 
