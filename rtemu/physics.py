@@ -317,9 +317,10 @@ def interpolate_ln_k(ln_k, cell):
     corner = ip * n_temp + it
     v00, v01 = flat[:, corner], flat[:, corner + 1]
     v10, v11 = flat[:, corner + n_temp], flat[:, corner + n_temp + 1]
+    # Written as weights (1 - f, f) so that a grid node returns its table value exactly.
+    value = (1.0 - fp) * ((1.0 - ft) * v00 + ft * v01) + fp * ((1.0 - ft) * v10 + ft * v11)
     low = v01 - v00  # along T at the lower pressure
     high = v11 - v10
-    value = (1.0 - fp) * (v00 + ft * low) + fp * (v10 + ft * high)
     low *= 1.0 - fp
     high *= fp
     low += high
