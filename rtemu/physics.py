@@ -91,6 +91,17 @@ class _Bands:
         self.law = np.flatnonzero((table < 0) & own)
         self.table = np.flatnonzero(table >= 0)
         self.table_index = table[self.table]
+        # Per absorber used by any table band: (index, tables [NP * NTEMP, G], mask [G]).
+        self.table_rows = []
+        tables = instrument.absorption_tables
+        if self.table.size:
+            self.table_n_temp = tables.temperature_k.size
+            for a in range(3):
+                mask = tables.mask[self.table_index, a]
+                if mask.any():
+                    ln_k = tables.ln_k[self.table_index, a]  # [G, NP, NTEMP]
+                    rows = np.ascontiguousarray(ln_k.reshape(len(self.table_index), -1).T)
+                    self.table_rows.append((a, rows, mask.astype(float)))
 
         self.a, self.b = planck_coefficients_of(chans)  # [C], channel positions (eq. 6)
         # Planck positions of the bands (eq. 5): the channel's unless a band has its own.
@@ -107,6 +118,13 @@ class _Bands:
         # Channel sum as a matrix: R_c = sum_b W[c, b] R_b.
         self.band_to_channel = np.zeros((self.n_channels, self.n_bands))
         self.band_to_channel[self.band_channel, np.arange(self.n_bands)] = self.weight
+        # A channel's bands are contiguous: the sum is a segment sum (the matrix is sparse).
+        self.band_start = np.searchsorted(self.band_channel, np.arange(self.n_channels))
+
+    def channel_sum(self, x):
+        """sum_b w_b x[:, b] per channel (eq. 6) of x [N, B, ...]; overwrites x."""
+        x *= self.weight.reshape((1, -1) + (1,) * (x.ndim - 2))
+        return np.add.reduceat(x, self.band_start, axis=1)
 
     def block_size(self, requested: int, n_layers: int) -> int:
         """Profiles per block: ``requested``, fewer if the work arrays would pass WORK_BYTES."""
@@ -193,9 +211,10 @@ def _optical_depths(bands: _Bands, p, t, q, inv_mu, jacobian):
                 coefficients = _law_coefficients(bands, group, inst, pm, tm)
             else:
                 coefficients = _table_coefficients(bands, tm, pm)
-            parts = _coefficient_depths(coefficients, paths, d_dq, jacobian, group.size)
+            parts = _coefficient_depths(coefficients, paths, d_dq, jacobian, group.size,
+                                        bands_last=group is bands.table)
         if whole:
-            tau, dtau_dtm, dtau_dqm = parts
+            tau, dtau_dtm, dtau_dqm = (None if x is None else np.ascontiguousarray(x) for x in parts)
             break
         tau[:, group] = parts[0]
         if jacobian:
@@ -219,29 +238,33 @@ def _default_depths(bands, group, inst, p, t, q, jacobian):
     return tau, np.matmul(k, d_dt.transpose(1, 0, 2)), np.matmul(k, d_dq.transpose(1, 0, 2))
 
 
-def _coefficient_depths(coefficients, paths, d_dq, jacobian, n_group):
+def _coefficient_depths(coefficients, paths, d_dq, jacobian, n_group, bands_last=False):
     """Nadir depths sum_a k_a(p, T) path_a (eq. 3) from per-band coefficients.
 
-    ``coefficients`` yields (absorber index, k [N, G, L-1] [m2 kg-1], d ln k / dT [K-1]).
+    ``coefficients`` yields (absorber index, k [N, G, L-1] [m2 kg-1], d ln k / dT [K-1]);
+    with ``bands_last`` the arrays are [N, L-1, G] (returned as [N, G, L-1] views).
     """
+    spread = (slice(None), slice(None), None) if bands_last else (slice(None), None, slice(None))
     tau = dtm = dqm = None
     for a, k, dlnk_dt in coefficients:
-        term = k * paths[a][:, None, :]
+        term = k * paths[a][spread]
         if tau is None:
             tau = term
             if jacobian:
                 dtm = term * dlnk_dt
-                dqm = k * d_dq[a][:, None, :]
+                dqm = k * d_dq[a][spread]
             continue
         tau += term
         if jacobian:
             term *= dlnk_dt
             dtm += term
-            k *= d_dq[a][:, None, :]
+            k *= d_dq[a][spread]
             dqm += k
     if tau is None:  # no absorber in any band of the group
         zeros = np.zeros((paths.shape[1], n_group, paths.shape[2]))
         return zeros, zeros, zeros
+    if bands_last:
+        return tuple(None if x is None else x.transpose(0, 2, 1) for x in (tau, dtm, dqm))
     return tau, dtm, dqm
 
 
@@ -311,36 +334,46 @@ def interpolate_ln_k(ln_k, cell):
     d_ln_k_dt : ndarray [G, *S]
         [K-1]
     """
+    rows = np.ascontiguousarray(ln_k.reshape(ln_k.shape[0], -1).T)
+    value, slope = _interpolate_rows(rows, ln_k.shape[2], cell)
+    return np.moveaxis(value, -1, 0), np.moveaxis(slope, -1, 0)
+
+
+def _interpolate_rows(rows, n_temp, cell):
+    """:func:`interpolate_ln_k` on tables laid out [NP * NTEMP, G]; results [*S, G].
+
+    Each corner is then a contiguous row of G values: a gather of rows, not of scalars.
+    """
     ip, it, fp, ft, dt = cell
-    n_temp = ln_k.shape[2]
-    flat = ln_k.reshape(ln_k.shape[0], -1)
     corner = ip * n_temp + it
-    v00, v01 = flat[:, corner], flat[:, corner + 1]
-    v10, v11 = flat[:, corner + n_temp], flat[:, corner + n_temp + 1]
-    # Written as weights (1 - f, f) so that a grid node returns its table value exactly.
-    value = (1.0 - fp) * ((1.0 - ft) * v00 + ft * v01) + fp * ((1.0 - ft) * v10 + ft * v11)
-    low = v01 - v00  # along T at the lower pressure
-    high = v11 - v10
-    low *= 1.0 - fp
-    high *= fp
-    low += high
-    low /= dt
-    return value, low
+    v00, v01 = rows[corner], rows[corner + 1]
+    v10, v11 = rows[corner + n_temp], rows[corner + n_temp + 1]
+    fp, ft = fp[..., None], ft[..., None]
+    # Weights (1 - f) and f: a grid node returns its table value exactly.
+    value = v00 * ((1.0 - fp) * (1.0 - ft))
+    value += v01 * ((1.0 - fp) * ft)
+    value += v10 * (fp * (1.0 - ft))
+    value += v11 * (fp * ft)
+    v01 -= v00  # along T at the lower pressure
+    v11 -= v10
+    v01 *= (1.0 - fp) / dt[..., None]
+    v11 *= fp / dt[..., None]
+    v01 += v11
+    return value, v01
 
 
 def _table_coefficients(bands, tm, pm):
-    """k_a(p, T) = exp(ln k interpolated) per table band (eq. 3) and d ln k / dT."""
-    tables = bands.instrument.absorption_tables
-    cell = table_interpolation(tables, pm, tm)
-    index = bands.table_index
-    mask = tables.mask[index]  # [G, 3]
-    for a in range(3):
-        if not mask[:, a].any():
-            continue
-        ln_k, d_ln_k = interpolate_ln_k(tables.ln_k[index, a], cell)  # [G, N, L-1]
-        k = np.exp(ln_k)
-        k *= mask[:, a][:, None, None]
-        yield a, np.ascontiguousarray(k.transpose(1, 0, 2)), np.ascontiguousarray(d_ln_k.transpose(1, 0, 2))
+    """k_a(p, T) = exp(ln k interpolated) per table band (eq. 3) and d ln k / dT.
+
+    Arrays [N, L-1, G] (bands last).
+    """
+    cell = table_interpolation(bands.instrument.absorption_tables, pm, tm)
+    for a, rows, mask in bands.table_rows:
+        ln_k, d_ln_k = _interpolate_rows(rows, bands.table_n_temp, cell)
+        k = np.exp(ln_k, out=ln_k)
+        if not mask.all():
+            k *= mask
+        yield a, k, d_ln_k
 
 
 def transfer(
@@ -440,7 +473,7 @@ def _transfer_block(tables: _Bands, p, t, q, ts, em, zen, jacobian):
     downwelling = np.sum(dn_contrib, axis=2, keepdims=True)
     reflected = downwelling + cosmic * total
     radiance_b = e_b * planck_sfc * total + upwelling + (1.0 - e_b) * total * reflected  # eq. 5
-    radiance = np.einsum("cb,nb->nc", tables.band_to_channel, radiance_b[:, :, 0])  # eq. 6
+    radiance = tables.channel_sum(radiance_b[:, :, 0])  # eq. 6
     bt = inverse_planck(tables.a[None, :], tables.b[None, :], radiance)
     result = {"brightness_temperature": bt}
     if not jacobian:
@@ -480,8 +513,8 @@ def _transfer_block(tables: _Bands, p, t, q, ts, em, zen, jacobian):
     dr_dqm *= dr_dtau
 
     # Sum sub-bands into channels, then spread layer derivatives onto the two levels.
-    def to_channels(x):  # dBT_c = dBT/dR_c * sum_b w_b dR_b
-        out = np.matmul(tables.band_to_channel, x)
+    def to_channels(x):  # dBT_c = dBT/dR_c * sum_b w_b dR_b; consumes x
+        out = tables.channel_sum(x)
         out *= dbt_drad[:, :, None]
         return out
 
