@@ -14,13 +14,19 @@ and j+1, with g = 9.80665 m s-2, epsilon = 0.622, T_cosmic = 2.725 K, mu = cos(z
   d_bj = k_dry (p_j/p_ref)^n_dry (T_ref/T_j)^m_dry dd_j
        + k_h2o (p_j/p_ref)^n_h2o (T_ref/T_j)^m_h2o dw_j
        + k_cont (e_j/p_ref) (T_ref/T_j)^m_cont dw_j ;  slant depth d_bj / mu;
+  the exponents are the instrument's ``[absorbers.*]`` laws or the band's own; a table
+  band replaces each k (law) by exp(ln k(ln p_j, T_j)), bilinear in (ln p, T) of its table
+  (ln p clamped to the table, T extrapolated linearly);
 * t_i = exp(-sum_{j>=i} d_bj/mu) (level to space), s_i = exp(-sum_{j<i} d_bj/mu)
   (surface to level);                                                            (eq. 4)
-* R_b = e B(T_s) t_0 + sum_j B(T_j)(t_j+1 - t_j)
-        + (1 - e) t_0 [sum_j B(T_j)(s_j - s_j+1) + B(T_cosmic) s_L-1];            (eq. 5)
-* R = sum_b w_b R_b; brightness temperature = B^-1(R).                           (eq. 6)
+* R_b = e B_b(T_s) t_0 + sum_j B_b(T_j)(t_j+1 - t_j)
+        + (1 - e) t_0 [sum_j B_b(T_j)(s_j - s_j+1) + B_b(T_cosmic) s_L-1],         (eq. 5)
+  B_b the Planck function at the band's position (its own, e.g. a sideband, else its
+  channel's);
+* R = sum_b w_b R_b; brightness temperature = B^-1(R) at the channel's position.   (eq. 6)
 
-Jacobians are the exact derivatives of this discrete model, in the same pass.
+Jacobians are the exact derivatives of this discrete model, in the same pass (for table
+bands through d ln k / dT of the interpolation).
 
 References
 ----------
@@ -208,9 +214,9 @@ def _optical_depths(bands: _Bands, p, t, q, inv_mu, jacobian):
             parts = _default_depths(bands, group, inst, p, t, q, jacobian)
         else:
             if group is bands.law:
-                coefficients = _law_coefficients(bands, group, inst, pm, tm)
+                coefficients = _law_coefficients(bands, group, inst, pm, tm, jacobian)
             else:
-                coefficients = _table_coefficients(bands, tm, pm)
+                coefficients = _table_coefficients(bands, tm, pm, jacobian)
             parts = _coefficient_depths(coefficients, paths, d_dq, jacobian, group.size,
                                         bands_last=group is bands.table)
         if whole:
@@ -268,8 +274,9 @@ def _coefficient_depths(coefficients, paths, d_dq, jacobian, n_group, bands_last
     return tau, dtm, dqm
 
 
-def _law_coefficients(bands, group, inst, pm, tm):
-    """k_a (p/p_ref)^n (T_ref/T)^m per band of ``group`` (eq. 3) and d ln k / dT = -m / T."""
+def _law_coefficients(bands, group, inst, pm, tm, jacobian):
+    """k_a (p/p_ref)^n (T_ref/T)^m per band of ``group`` (eq. 3) and d ln k / dT = -m / T
+    (None without ``jacobian``)."""
     ln_p = np.log(pm / inst.reference_pressure_hpa)[:, None, :]  # [N, 1, L-1]
     ln_t = np.log(inst.reference_temperature_k / tm)[:, None, :]
     laws = bands.laws[group]
@@ -281,7 +288,7 @@ def _law_coefficients(bands, group, inst, pm, tm):
             continue
         k_pt = np.exp(n_law[a][None, :, None] * ln_p + m_law[a][None, :, None] * ln_t)
         k_pt *= k[None, :, None]
-        yield a, k_pt, -m_law[a][None, :, None] / tm[:, None, :]
+        yield a, k_pt, -m_law[a][None, :, None] / tm[:, None, :] if jacobian else None
 
 
 def table_interpolation(tables, pressure_hpa, temperature_k):
@@ -339,10 +346,11 @@ def interpolate_ln_k(ln_k, cell):
     return np.moveaxis(value, -1, 0), np.moveaxis(slope, -1, 0)
 
 
-def _interpolate_rows(rows, n_temp, cell):
+def _interpolate_rows(rows, n_temp, cell, slope=True):
     """:func:`interpolate_ln_k` on tables laid out [NP * NTEMP, G]; results [*S, G].
 
     Each corner is then a contiguous row of G values: a gather of rows, not of scalars.
+    Without ``slope`` the T-derivative is None.
     """
     ip, it, fp, ft, dt = cell
     corner = ip * n_temp + it
@@ -354,6 +362,8 @@ def _interpolate_rows(rows, n_temp, cell):
     value += v01 * ((1.0 - fp) * ft)
     value += v10 * (fp * (1.0 - ft))
     value += v11 * (fp * ft)
+    if not slope:
+        return value, None
     v01 -= v00  # along T at the lower pressure
     v11 -= v10
     v01 *= (1.0 - fp) / dt[..., None]
@@ -362,14 +372,14 @@ def _interpolate_rows(rows, n_temp, cell):
     return value, v01
 
 
-def _table_coefficients(bands, tm, pm):
+def _table_coefficients(bands, tm, pm, jacobian):
     """k_a(p, T) = exp(ln k interpolated) per table band (eq. 3) and d ln k / dT.
 
     Arrays [N, L-1, G] (bands last).
     """
     cell = table_interpolation(bands.instrument.absorption_tables, pm, tm)
     for a, rows, mask in bands.table_rows:
-        ln_k, d_ln_k = _interpolate_rows(rows, bands.table_n_temp, cell)
+        ln_k, d_ln_k = _interpolate_rows(rows, bands.table_n_temp, cell, slope=jacobian)
         k = np.exp(ln_k, out=ln_k)
         if not mask.all():
             k *= mask
