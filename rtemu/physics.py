@@ -109,11 +109,12 @@ class _Bands:
                     rows = np.ascontiguousarray(ln_k.reshape(len(self.table_index), -1).T)
                     self.table_rows.append((a, rows, mask.astype(float)))
 
-        self.a, self.b = planck_coefficients_of(chans)  # [C], channel positions (eq. 6)
+        self.a, self.b = _channel_planck_coefficients(chans)  # [C], channel positions (eq. 6)
         # Planck positions of the bands (eq. 5): the channel's unless a band has its own.
         positions = [(ch.is_microwave, _band_position(ch, band)) for _, ch, band in flat]
         unique = sorted(set(positions))
-        self.band_position = np.array([unique.index(pos) for pos in positions])  # [B]
+        number = {pos: i for i, pos in enumerate(unique)}
+        self.band_position = np.array([number[pos] for pos in positions])  # [B]
         self.pos_a = np.empty(len(unique))
         self.pos_b = np.empty(len(unique))
         for i, (microwave, value) in enumerate(unique):
@@ -138,7 +139,7 @@ class _Bands:
         return max(1, min(int(requested), WORK_BYTES // per_profile))
 
 
-def planck_coefficients_of(channels):
+def _channel_planck_coefficients(channels):
     """Planck constants (a, b) at each channel's position [radiance units], [K]; arrays [C]."""
     a = np.empty(len(channels))
     b = np.empty(len(channels))
