@@ -12,7 +12,7 @@ import importlib
 __version__ = "0.1.0"
 
 from rtemu import flags, physics
-from rtemu.instrument import Band, Channel, Instrument, list_instruments, load_instrument
+from rtemu.instrument import AbsorptionTables, Band, Channel, Instrument, list_instruments, load_instrument
 
 _LAZY = {
     # sampling
@@ -44,6 +44,7 @@ _LAZY_MODULES = ("assim", "atmosphere", "levels", "sampling", "training", "bundl
 __all__ = [
     "__version__",
     # instruments and physics
+    "AbsorptionTables",
     "Band",
     "Channel",
     "Instrument",

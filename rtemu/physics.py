@@ -14,13 +14,19 @@ and j+1, with g = 9.80665 m s-2, epsilon = 0.622, T_cosmic = 2.725 K, mu = cos(z
   d_bj = k_dry (p_j/p_ref)^n_dry (T_ref/T_j)^m_dry dd_j
        + k_h2o (p_j/p_ref)^n_h2o (T_ref/T_j)^m_h2o dw_j
        + k_cont (e_j/p_ref) (T_ref/T_j)^m_cont dw_j ;  slant depth d_bj / mu;
+  the exponents are the instrument's ``[absorbers.*]`` laws or the band's own; a table
+  band replaces each k (law) by exp(ln k(ln p_j, T_j)), bilinear in (ln p, T) of its table
+  (ln p clamped to the table, T extrapolated linearly);
 * t_i = exp(-sum_{j>=i} d_bj/mu) (level to space), s_i = exp(-sum_{j<i} d_bj/mu)
   (surface to level);                                                            (eq. 4)
-* R_b = e B(T_s) t_0 + sum_j B(T_j)(t_j+1 - t_j)
-        + (1 - e) t_0 [sum_j B(T_j)(s_j - s_j+1) + B(T_cosmic) s_L-1];            (eq. 5)
-* R = sum_b w_b R_b; brightness temperature = B^-1(R).                           (eq. 6)
+* R_b = e B_b(T_s) t_0 + sum_j B_b(T_j)(t_j+1 - t_j)
+        + (1 - e) t_0 [sum_j B_b(T_j)(s_j - s_j+1) + B_b(T_cosmic) s_L-1],         (eq. 5)
+  B_b the Planck function at the band's position (its own, e.g. a sideband, else its
+  channel's);
+* R = sum_b w_b R_b; brightness temperature = B^-1(R) at the channel's position.   (eq. 6)
 
-Jacobians are the exact derivatives of this discrete model, in the same pass.
+Jacobians are the exact derivatives of this discrete model, in the same pass (for table
+bands through d ln k / dT of the interpolation).
 
 References
 ----------
@@ -44,9 +50,14 @@ from rtemu.constants import COSMIC_BACKGROUND_TEMPERATURE, EPSILON, STANDARD_GRA
 from rtemu.instrument import Instrument, load_instrument
 from rtemu.planck import inverse_planck, planck, planck_coefficients, planck_derivative
 
-#: Profiles processed per vectorised block; bounds memory at about
-#: block * bands * levels * 8 bytes per work array.
+#: Profiles per vectorised block, at most; fewer when the bands and levels are many (see
+#: WORK_BYTES).
 DEFAULT_BLOCK_SIZE = 512
+
+#: Memory budget of one block's work arrays [bytes]: a block holds about
+#: _WORK_ARRAYS arrays of profiles x sub-bands x layers float64 values.
+WORK_BYTES = 256 * 2**20
+_WORK_ARRAYS = 24
 
 JACOBIAN_NAMES = (
     "jacobian_air_temperature",
@@ -56,71 +67,325 @@ JACOBIAN_NAMES = (
 )
 
 
-class _Tables:
-    """Per-instrument constant arrays (bands flattened over channels)."""
+class _Bands:
+    """Per-instrument constant arrays (bands flattened over channels).
+
+    Bands fall in three groups by how their absorption is computed: ``default`` (the
+    instrument's ``[absorbers.*]`` laws: one path per absorber for all of them, one matrix
+    product), ``law`` (their own power laws) and ``table`` ((ln p, T) tables).
+    """
 
     def __init__(self, instrument: Instrument):
+        missing = instrument.channels_without_bands
+        if missing:
+            raise ValueError(
+                f"instrument {instrument.name!r}: channel(s) {list(missing)} have no 'bands' (rule: rtemu's "
+                "physics computes only channels made of sub-bands; a band-less channel describes "
+                "another model's instrument)"
+            )
         self.instrument = instrument
         chans = instrument.channels
         self.n_channels = len(chans)
-        band_channel, weight, k = [], [], []
-        for c, ch in enumerate(chans):
-            for band in ch.bands:
-                band_channel.append(c)
-                weight.append(band.weight)
-                k.append((band.dry, band.h2o, band.continuum))
-        self.band_channel = np.array(band_channel)  # [B]
-        self.weight = np.array(weight)  # [B]
-        self.k = np.array(k)  # [B, 3] [m2 kg-1]
-        a = np.empty(self.n_channels)
-        b = np.empty(self.n_channels)
-        for c, ch in enumerate(chans):
-            a[c], b[c] = planck_coefficients(
-                frequency_ghz=ch.frequency_ghz, wavenumber_cm1=ch.wavenumber_cm1
+        flat = [(c, ch, band) for c, ch in enumerate(chans) for band in ch.bands]
+        self.n_bands = len(flat)
+        self.band_channel = np.array([c for c, _, _ in flat])  # [B]
+        self.weight = np.array([band.weight for _, _, band in flat])  # [B]
+        self.k = np.array([(band.dry, band.h2o, band.continuum) for _, _, band in flat])  # [B, 3] [m2 kg-1]
+        self.laws = np.array([band.laws(instrument) for _, _, band in flat])  # [B, 5] [1]
+        table = np.array([-1 if band.table is None else band.table for _, _, band in flat])
+        own = np.array([band.has_own_laws for _, _, band in flat], dtype=bool)
+        self.default = np.flatnonzero((table < 0) & ~own)
+        self.law = np.flatnonzero((table < 0) & own)
+        self.table = np.flatnonzero(table >= 0)
+        self.table_index = table[self.table]
+        # Per absorber used by any table band: (index, tables [NP * NTEMP, G], mask [G]).
+        self.table_rows = []
+        tables = instrument.absorption_tables
+        if self.table.size:
+            self.table_n_temp = tables.temperature_k.size
+            for a in range(3):
+                mask = tables.mask[self.table_index, a]
+                if mask.any():
+                    ln_k = tables.ln_k[self.table_index, a]  # [G, NP, NTEMP]
+                    rows = np.ascontiguousarray(ln_k.reshape(len(self.table_index), -1).T)
+                    self.table_rows.append((a, rows, mask.astype(float)))
+
+        self.a, self.b = _channel_planck_coefficients(chans)  # [C], channel positions (eq. 6)
+        # Planck positions of the bands (eq. 5): the channel's unless a band has its own.
+        positions = [(ch.is_microwave, _band_position(ch, band)) for _, ch, band in flat]
+        unique = sorted(set(positions))
+        number = {pos: i for i, pos in enumerate(unique)}
+        self.band_position = np.array([number[pos] for pos in positions])  # [B]
+        self.pos_a = np.empty(len(unique))
+        self.pos_b = np.empty(len(unique))
+        for i, (microwave, value) in enumerate(unique):
+            self.pos_a[i], self.pos_b[i] = planck_coefficients(
+                **({"frequency_ghz": value} if microwave else {"wavenumber_cm1": value})
             )
-        self.a, self.b = a, b  # [C]
+        self.cosmic = planck(self.pos_a, self.pos_b, COSMIC_BACKGROUND_TEMPERATURE)  # [P]
         # Channel sum as a matrix: R_c = sum_b W[c, b] R_b.
-        self.band_to_channel = np.zeros((self.n_channels, len(weight)))
-        self.band_to_channel[self.band_channel, np.arange(len(weight))] = self.weight
-        self.cosmic = planck(a, b, COSMIC_BACKGROUND_TEMPERATURE)  # [C]
+        self.band_to_channel = np.zeros((self.n_channels, self.n_bands))
+        self.band_to_channel[self.band_channel, np.arange(self.n_bands)] = self.weight
+        # A channel's bands are contiguous: the sum is a segment sum (the matrix is sparse).
+        self.band_start = np.searchsorted(self.band_channel, np.arange(self.n_channels))
+
+    def channel_sum(self, x):
+        """sum_b w_b x[:, b] per channel (eq. 6) of x [N, B, ...]; overwrites x."""
+        x *= self.weight.reshape((1, -1) + (1,) * (x.ndim - 2))
+        return np.add.reduceat(x, self.band_start, axis=1)
+
+    def block_size(self, requested: int, n_layers: int) -> int:
+        """Profiles per block: ``requested``, fewer if the work arrays would pass WORK_BYTES."""
+        per_profile = _WORK_ARRAYS * self.n_bands * max(1, n_layers) * 8
+        return max(1, min(int(requested), WORK_BYTES // per_profile))
 
 
-def _absorber_paths(inst: Instrument, p, t, q):
-    """Band-independent path factors D, W, Cn and their derivatives [kg m-2 ...].
+def _channel_planck_coefficients(channels):
+    """Planck constants (a, b) at each channel's position [radiance units], [K]; arrays [C]."""
+    a = np.empty(len(channels))
+    b = np.empty(len(channels))
+    for c, ch in enumerate(channels):
+        a[c], b[c] = planck_coefficients(frequency_ghz=ch.frequency_ghz, wavenumber_cm1=ch.wavenumber_cm1)
+    return a, b
 
-    Returns arrays [N, L-1]: the factor multiplying k_dry, k_h2o and k_cont in eq. 3, and
-    their partial derivatives with respect to the layer-mean temperature and humidity.
+
+def _band_position(channel, band) -> float:
+    """A band's Planck position [GHz] or [cm-1]: its own, else its channel's."""
+    if channel.is_microwave:
+        return channel.frequency_ghz if band.frequency_ghz is None else band.frequency_ghz
+    return channel.wavenumber_cm1 if band.wavenumber_cm1 is None else band.wavenumber_cm1
+
+
+def _layer_state(inst: Instrument, p, t, q):
+    """Layer means and band-independent mass paths (eqs. 1-2), arrays [N, L-1].
+
+    Returns tm [K], pm [hPa], dm [kg m-2], the law-free paths (dry dd, vapour dw,
+    continuum (e/p_ref) dw) [kg m-2] stacked as [3, N, L-1], and their derivatives with
+    respect to the layer-mean humidity [kg m-2 (kg kg-1)-1].
     """
     tm = 0.5 * (t[:, :-1] + t[:, 1:])  # eq. 1
     qm = 0.5 * (q[:, :-1] + q[:, 1:])
     pm = 0.5 * (p[:, :-1] + p[:, 1:])
     dm = (p[:, :-1] - p[:, 1:]) * 100.0 / STANDARD_GRAVITY  # eq. 2
+    p_ref = inst.reference_pressure_hpa
+    denom = EPSILON + (1.0 - EPSILON) * qm
+    vap = qm * pm / denom  # e_j [hPa]
+    dvap_dq = pm * EPSILON / denom**2
+    paths = np.stack([(1.0 - qm) * dm, qm * dm, (vap / p_ref) * qm * dm])
+    d_dq = np.stack([-dm, dm, (dvap_dq * qm + vap) / p_ref * dm])
+    return tm, pm, paths, d_dq
+
+
+def _absorber_paths(inst: Instrument, p, t, q):
+    """Path factors of the instrument's default laws and their derivatives [kg m-2 ...].
+
+    Returns tm [K] and arrays [3, N, L-1]: the factors multiplying k_dry, k_h2o and k_cont
+    in eq. 3 under the ``[absorbers.*]`` laws, and their partial derivatives with respect
+    to the layer-mean temperature and humidity.
+    """
+    tm, pm, paths, d_dq = _layer_state(inst, p, t, q)
     p_ref, t_ref = inst.reference_pressure_hpa, inst.reference_temperature_k
 
     def law(absorber):
         return (pm / p_ref) ** absorber.pressure_exponent * (t_ref / tm) ** absorber.temperature_exponent
 
-    f_dry, f_h2o = law(inst.dry), law(inst.h2o)
-    f_cont = (t_ref / tm) ** inst.continuum.temperature_exponent
-    denom = EPSILON + (1.0 - EPSILON) * qm
-    vap = qm * pm / denom  # e_j [hPa]
-    dvap_dq = pm * EPSILON / denom**2
+    factors = np.stack([law(inst.dry), law(inst.h2o), (t_ref / tm) ** inst.continuum.temperature_exponent])
+    exponents = np.array([inst.dry.temperature_exponent, inst.h2o.temperature_exponent,
+                          inst.continuum.temperature_exponent])[:, None, None]
+    paths = factors * paths
+    d_dt = -exponents * paths / tm
+    return tm, paths, d_dt, factors * d_dq
 
-    dry = f_dry * (1.0 - qm) * dm
-    h2o = f_h2o * qm * dm
-    cont = f_cont * (vap / p_ref) * qm * dm
-    paths = np.stack([dry, h2o, cont])  # [3, N, L-1]
-    d_dt = np.stack(
-        [
-            -inst.dry.temperature_exponent * dry / tm,
-            -inst.h2o.temperature_exponent * h2o / tm,
-            -inst.continuum.temperature_exponent * cont / tm,
-        ]
-    )
-    d_dq = np.stack(
-        [-f_dry * dm, f_h2o * dm, f_cont / p_ref * dm * (dvap_dq * qm + vap)]
-    )
-    return tm, paths, d_dt, d_dq
+
+def _optical_depths(bands: _Bands, p, t, q, inv_mu, jacobian):
+    """Slant optical depths of every band and layer (eq. 3), [N, B, L-1] [1].
+
+    Returns tm [K], tau, and with ``jacobian`` d tau / d tm [K-1] and d tau / d qm
+    [(kg kg-1)-1] (else None). A zero-thickness layer (dm = 0) has tau = 0 exactly.
+    """
+    inst = bands.instrument
+    tm, pm, paths, d_dq = _layer_state(inst, p, t, q)
+    shape = (tm.shape[0], bands.n_bands, tm.shape[1])
+    groups = [g for g in (bands.default, bands.law, bands.table) if g.size]
+    whole = len(groups) == 1
+    tau = None if whole else np.empty(shape)
+    dtau_dtm = None if whole or not jacobian else np.empty(shape)
+    dtau_dqm = None if whole or not jacobian else np.empty(shape)
+    for group in groups:
+        if group is bands.default:
+            parts = _default_depths(bands, group, inst, p, t, q, jacobian)
+        else:
+            if group is bands.law:
+                coefficients = _law_coefficients(bands, group, inst, pm, tm, jacobian)
+            else:
+                coefficients = _table_coefficients(bands, tm, pm, jacobian)
+            parts = _coefficient_depths(coefficients, paths, d_dq, jacobian, group.size,
+                                        bands_last=group is bands.table)
+        if whole:
+            tau, dtau_dtm, dtau_dqm = (None if x is None else np.ascontiguousarray(x) for x in parts)
+            break
+        tau[:, group] = parts[0]
+        if jacobian:
+            dtau_dtm[:, group] = parts[1]
+            dtau_dqm[:, group] = parts[2]
+    scale = inv_mu[:, :, None]  # [N, 1, 1]
+    tau *= scale
+    if jacobian:
+        dtau_dtm *= scale
+        dtau_dqm *= scale
+    return tm, tau, dtau_dtm, dtau_dqm
+
+
+def _default_depths(bands, group, inst, p, t, q, jacobian):
+    """Nadir depths of the default-law bands: k [G, 3] times the shared paths (matmul, BLAS)."""
+    _, law_paths, d_dt, d_dq = _absorber_paths(inst, p, t, q)
+    k = bands.k[group]
+    tau = np.matmul(k, law_paths.transpose(1, 0, 2))
+    if not jacobian:
+        return tau, None, None
+    return tau, np.matmul(k, d_dt.transpose(1, 0, 2)), np.matmul(k, d_dq.transpose(1, 0, 2))
+
+
+def _coefficient_depths(coefficients, paths, d_dq, jacobian, n_group, bands_last=False):
+    """Nadir depths sum_a k_a(p, T) path_a (eq. 3) from per-band coefficients.
+
+    ``coefficients`` yields (absorber index, k [N, G, L-1] [m2 kg-1], d ln k / dT [K-1]);
+    with ``bands_last`` the arrays are [N, L-1, G] (returned as [N, G, L-1] views).
+    """
+    spread = (slice(None), slice(None), None) if bands_last else (slice(None), None, slice(None))
+    tau = dtm = dqm = None
+    for a, k, dlnk_dt in coefficients:
+        term = k * paths[a][spread]
+        if tau is None:
+            tau = term
+            if jacobian:
+                dtm = term * dlnk_dt
+                dqm = k * d_dq[a][spread]
+            continue
+        tau += term
+        if jacobian:
+            term *= dlnk_dt
+            dtm += term
+            k *= d_dq[a][spread]
+            dqm += k
+    if tau is None:  # no absorber in any band of the group
+        zeros = np.zeros((paths.shape[1], n_group, paths.shape[2]))
+        return zeros, zeros, zeros
+    if bands_last:
+        return tuple(None if x is None else x.transpose(0, 2, 1) for x in (tau, dtm, dqm))
+    return tau, dtm, dqm
+
+
+def _law_coefficients(bands, group, inst, pm, tm, jacobian):
+    """k_a (p/p_ref)^n (T_ref/T)^m per band of ``group`` (eq. 3) and d ln k / dT = -m / T
+    (None without ``jacobian``)."""
+    ln_p = np.log(pm / inst.reference_pressure_hpa)[:, None, :]  # [N, 1, L-1]
+    ln_t = np.log(inst.reference_temperature_k / tm)[:, None, :]
+    laws = bands.laws[group]
+    n_law = (laws[:, 0], laws[:, 2], np.zeros(len(group)))  # the continuum has no pressure law
+    m_law = (laws[:, 1], laws[:, 3], laws[:, 4])
+    for a in range(3):
+        k = bands.k[group, a]
+        if not k.any():
+            continue
+        k_pt = np.exp(n_law[a][None, :, None] * ln_p + m_law[a][None, :, None] * ln_t)
+        k_pt *= k[None, :, None]
+        yield a, k_pt, -m_law[a][None, :, None] / tm[:, None, :] if jacobian else None
+
+
+def table_interpolation(tables, pressure_hpa, temperature_k):
+    """Cell indices and weights of (ln p, T) points in the tables' grid.
+
+    ln p is clamped to the table range; T is extrapolated linearly (weights beyond 0-1).
+
+    Parameters
+    ----------
+    tables : AbsorptionTables
+    pressure_hpa : ndarray
+        [hPa]
+    temperature_k : ndarray
+        [K]
+
+    Returns
+    -------
+    ip, it : ndarray of int
+        Lower corner along pressure and temperature.
+    fp, ft : ndarray
+        Fractions along ln p and T [1].
+    dt : ndarray
+        Cell width in temperature [K].
+    """
+    ln_grid = np.log(tables.pressure_hpa)
+    x = np.clip(np.log(pressure_hpa), ln_grid[0], ln_grid[-1])
+    ip = np.clip(np.searchsorted(ln_grid, x, side="right") - 1, 0, ln_grid.size - 2)
+    fp = (x - ln_grid[ip]) / (ln_grid[ip + 1] - ln_grid[ip])
+    grid = tables.temperature_k
+    it = np.clip(np.searchsorted(grid, temperature_k, side="right") - 1, 0, grid.size - 2)
+    dt = grid[it + 1] - grid[it]
+    ft = (temperature_k - grid[it]) / dt
+    return ip, it, fp, ft, dt
+
+
+def interpolate_ln_k(ln_k, cell):
+    """Bilinear ln k in (ln p, T) and its T-derivative at the points of ``cell``.
+
+    Parameters
+    ----------
+    ln_k : ndarray [G, NP, NTEMP]
+        One absorber's tables [ln(m2 kg-1)].
+    cell : tuple
+        :func:`table_interpolation` of points of shape S.
+
+    Returns
+    -------
+    ln_k : ndarray [G, *S]
+        [ln(m2 kg-1)]
+    d_ln_k_dt : ndarray [G, *S]
+        [K-1]
+    """
+    rows = np.ascontiguousarray(ln_k.reshape(ln_k.shape[0], -1).T)
+    value, slope = _interpolate_rows(rows, ln_k.shape[2], cell)
+    return np.moveaxis(value, -1, 0), np.moveaxis(slope, -1, 0)
+
+
+def _interpolate_rows(rows, n_temp, cell, slope=True):
+    """:func:`interpolate_ln_k` on tables laid out [NP * NTEMP, G]; results [*S, G].
+
+    Each corner is then a contiguous row of G values: a gather of rows, not of scalars.
+    Without ``slope`` the T-derivative is None.
+    """
+    ip, it, fp, ft, dt = cell
+    corner = ip * n_temp + it
+    v00, v01 = rows[corner], rows[corner + 1]
+    v10, v11 = rows[corner + n_temp], rows[corner + n_temp + 1]
+    fp, ft = fp[..., None], ft[..., None]
+    # Weights (1 - f) and f: a grid node returns its table value exactly.
+    value = v00 * ((1.0 - fp) * (1.0 - ft))
+    value += v01 * ((1.0 - fp) * ft)
+    value += v10 * (fp * (1.0 - ft))
+    value += v11 * (fp * ft)
+    if not slope:
+        return value, None
+    v01 -= v00  # along T at the lower pressure
+    v11 -= v10
+    v01 *= (1.0 - fp) / dt[..., None]
+    v11 *= fp / dt[..., None]
+    v01 += v11
+    return value, v01
+
+
+def _table_coefficients(bands, tm, pm, jacobian):
+    """k_a(p, T) = exp(ln k interpolated) per table band (eq. 3) and d ln k / dT.
+
+    Arrays [N, L-1, G] (bands last).
+    """
+    cell = table_interpolation(bands.instrument.absorption_tables, pm, tm)
+    for a, rows, mask in bands.table_rows:
+        ln_k, d_ln_k = _interpolate_rows(rows, bands.table_n_temp, cell, slope=jacobian)
+        k = np.exp(ln_k, out=ln_k)
+        if not mask.all():
+            k *= mask
+        yield a, k, d_ln_k
 
 
 def transfer(
@@ -168,7 +433,7 @@ def transfer(
         [N, C] [K].
     """
     inst = load_instrument(instrument)
-    tables = _Tables(inst)
+    tables = _Bands(inst)
     t = np.atleast_2d(np.asarray(air_temperature, dtype=float))
     n, nlev = t.shape
     p = np.broadcast_to(np.asarray(pressure_hpa, dtype=float), (n, nlev))
@@ -182,7 +447,8 @@ def transfer(
         out["jacobian_specific_humidity"] = np.empty((n, tables.n_channels, nlev))
         out["jacobian_surface_temperature"] = np.empty((n, tables.n_channels))
         out["jacobian_surface_emissivity"] = np.empty((n, tables.n_channels))
-    for start in range(0, n, max(1, block_size)):
+    block_size = tables.block_size(max(1, block_size), nlev - 1)
+    for start in range(0, n, block_size):
         sl = slice(start, min(n, start + block_size))
         block = _transfer_block(tables, p[sl], t[sl], q[sl], ts[sl], em[sl], zen[sl], jacobian)
         for key, value in block.items():
@@ -190,14 +456,11 @@ def transfer(
     return out
 
 
-def _transfer_block(tables: _Tables, p, t, q, ts, em, zen, jacobian):
-    inst = tables.instrument
-    bc = tables.band_channel
-    mu = np.cos(np.deg2rad(zen))[:, None, None]  # [N, 1, 1]
-    tm, paths, d_dt, d_dq = _absorber_paths(inst, p, t, q)
-    # eq. 3, slant: tau[n, b, j]; matmul (BLAS) is much faster than einsum for this contraction
-    tau = np.matmul(tables.k, paths.transpose(1, 0, 2)) / mu
-    a_b, b_b = tables.a[bc][None, :, None], tables.b[bc][None, :, None]
+def _transfer_block(tables: _Bands, p, t, q, ts, em, zen, jacobian):
+    bc, bp = tables.band_channel, tables.band_position
+    inv_mu = 1.0 / np.cos(np.deg2rad(zen))[:, None]  # [N, 1]
+    tm, tau, dtau_dtm, dtau_dqm = _optical_depths(tables, p, t, q, inv_mu, jacobian)  # eq. 3, slant
+    pos_a, pos_b = tables.pos_a[bp][None, :, None], tables.pos_b[bp][None, :, None]  # band positions
     e_b = em[:, bc][:, :, None]  # [N, B, 1]
 
     # eq. 4: cumulative depths from the top (t) and from the surface (s)
@@ -208,10 +471,11 @@ def _transfer_block(tables: _Tables, p, t, q, ts, em, zen, jacobian):
     s_dn = np.exp(-below)
     total = t_up[:, :, :1]  # t_0 = s_L-1, [N, B, 1]
 
-    planck_channel = planck(tables.a[None, :, None], tables.b[None, :, None], tm[:, None, :])  # [N, C, L-1]
-    planck_layer = planck_channel[:, bc]
-    planck_sfc = planck(tables.a[None, :], tables.b[None, :], ts[:, None])[:, bc][:, :, None]
-    cosmic = tables.cosmic[bc][None, :, None]
+    # Planck functions at each distinct band position P (eq. 5), then spread to the bands.
+    planck_position = planck(tables.pos_a[None, :, None], tables.pos_b[None, :, None], tm[:, None, :])  # [N, P, L-1]
+    planck_layer = planck_position[:, bp]
+    planck_sfc = planck(tables.pos_a[None, :], tables.pos_b[None, :], ts[:, None])[:, bp][:, :, None]
+    cosmic = tables.cosmic[bp][None, :, None]
 
     up_step = t_up[:, :, 1:] - t_up[:, :, :-1]  # t_j+1 - t_j, [N, B, L-1]
     dn_step = s_dn[:, :, :-1] - s_dn[:, :, 1:]  # s_j - s_j+1
@@ -221,7 +485,7 @@ def _transfer_block(tables: _Tables, p, t, q, ts, em, zen, jacobian):
     downwelling = np.sum(dn_contrib, axis=2, keepdims=True)
     reflected = downwelling + cosmic * total
     radiance_b = e_b * planck_sfc * total + upwelling + (1.0 - e_b) * total * reflected  # eq. 5
-    radiance = np.einsum("cb,nb->nc", tables.band_to_channel, radiance_b[:, :, 0])  # eq. 6
+    radiance = tables.channel_sum(radiance_b[:, :, 0])  # eq. 6
     bt = inverse_planck(tables.a[None, :], tables.b[None, :], radiance)
     result = {"brightness_temperature": bt}
     if not jacobian:
@@ -251,26 +515,24 @@ def _transfer_block(tables: _Tables, p, t, q, ts, em, zen, jacobian):
     dr_dplanck = w * dn_step
     dr_dplanck += up_step
     # dB/dT = B (b / T^2) (1 + B / a): the Planck derivative from B itself, no second exp
-    dplanck_dtm = planck_channel * (tables.b[None, :, None] / tm[:, None, :] ** 2)
-    dplanck_dtm *= 1.0 + planck_channel / tables.a[None, :, None]
+    dplanck_dtm = planck_position * (tables.pos_b[None, :, None] / tm[:, None, :] ** 2)
+    dplanck_dtm *= 1.0 + planck_position / tables.pos_a[None, :, None]
     dr_dtm = dr_dplanck
-    dr_dtm *= dplanck_dtm[:, bc]
-    inv_mu = 1.0 / mu[:, :, 0]  # [N, 1]
-    dtau_dtm = np.matmul(tables.k, (d_dt * inv_mu).transpose(1, 0, 2))
+    dr_dtm *= dplanck_dtm[:, bp]
     dtau_dtm *= dr_dtau
     dr_dtm += dtau_dtm  # [N, B, L-1]
-    dr_dqm = np.matmul(tables.k, (d_dq * inv_mu).transpose(1, 0, 2))
+    dr_dqm = dtau_dqm
     dr_dqm *= dr_dtau
 
     # Sum sub-bands into channels, then spread layer derivatives onto the two levels.
-    def to_channels(x):  # dBT_c = dBT/dR_c * sum_b w_b dR_b
-        out = np.matmul(tables.band_to_channel, x)
+    def to_channels(x):  # dBT_c = dBT/dR_c * sum_b w_b dR_b; consumes x
+        out = tables.channel_sum(x)
         out *= dbt_drad[:, :, None]
         return out
 
     result["jacobian_air_temperature"] = _layers_to_levels(to_channels(dr_dtm))
     result["jacobian_specific_humidity"] = _layers_to_levels(to_channels(dr_dqm))
-    dr_dts = e_b * total * planck_derivative(a_b, b_b, ts[:, None, None])
+    dr_dts = e_b * total * planck_derivative(pos_a, pos_b, ts[:, None, None])
     dr_dem = planck_sfc * total - total * reflected
     result["jacobian_surface_temperature"] = to_channels(dr_dts)[:, :, 0]
     result["jacobian_surface_emissivity"] = to_channels(dr_dem)[:, :, 0]
@@ -638,13 +900,12 @@ def weighting_functions(
         Weighting function per channel [1].
     """
     inst = load_instrument(instrument)
-    tables = _Tables(inst)
+    tables = _Bands(inst)
     p = np.asarray(pressure_hpa, dtype=float)[None, :]
     t = np.asarray(air_temperature, dtype=float)[None, :]
     q = np.asarray(specific_humidity, dtype=float)[None, :]
-    mu = np.cos(np.deg2rad(sensor_zenith_angle))
-    _, paths, _, _ = _absorber_paths(inst, p, t, q)
-    tau = np.einsum("bk,knj->nbj", tables.k, paths)[0] / mu  # [B, L-1]
+    inv_mu = np.full((1, 1), 1.0 / np.cos(np.deg2rad(sensor_zenith_angle)))
+    tau = _optical_depths(tables, p, t, q, inv_mu, False)[1][0]  # [B, L-1]
     above = np.concatenate([np.cumsum(tau[:, ::-1], axis=1)[:, ::-1], np.zeros((tau.shape[0], 1))], axis=1)
     trans = np.exp(-above)
     dlnp = np.log(p[0, :-1]) - np.log(p[0, 1:])

@@ -1104,9 +1104,13 @@ _CHUNK_PATTERN = "chunk-{:06d}.h5"
 
 
 def _compute_chunk(instrument_toml: str, seed: int, start: int, count: int, grid: np.ndarray,
-                   jacobian: bool) -> dict:
-    """States and model outputs of one chunk, as plain arrays (runs on a worker)."""
-    inst = Instrument.from_toml(instrument_toml, source="<sampling job>")
+                   jacobian: bool, absorption_tables=None) -> dict:
+    """States and model outputs of one chunk, as plain arrays (runs on a worker).
+
+    ``absorption_tables`` are the arrays of the instrument's table file, if it names one
+    (its TOML holds their digest, checked here).
+    """
+    inst = Instrument.from_toml(instrument_toml, source="<sampling job>", absorption_tables=absorption_tables)
     states = draw_states(count, seed=seed, pressure_hpa=grid, start=start, channels=inst)
     inputs = states[["air_pressure", "air_temperature", "specific_humidity", "surface_temperature",
                      "surface_emissivity", "sensor_zenith_angle", "surface_air_pressure"]]
@@ -1366,7 +1370,8 @@ def sample_to_netcdf(
             _write_chunk(paths[index], arrays, index, arguments_hash)
         bar.update(1)
 
-    job = {"instrument_toml": inst.to_toml(), "seed": seed, "grid": grid, "jacobian": bool(jacobian)}
+    job = {"instrument_toml": inst.to_toml(), "absorption_tables": inst.absorption_tables, "seed": seed,
+           "grid": grid, "jacobian": bool(jacobian)}
     try:
         if todo:
             with _dask_client(workers, scheduler) as (client, shared_files):

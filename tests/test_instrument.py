@@ -16,7 +16,9 @@ from hypothesis import strategies as st
 from rtemu import physics
 from rtemu.instrument import (
     ABSORBERS,
+    LAW_KEYS,
     AbsorberLaw,
+    AbsorptionTables,
     Band,
     Channel,
     Instrument,
@@ -77,20 +79,43 @@ _positive = st.floats(min_value=1e-300, max_value=1e300, **_finite)
 _nonnegative = st.floats(min_value=0.0, max_value=1e300, **_finite)
 
 
+#: Two INVENTED tables for the generated instruments' table bands.
+_TABLES = AbsorptionTables(pressure_hpa=[0.01, 1.0, 1100.0], temperature_k=[150.0, 350.0],
+                           ln_k=np.arange(36.0).reshape(2, 3, 3, 2) / 10.0 - 5.0,
+                           mask=[[True, False, True], [False, True, False]])
+
+
+@st.composite
+def generated_band(draw, weight, microwave, with_tables):
+    """A band of any kind: default laws, own laws (any subset of LAW_KEYS), table; any of
+    them with its own Planck position."""
+    fields = {"weight": weight}
+    if with_tables and draw(st.booleans()):
+        fields["table"] = draw(st.integers(0, _TABLES.count - 1))
+    else:
+        fields.update(dry=draw(_nonnegative), h2o=draw(_nonnegative), continuum=draw(_nonnegative))
+        exponent = st.floats(min_value=-1e6, max_value=1e6, **_finite)
+        for key in draw(st.lists(st.sampled_from(LAW_KEYS), unique=True, max_size=5)):
+            fields[key] = draw(exponent)
+    if draw(st.booleans()):
+        fields["frequency_ghz" if microwave else "wavenumber_cm1"] = draw(_positive)
+    return Band(**fields)
+
+
 @st.composite
 def instruments(draw):
     n_channels = draw(st.integers(1, 4))
     ids = draw(st.lists(st.text(min_size=1, max_size=12), min_size=n_channels, max_size=n_channels,
                         unique=True))
+    with_tables = draw(st.booleans())
     channels = []
     for cid in ids:
         raw = draw(st.lists(st.floats(min_value=0.01, max_value=1.0), min_size=1, max_size=4))
         weights = [w / math.fsum(raw) for w in raw]
-        bands = tuple(
-            Band(weight=w, dry=draw(_nonnegative), h2o=draw(_nonnegative), continuum=draw(_nonnegative))
-            for w in weights
-        )
         microwave = draw(st.booleans())
+        bands = tuple(draw(generated_band(w, microwave, with_tables)) for w in weights)
+        if draw(st.integers(0, 4)) == 0:
+            bands = ()  # a band-less channel
         position = draw(_positive)
         channels.append(Channel(id=cid, frequency_ghz=position if microwave else None,
                                 wavenumber_cm1=None if microwave else position,
@@ -105,14 +130,129 @@ def instruments(draw):
         dry=AbsorberLaw(draw(exponent), draw(exponent)),
         h2o=AbsorberLaw(draw(exponent), draw(exponent)),
         continuum=AbsorberLaw(0.0, draw(exponent)),
+        absorption_tables=_TABLES if with_tables else None,
+        absorption_tables_file=draw(st.text(min_size=1, max_size=12)) if with_tables else None,
     )
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=80, deadline=None)
 @given(instruments())
 def test_generated_instrument_round_trip(inst):
     text = inst.to_toml()
-    assert Instrument.from_toml(text, source="generated") == inst
+    assert Instrument.from_toml(text, source="generated", absorption_tables=inst.absorption_tables) == inst
+
+
+# -- absorption tables: the companion file --------------------------------------------------------
+TABLE_TOML = """name = "table-unit-test"
+description = "INVENTED test instrument with absorption tables"
+absorption_tables = "tables.nc"
+[[channels]]
+id = "t1"
+wavenumber_cm1 = 700.0
+noise_k = 0.1
+bands = [ { weight = 0.5, table = 1 }, { weight = 0.5, dry = 1e-3, dry_pressure_exponent = 0.5 } ]
+[[channels]]
+id = "t2"
+frequency_ghz = 118.0
+noise_k = 0.1
+bands = [ { weight = 0.5, table = 0, frequency_ghz = 116.5 }, { weight = 0.5, table = 1, frequency_ghz = 119.5 } ]
+"""
+
+
+@pytest.fixture
+def table_file(tmp_path):
+    _TABLES.to_netcdf(tmp_path / "tables.nc", title="INVENTED absorption tables", comment="test")
+    (tmp_path / "inst.toml").write_text(TABLE_TOML, encoding="utf-8")
+    return tmp_path
+
+
+def test_tables_round_trip_through_the_loader(table_file):
+    import h5netcdf
+
+    inst = load_instrument(table_file / "inst.toml")
+    assert inst.absorption_tables == _TABLES and inst.absorption_tables_file == "tables.nc"
+    np.testing.assert_array_equal(inst.absorption_tables.ln_k, np.where(_TABLES.mask[:, :, None, None], _TABLES.ln_k, 0))
+    assert inst.channels[0].bands[0] == Band(weight=0.5, table=1)
+    assert inst.channels[1].bands[1].frequency_ghz == 119.5
+    with h5netcdf.File(table_file / "tables.nc", "r") as f:  # the shared layout
+        assert f.attrs["title"].startswith("INVENTED")
+        assert f.variables["ln_k_dry"].dimensions == ("table", "pressure", "temperature")
+        assert f.variables["ln_k_h2o"].attrs["units"] == "ln(m2 kg-1)"
+        assert f.variables["absorber_mask"].dimensions == ("table", "absorber")
+        assert f.variables["absorber_mask"].dtype == np.int8
+    text = inst.to_toml()
+    assert 'absorption_tables = "tables.nc"' in text and _TABLES.sha256 in text
+    assert Instrument.from_toml(text, base_dir=table_file) == inst
+    assert Instrument.from_toml(text, absorption_tables=inst.absorption_tables) == inst
+    assert inst.select(["t2"]).absorption_tables == _TABLES
+    with pytest.raises(ValueError, match=r"generated: key 'absorption_tables' names 'tables.nc', but no base folder"):
+        Instrument.from_toml(text, source="generated")
+
+
+def test_changed_table_file_is_refused_by_its_digest(table_file):
+    text = load_instrument(table_file / "inst.toml").to_toml()
+    changed = AbsorptionTables(pressure_hpa=_TABLES.pressure_hpa, temperature_k=_TABLES.temperature_k,
+                               ln_k=_TABLES.ln_k + 1e-9, mask=_TABLES.mask)
+    changed.to_netcdf(table_file / "tables.nc", title="INVENTED")
+    with pytest.raises(ValueError, match="'absorption_tables_sha256' does not match"):
+        Instrument.from_toml(text, source="x", base_dir=table_file)
+
+
+@pytest.mark.parametrize("old, new, fragments", [
+    ('{ weight = 0.5, table = 1 }', '{ weight = 0.5, table = 1, dry = 1e-3 }',
+     ("channel 't1' band #0", "'table' excludes key(s) ['dry']")),
+    ('{ weight = 0.5, table = 1 }', '{ weight = 0.5, table = 1, h2o_temperature_exponent = 1.0 }',
+     ("'table' excludes key(s) ['h2o_temperature_exponent']",)),
+    ('{ weight = 0.5, table = 1 }', '{ weight = 0.5, table = 2 }',
+     ("channel 't1' band #0", "'table' = 2 is out of range", "holds 2 tables")),
+    ('{ weight = 0.5, table = 1 }', '{ weight = 0.5, table = -1 }', ("'table' must be an integer >= 0",)),
+    ('{ weight = 0.5, table = 1 }', '{ weight = 0.5, table = 1.0 }', ("'table' must be an integer >= 0",)),
+    ('{ weight = 0.5, table = 1 }', '{ weight = 0.5, table = 1, frequency_ghz = 30.0 }',
+     ("key 'frequency_ghz' does not match the channel's 'wavenumber_cm1'",)),
+    ('dry_pressure_exponent = 0.5', 'dry_pressure_exponent = "x"', ("'dry_pressure_exponent' must be a number",)),
+    ('dry_pressure_exponent = 0.5', 'dry_pressure_exponentt = 0.5', ("unknown key(s) ['dry_pressure_exponentt']",)),
+    ('absorption_tables = "tables.nc"\n', '', ("band #0", "'table' needs a top-level 'absorption_tables'")),
+    ('absorption_tables = "tables.nc"', 'absorption_tables = "missing.nc"', ("missing.nc", "does not exist")),
+])
+def test_table_and_law_key_errors(table_file, old, new, fragments):
+    assert TABLE_TOML.count(old) == 1
+    path = table_file / "bad.toml"
+    path.write_text(TABLE_TOML.replace(old, new), encoding="utf-8")
+    with pytest.raises(ValueError) as info:
+        load_instrument(path)
+    for fragment in fragments:
+        assert fragment in str(info.value), (fragment, str(info.value))
+
+
+@pytest.mark.parametrize("change, fragment", [
+    (dict(pressure_hpa=[1.0, 1.0, 2.0]), "'pressure' must be 1-D, finite, strictly increasing"),
+    (dict(temperature_k=[300.0, 200.0]), "'temperature' must be 1-D, finite, strictly increasing"),
+    (dict(ln_k=np.zeros((2, 3, 3, 3))), "ln_k has shape (2, 3, 3, 3), expected (table, 3, 3, 2)"),
+    (dict(mask=[[True, True, True]]), "absorber_mask has shape (1, 3), expected (2, 3)"),
+    (dict(ln_k=np.full((2, 3, 3, 2), np.nan)), "ln_k_dry is not finite in table 0"),
+])
+def test_bad_tables_refused(change, fragment):
+    fields = dict(pressure_hpa=_TABLES.pressure_hpa, temperature_k=_TABLES.temperature_k, ln_k=_TABLES.ln_k,
+                  mask=_TABLES.mask)
+    fields.update(change)
+    with pytest.raises(ValueError) as info:
+        AbsorptionTables(**fields)
+    assert fragment in str(info.value)
+
+
+def test_masked_nan_is_ignored_and_missing_variable_named(tmp_path):
+    ln_k = np.array(_TABLES.ln_k)
+    ln_k[0, 1] = np.nan  # table 0 has no h2o: ignored, stored as 0
+    tables = AbsorptionTables(pressure_hpa=_TABLES.pressure_hpa, temperature_k=_TABLES.temperature_k, ln_k=ln_k,
+                              mask=_TABLES.mask)
+    assert (tables.ln_k[0, 1] == 0).all()
+    import h5netcdf
+
+    with h5netcdf.File(tmp_path / "partial.nc", "w") as f:
+        f.dimensions = {"pressure": 2}
+        f.create_variable("pressure", ("pressure",), data=np.array([1.0, 2.0]))
+    with pytest.raises(ValueError, match=r"partial.nc.*missing variable\(s\) \['temperature'"):
+        AbsorptionTables.from_netcdf(tmp_path / "partial.nc")
 
 
 # -- validation errors ------------------------------------------------------------------------
@@ -249,9 +389,8 @@ def test_no_channels():
     check_error("channels = []\n" + head, "at least one [[channels]]")
 
 
-@pytest.mark.parametrize("bands", ["bands = []", ""])
-def test_no_bands(bands):
-    check_error(with_alpha_bands(bands), "channel 'alpha'", "'bands'", "non-empty list")
+def test_empty_bands_list():
+    check_error(with_alpha_bands("bands = []"), "channel 'alpha'", "'bands'", "non-empty list")
 
 
 def test_missing_channel_id():

@@ -16,6 +16,7 @@ import numpy as np
 import pytest
 import xarray as xr
 
+import physics_instruments
 from rtemu import flags
 from rtemu.runtime import PhysicalOperator
 
@@ -36,9 +37,9 @@ class Case:
     adjoint_rel_tol: float
 
 
-def _physical_case(small_profiles):
-    ds = small_profiles(n=6, nlev=40, seed=3)
-    return Case(PhysicalOperator("demo-sounder"), ds, 1e-6, 3.5, 1e-10)
+def _physical_case(small_profiles, instrument="demo-sounder"):
+    ds = small_profiles(n=6, nlev=40, seed=3, instrument=instrument)
+    return Case(PhysicalOperator(instrument), ds, 1e-6, 3.5, 1e-10)
 
 
 def _with_terrain(ds, seed):
@@ -89,8 +90,24 @@ def _physical_model_levels_case(small_profiles):
     return Case(op, ds, 1e-6, 3.5, 1e-10)
 
 
+#: The physics over small INVENTED instruments of each kind of sub-band (tests/physics_instruments.py):
+#: per-band power laws; (ln p, T) tables from a file written by the test; sidebands over
+#: default-law, per-band-law and table bands in one channel.
+_BAND_INSTRUMENTS = {
+    "physical-per-band-laws": physics_instruments.law_instrument,
+    "physical-tables": physics_instruments.table_instrument,
+    "physical-sidebands": physics_instruments.sideband_instrument,
+}
+
+
+@pytest.fixture(scope="module")
+def band_instruments(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("band-instruments")
+    return {name: build(folder) for name, build in _BAND_INSTRUMENTS.items()}
+
+
 @pytest.fixture(params=["physical", "physical-terrain", "physical-model-levels", "emulated",
-                        "emulated-model-levels"])
+                        "emulated-model-levels", *_BAND_INSTRUMENTS])
 def operator_case(request, small_profiles):
     if request.param == "physical":
         return _physical_case(small_profiles)
@@ -98,6 +115,8 @@ def operator_case(request, small_profiles):
         return _physical_terrain_case(small_profiles)
     if request.param == "physical-model-levels":
         return _physical_model_levels_case(small_profiles)
+    if request.param in _BAND_INSTRUMENTS:
+        return _physical_case(small_profiles, request.getfixturevalue("band_instruments")[request.param])
     return request.getfixturevalue(request.param.replace("-", "_") + "_case")
 
 
