@@ -26,6 +26,7 @@ from rtemu import flags as _flags
 from rtemu import physics as _physics
 from rtemu._checks import prepare_inputs
 from rtemu.instrument import Instrument, load_instrument
+from rtemu.teacher import PHYSICS_TEACHER
 
 ErrorMode = Literal["raise", "mask"]
 
@@ -123,6 +124,9 @@ class PhysicalOperator(_OperatorBase):
     block_size : int
         Profiles per vectorised block [1].
     """
+
+    #: Its identity as a teacher (recorded in the training sets it makes).
+    name, version = PHYSICS_TEACHER
 
     def __init__(self, instrument, *, errors: ErrorMode = "mask", block_size: int = _physics.DEFAULT_BLOCK_SIZE):
         self.instrument = load_instrument(instrument)

@@ -224,8 +224,9 @@ def checked_simulate(teacher, dataset: xr.Dataset, jacobian: bool = False, *,
     Raises
     ------
     ValueError
-        The result is not a Dataset, lacks a variable, has other dims, sizes or channel
-        ids, or holds a negative or non-numeric brightness temperature.
+        ``simulate`` raised (the message names its error), or the result is not a
+        Dataset, lacks a variable, has other dims, sizes or channel ids, or holds a
+        brightness temperature <= 0 K or non-numeric values.
     """
     channels = tuple(str(c) for c in teacher.channels)
     source = source or "teacher {} {}".format(*teacher_identity(teacher))
@@ -240,7 +241,10 @@ def checked_simulate(teacher, dataset: xr.Dataset, jacobian: bool = False, *,
     refused = 0
     if rows.size:
         part = dataset if rows.size == n else dataset.isel(profile=rows)
-        result = teacher.simulate(part, jacobian=jacobian)
+        try:
+            result = teacher.simulate(part, jacobian=jacobian)
+        except Exception as exc:  # the model's own error, as one line for the command line
+            raise ValueError(f"{source}: simulate failed ({type(exc).__name__}: {exc})") from exc
         values, teacher_flag = _check_result(result, source, channels, rows.size, nlev, jacobian, require_jacobian)
         bad = np.zeros((rows.size, len(channels)), dtype=bool)
         for name, v in values.items():
