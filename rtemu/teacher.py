@@ -292,7 +292,7 @@ def _check_result(result, source, channels, n, nlev, jacobian, require_jacobian)
     bt = values["brightness_temperature"]
     if (bt <= 0.0).any():
         i, c = (int(k[0]) for k in np.nonzero(bt <= 0.0))
-        raise ValueError(f"{source}: brightness_temperature {bt[i, c]!r} K in channel {channels[c]!r} of "
+        raise ValueError(f"{source}: brightness_temperature {float(bt[i, c]):g} K in channel {channels[c]!r} of "
                          f"returned profile {i} (rule: > 0 K)")
     teacher_flag = np.zeros((n, len(channels)), dtype=np.int32)
     if "quality_flag" in result.variables:
