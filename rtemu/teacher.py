@@ -24,7 +24,8 @@ import xarray as xr
 from rtemu import __version__
 from rtemu import flags as _flags
 from rtemu import physics as _physics
-from rtemu._checks import prepare_inputs
+from rtemu._checks import INPUT_VARIABLES, prepare_inputs
+from rtemu._units import CANONICAL_UNITS, unit_conversion
 from rtemu.instrument import Instrument
 
 __all__ = [
@@ -69,7 +70,9 @@ class Teacher(Protocol):
     def simulate(self, dataset: xr.Dataset, jacobian: bool = False) -> xr.Dataset:
         """Brightness temperatures (and Jacobians) of ``dataset``.
 
-        ``dataset`` follows the input schema of :func:`rtemu.physics.simulate`. The result
+        ``dataset`` follows the input schema of :func:`rtemu.physics.simulate`; rtemu
+        passes only profiles that pass its input rules, in canonical units (hPa, K,
+        kg kg-1, 1, degree), with a ``channel`` coordinate in this order. The result
         holds ``brightness_temperature`` (profile, channel) [K] and, with ``jacobian``,
         ``jacobian_air_temperature`` and ``jacobian_specific_humidity`` (profile, channel,
         level) [K K-1] and [K (kg kg-1)-1] in the dataset's level order,
@@ -197,8 +200,10 @@ def checked_simulate(teacher, dataset: xr.Dataset, jacobian: bool = False, *,
                      require_jacobian: bool = True, source: str | None = None) -> xr.Dataset:
     """Run ``teacher.simulate`` on the valid profiles of ``dataset`` and check the result.
 
-    Profiles that break rtemu's input rules are not passed to the teacher: they get NaN
-    and the ``invalid_input`` flag, as from the physics. On the others the result must
+    The teacher receives the inputs in canonical units (hPa, K, kg kg-1, 1, degree; with
+    ``units`` attributes saying so), in the dataset's level order, with a ``channel``
+    coordinate in its own channel order. Profiles that break rtemu's input rules are not
+    passed to it: they get NaN and the ``invalid_input`` flag, as from the physics. On the others the result must
     follow the physics output schema (see :class:`Teacher`); a non-finite value in an
     entry whose inputs are valid is the teacher refusing that state: it stays NaN and
     gets the ``invalid_input`` flag (training leaves flagged entries out), and the count
@@ -240,7 +245,7 @@ def checked_simulate(teacher, dataset: xr.Dataset, jacobian: bool = False, *,
               for name in names}
     refused = 0
     if rows.size:
-        part = dataset if rows.size == n else dataset.isel(profile=rows)
+        part = _as_teacher_input(dataset if rows.size == n else dataset.isel(profile=rows), channels)
         try:
             result = teacher.simulate(part, jacobian=jacobian)
         except Exception as exc:  # the model's own error, as one line for the command line
@@ -262,6 +267,22 @@ def checked_simulate(teacher, dataset: xr.Dataset, jacobian: bool = False, *,
     if prep.problems:
         out.attrs["invalid_input_summary"] = "; ".join(prep.problems)
     return out
+
+
+def _as_teacher_input(dataset: xr.Dataset, channels) -> xr.Dataset:
+    """``dataset`` in canonical units (hPa, K, kg kg-1, 1, degree), channels in the teacher's order."""
+    converted = {}
+    for name in INPUT_VARIABLES:
+        var = dataset.variables[name]
+        scale, offset = unit_conversion(name, var.attrs.get("units"))
+        if (scale, offset) != (1.0, 0.0) or var.attrs.get("units") != CANONICAL_UNITS[name]:
+            values = np.asarray(var.values, dtype=float) * scale + offset
+            converted[name] = xr.Variable(var.dims, values, {**var.attrs, "units": CANONICAL_UNITS[name]})
+    if converted:
+        dataset = dataset.assign(converted)
+    if "channel" in dataset.coords and tuple(str(c) for c in dataset["channel"].values) != channels:
+        dataset = dataset.sel(channel=list(channels))
+    return dataset
 
 
 def _check_result(result, source, channels, n, nlev, jacobian, require_jacobian) -> tuple[dict, np.ndarray]:

@@ -164,6 +164,15 @@ def test_checked_output_is_the_teachers_in_the_physics_schema(analytic, profiles
     for name in own.data_vars:
         np.testing.assert_array_equal(checked[name].values, own[name].transpose(*checked[name].dims).values)
     assert (checked["quality_flag"].values == 0).all() and checked.attrs["teacher_refused"] == 0
+    # The teacher always sees canonical units and its own channel order (Pa -> hPa: 1 hPa =
+    # 100 Pa; degC -> K: +273.15, SI brochure), whatever the caller used.
+    other = profiles.assign(
+        air_pressure=(profiles["air_pressure"] * 100.0).assign_attrs(units="Pa"),
+        air_temperature=(profiles["air_temperature"] - 273.15).assign_attrs(units="degC"),
+    ).isel(channel=[2, 0, 1])
+    converted = checked_simulate(analytic, other, jacobian=True)
+    for name in own.data_vars:
+        np.testing.assert_allclose(converted[name].values, checked[name].values, rtol=1e-12)
 
 
 def test_refused_and_invalid_profiles_are_nan_and_flagged(analytic, profiles):
@@ -302,3 +311,27 @@ def test_stored_values_of_other_channels_are_refused(tmp_path, tiny_bundle):
                                                                       "frequency_ghz = 52.5", toml))
     with pytest.raises(ValueError, match="another definition of channel 'mw-t1'"):
         rtemu.run_audit(tiny_bundle, tmp_path / "a", data=changed, progress=False)
+
+
+def test_readme_teacher_example_runs(tmp_path, monkeypatch):
+    text = (ROOT / "README.md").read_text()
+    section = text.split("## Emulating your own model\n", 1)[1].split("\n## ", 1)[0]
+    code = re.search(r"```python\n(.*?)```", section, re.S).group(1)
+    assert len(code.strip().splitlines()) <= 20
+    (tmp_path / "my_model.py").write_text(code)
+    monkeypatch.chdir(tmp_path)
+    commands = re.search(r"```\n(rtemu sample --teacher.*?)```", section, re.S).group(1).splitlines()
+    assert commands[0].startswith("rtemu sample --teacher my_model:MyModel ")
+    assert main(["sample", "--teacher", "my_model:MyModel", "--count", "30", "--seed", "1", "--jacobian",
+                 "--output", "train.nc", "--quiet"]) == 0
+    with open_dataset(tmp_path / "train.nc") as ds:
+        assert (ds.attrs["rtemu_teacher"], ds.attrs["rtemu_teacher_version"]) == ("my-model", "0.1")
+        assert list(ds["channel"].values) == ["mw-t2", "mw-t4"]
+        # The README's toy, written out again: Gaussian weights exp(-((p - p_c) / 150 hPa)^2).
+        p = ds["air_pressure"].values
+        t = ds["air_temperature"].transpose("profile", "level").values
+        for c, centre in enumerate((500.0, 250.0)):
+            w = np.exp(-(((p - centre) / 150.0) ** 2))
+            np.testing.assert_allclose(ds["brightness_temperature"].values[:, c], t @ (w / w.sum()), rtol=1e-12)
+            np.testing.assert_allclose(ds["jacobian_air_temperature"].values[:, c],
+                                       np.broadcast_to(w / w.sum(), t.shape), rtol=1e-12)
