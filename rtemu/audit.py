@@ -539,6 +539,11 @@ def _choose_reference(reference, operator, dataset: xr.Dataset, attrs: dict, sou
     if "brightness_temperature" in dataset.variables:
         _check_stored_instrument(attrs, operator.instrument, source)
         return StoredReference(operator.instrument, source)
+    bundle = getattr(operator, "bundle", None)
+    if bundle is not None and bundle.teacher[0] != _teacher.PHYSICS_TEACHER[0]:
+        raise ValueError(f"the emulator learned teacher {bundle.teacher[0]!r} (version {bundle.teacher[1]}), not "
+                         "rtemu's physics (rule: audit against its own teacher: give it as reference "
+                         "(--teacher MODULE:NAME) or test data holding its brightness temperatures)")
     from rtemu.runtime import PhysicalOperator
 
     return PhysicalOperator(operator.instrument)

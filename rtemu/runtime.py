@@ -187,7 +187,8 @@ class EmulatedOperator(_OperatorBase):
         * ``None``: flagged profiles keep emulated values (and their flags).
         * ``"physics"``: profiles outside the training envelope (flag bits
           ``outside_training_bounds`` or ``novel_state``) are recomputed with the physical
-          model and get the ``physics_fallback`` bit.
+          model and get the ``physics_fallback`` bit. Only for a bundle whose teacher is
+          rtemu's physics (:attr:`rtemu.bundle.Bundle.teacher`).
     errors : {"mask", "raise"}
         * ``"mask"`` (default): invalid profiles get NaN outputs and ``invalid_input``.
         * ``"raise"``: invalid input raises ValueError.
@@ -211,6 +212,10 @@ class EmulatedOperator(_OperatorBase):
         self.errors = errors
         self.grid_tolerance_hpa = float(grid_tolerance_hpa)
         self.bundle = _bundle.read_bundle(self.path)
+        if fallback == "physics" and self.bundle.teacher[0] != PHYSICS_TEACHER[0]:
+            raise ValueError(f"fallback='physics': {self.path} emulates teacher {self.bundle.teacher[0]!r}, not "
+                             "rtemu's physics (rule: the fallback recomputes with rtemu's physics, so only for "
+                             "emulators of it)")
         self.model_instrument = self.bundle.instrument
         model_ids = self.model_instrument.channel_ids
         self.instrument = (

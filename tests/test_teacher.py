@@ -274,7 +274,8 @@ def test_own_model_audited_by_teacher_by_stored_data_and_not_by_the_physics(own_
     assert main(["audit", *common, "--teacher", "my_model:teacher", "--count", "60", "--seed", "2",
                  "--output", "by_teacher"]) == 0
     assert main(["audit", *common, "--data", "test.nc", "--output", "by_data"]) == 0
-    assert main(["audit", *common, "--count", "60", "--seed", "2", "--output", "by_physics"]) == 0
+    physics = rtemu.PhysicalOperator(AnalyticTeacher().instrument)  # only when asked for by name
+    rtemu.run_audit("model.onnx", "by_physics", count=60, seed=2, reference=physics, progress=False)
 
     by_teacher, by_data, by_physics = (json.loads((own_model / d / "summary.json").read_text())
                                        for d in ("by_teacher", "by_data", "by_physics"))
@@ -292,6 +293,32 @@ def test_own_model_audited_by_teacher_by_stored_data_and_not_by_the_physics(own_
         assert t["rmse_k"] < 1.0 and 5.0 * t["rmse_k"] < p["rmse_k"]
     report = (own_model / "by_data" / "report.md").read_text()
     assert "Reference: the values stored in the test set, computed by teacher `analytic-toy` version 1.2" in report
+
+
+def test_the_bundle_knows_its_teacher_and_refuses_physics_in_its_place(own_model, monkeypatch, capsys):
+    monkeypatch.chdir(own_model)
+    from rtemu.bundle import read_bundle
+
+    assert read_bundle("model.onnx").teacher == ("analytic-toy", "1.2")
+    assert read_bundle("model.onnx").channel_stats["toy-q"]["teacher_version"] == "1.2"
+    capsys.readouterr()
+    assert main(["info", "model.onnx"]) == 0
+    assert "teacher            analytic-toy 1.2" in capsys.readouterr().out
+    # No teacher and no stored values: the audit does not fall back to rtemu's physics.
+    assert main(["audit", "--model", "model.onnx", "--count", "20", "--seed", "2", "--output", "none",
+                 "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert "the emulator learned teacher 'analytic-toy' (version 1.2), not rtemu's physics" in err
+    assert not (own_model / "none").exists()
+    with pytest.raises(ValueError, match="emulates teacher 'analytic-toy', not rtemu's physics"):
+        rtemu.EmulatedOperator.load("model.onnx", fallback="physics")
+    # One teacher per bundle: channels learned from rtemu's physics cannot join it.
+    sampling.sample_to_netcdf(AnalyticTeacher().instrument, own_model / "physics.nc", count=20, seed=5,
+                              progress=False)
+    assert main(["train", "--data", "physics.nc", "--recipe", "demo", "--channels", "toy-q", "--update",
+                 "model.onnx", "--output", "mixed.onnx", "--quiet"]) == 2
+    assert "the bundle emulates teacher 'analytic-toy', the training data comes from 'rtemu.physics'" in \
+        capsys.readouterr().err
 
 
 def test_audit_data_without_jacobians_leaves_jacobian_errors_empty(own_model, tmp_path):
