@@ -536,10 +536,14 @@ def _choose_reference(reference, operator, dataset: xr.Dataset, attrs: dict, sou
     """The given teacher; else the outputs the data holds; else rtemu's physics."""
     if reference is not None:
         return reference
+    bundle = getattr(operator, "bundle", None)
     if "brightness_temperature" in dataset.variables:
         _check_stored_instrument(attrs, operator.instrument, source)
+        made_by = attrs.get("rtemu_teacher")
+        if bundle is not None and made_by is not None and str(made_by) != bundle.teacher[0]:
+            raise ValueError(f"{source}: its brightness temperatures come from teacher {str(made_by)!r}, the emulator "
+                             f"learned {bundle.teacher[0]!r} (rule: audit against the emulator's own teacher)")
         return StoredReference(operator.instrument, source)
-    bundle = getattr(operator, "bundle", None)
     if bundle is not None and bundle.teacher[0] != _teacher.PHYSICS_TEACHER[0]:
         raise ValueError(f"the emulator learned teacher {bundle.teacher[0]!r} (version {bundle.teacher[1]}), not "
                          "rtemu's physics (rule: audit against its own teacher: give it as reference "

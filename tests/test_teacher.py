@@ -312,9 +312,12 @@ def test_the_bundle_knows_its_teacher_and_refuses_physics_in_its_place(own_model
     assert not (own_model / "none").exists()
     with pytest.raises(ValueError, match="emulates teacher 'analytic-toy', not rtemu's physics"):
         rtemu.EmulatedOperator.load("model.onnx", fallback="physics")
-    # One teacher per bundle: channels learned from rtemu's physics cannot join it.
+    # Stored values of rtemu's physics are not this emulator's reference either.
     sampling.sample_to_netcdf(AnalyticTeacher().instrument, own_model / "physics.nc", count=20, seed=5,
                               progress=False)
+    assert main(["audit", "--model", "model.onnx", "--data", "physics.nc", "--output", "none", "--quiet"]) == 2
+    assert "come from teacher 'rtemu.physics', the emulator learned 'analytic-toy'" in capsys.readouterr().err
+    # One teacher per bundle: channels learned from rtemu's physics cannot join it.
     assert main(["train", "--data", "physics.nc", "--recipe", "demo", "--channels", "toy-q", "--update",
                  "model.onnx", "--output", "mixed.onnx", "--quiet"]) == 2
     assert "the bundle emulates teacher 'analytic-toy', the training data comes from 'rtemu.physics'" in \
