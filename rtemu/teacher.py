@@ -203,11 +203,11 @@ def checked_simulate(teacher, dataset: xr.Dataset, jacobian: bool = False, *,
     The teacher receives the inputs in canonical units (hPa, K, kg kg-1, 1, degree; with
     ``units`` attributes saying so), in the dataset's level order, with a ``channel``
     coordinate in its own channel order. Profiles that break rtemu's input rules are not
-    passed to it: they get NaN and the ``invalid_input`` flag, as from the physics. On the others the result must
-    follow the physics output schema (see :class:`Teacher`); a non-finite value in an
-    entry whose inputs are valid is the teacher refusing that state: it stays NaN and
-    gets the ``invalid_input`` flag (training leaves flagged entries out), and the count
-    is in the attribute ``teacher_refused``.
+    passed to it: they get NaN and the ``invalid_input`` flag, as from the physics. On the
+    others the result must follow the physics output schema (see :class:`Teacher`); a
+    non-finite value in an entry whose inputs are valid is the teacher refusing that
+    state: the entry (all its outputs) is NaN with the ``invalid_input`` flag (training
+    leaves flagged entries out), and the count is in the attribute ``teacher_refused``.
 
     Parameters
     ----------

@@ -15,7 +15,6 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-import xarray as xr
 
 import rtemu
 from analytic_teacher import AnalyticTeacher
@@ -253,15 +252,15 @@ def own_model(tmp_path_factory):
     """The user's module in the current directory, as the README describes; sampled and
     trained through the command line. Returns the directory."""
     d = tmp_path_factory.mktemp("own_model")
-    shutil.copy(HERE / "analytic_teacher.py", d / "my_model.py")
+    shutil.copy(HERE / "analytic_teacher.py", d / "toy_model.py")
     with pytest.MonkeyPatch.context() as mp:
         mp.chdir(d)
         mp.setattr(sys, "path", list(sys.path))
-        for argv in (["sample", "--teacher", "my_model:make_teacher", "--count", "400", "--seed", "1",
+        for argv in (["sample", "--teacher", "toy_model:make_teacher", "--count", "400", "--seed", "1",
                       "--output", "train.nc"],
-                     ["sample", "--teacher", "my_model:teacher", "--count", "60", "--seed", "2", "--jacobian",
+                     ["sample", "--teacher", "toy_model:teacher", "--count", "60", "--seed", "2", "--jacobian",
                       "--output", "test.nc"],
-                     ["sample", "--teacher", "my_model:teacher", "--count", "60", "--seed", "3",
+                     ["sample", "--teacher", "toy_model:teacher", "--count", "60", "--seed", "3",
                       "--output", "test_bt_only.nc"],
                      ["train", "--data", "train.nc", "--recipe", "demo", "--output", "model.onnx"]):
             assert main(argv + ["--quiet"]) == 0
@@ -271,7 +270,7 @@ def own_model(tmp_path_factory):
 def test_own_model_audited_by_teacher_by_stored_data_and_not_by_the_physics(own_model, monkeypatch):
     monkeypatch.chdir(own_model)
     common = ["--model", "model.onnx", "--quiet"]
-    assert main(["audit", *common, "--teacher", "my_model:teacher", "--count", "60", "--seed", "2",
+    assert main(["audit", *common, "--teacher", "toy_model:teacher", "--count", "60", "--seed", "2",
                  "--output", "by_teacher"]) == 0
     assert main(["audit", *common, "--data", "test.nc", "--output", "by_data"]) == 0
     physics = rtemu.PhysicalOperator(AnalyticTeacher().instrument)  # only when asked for by name
@@ -280,7 +279,7 @@ def test_own_model_audited_by_teacher_by_stored_data_and_not_by_the_physics(own_
     by_teacher, by_data, by_physics = (json.loads((own_model / d / "summary.json").read_text())
                                        for d in ("by_teacher", "by_data", "by_physics"))
     assert by_teacher["reference"] == {"kind": "teacher", "teacher": "analytic-toy", "version": "1.2",
-                                       "spec": "my_model:teacher"}
+                                       "spec": "toy_model:teacher"}
     assert by_data["reference"]["kind"] == "stored" and by_data["reference"]["teacher"] == "analytic-toy"
     assert by_data["reference"]["jacobians"] is True
     assert by_physics["reference"]["kind"] == "physics"
