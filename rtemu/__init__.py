@@ -1,6 +1,6 @@
 """rtemu: fast, audited emulators of a clear-sky radiance observation operator.
 
-The public API, grouped by stage (physics -> sampling -> training -> runtime -> audit ->
+The public API, grouped by stage (physics -> teachers -> sampling -> training -> runtime -> audit ->
 assimilation). Names of later stages are imported on first use, so that ``import rtemu``
 and the command line start quickly; everything not listed here is internal.
 """
@@ -15,6 +15,9 @@ from rtemu import flags, physics
 from rtemu.instrument import AbsorptionTables, Band, Channel, Instrument, list_instruments, load_instrument
 
 _LAZY = {
+    # teachers
+    "Teacher": "rtemu.teacher",
+    "load_teacher": "rtemu.teacher",
     # sampling
     "draw_states": "rtemu.sampling",
     "sample_to_netcdf": "rtemu.sampling",
@@ -39,7 +42,7 @@ _LAZY = {
     # demo
     "run_demo": "rtemu.demo",
 }
-_LAZY_MODULES = ("assim", "atmosphere", "levels", "sampling", "training", "bundle", "runtime", "audit")
+_LAZY_MODULES = ("assim", "atmosphere", "levels", "teacher", "sampling", "training", "bundle", "runtime", "audit")
 
 __all__ = [
     "__version__",
@@ -53,6 +56,10 @@ __all__ = [
     "physics",
     "flags",
     "atmosphere",
+    # teachers: the models an emulator learns from
+    "Teacher",
+    "load_teacher",
+    "teacher",
     # sampling
     "draw_states",
     "sample_to_netcdf",

@@ -1,6 +1,6 @@
-"""The audit: how far an emulator is from the physics, and what that means for assimilation.
+"""The audit: how far an emulator is from its teacher, and what that means for assimilation.
 
-:func:`run_audit` runs the emulator and the physical model on an independent test set and
+:func:`run_audit` runs the emulator and its reference on an independent test set and
 writes, into one directory,
 
 * ``report.md``: per-channel accuracy, the same split by total column water vapour, sensor
@@ -12,6 +12,9 @@ writes, into one directory,
   against noise).
 
 Definitions (also printed in the report):
+
+The reference ("physical" below) is rtemu's physical model, any other teacher
+(:class:`rtemu.Teacher`), or the brightness temperatures (and Jacobians) a test file holds.
 
 * brightness-temperature error d = BT_emulated - BT_physical [K] per (profile, channel);
   bias = mean(d), RMSE = sqrt(mean(d^2)), and the 99.9th percentile and maximum of |d|.
@@ -44,7 +47,10 @@ import xarray as xr
 
 from rtemu import __version__
 from rtemu import flags as _flags
+from rtemu import teacher as _teacher
 from rtemu._checks import INPUT_VARIABLES, prepare_inputs
+from rtemu.instrument import Instrument
+from rtemu.physics import JACOBIAN_NAMES
 from rtemu._io import open_dataset, to_netcdf_atomic, write_bytes_atomic, write_text_atomic
 from rtemu.atmosphere import total_column_water_vapour
 
@@ -433,10 +439,13 @@ def dot_product_test(operator, dataset: xr.Dataset, *, seed: int = 0, repeats: i
 
 
 # -- test data -----------------------------------------------------------------------------
-def _open_test_data(data, channels) -> tuple[xr.Dataset, dict, xr.Dataset | None]:
-    """The test inputs (a file is opened lazily), their description, and what to close."""
+def _open_test_data(data, channels, stored: bool = False) -> tuple[xr.Dataset, dict, xr.Dataset | None]:
+    """The test inputs (a file is opened lazily), their description, and what to close.
+
+    With ``stored``, reference outputs the data holds are kept beside the inputs.
+    """
     if isinstance(data, xr.Dataset):
-        return _select_inputs(data, channels), {"source": "dataset"}, None
+        return _select_inputs(data, channels, stored=stored), _stored_description(data, {"source": "dataset"}), None
     path = Path(data)
     if not path.is_file():
         raise FileNotFoundError(f"data {path}: no such file")
@@ -444,31 +453,117 @@ def _open_test_data(data, channels) -> tuple[xr.Dataset, dict, xr.Dataset | None
         opened = open_dataset(path)
     except Exception as exc:  # the netCDF libraries raise many types for a bad file
         raise ValueError(f"data {path}: cannot be read as netCDF ({type(exc).__name__}: {exc})") from None
-    description = {"source": "file", "path": str(path.resolve())}
+    description = _stored_description(opened, {"source": "file", "path": str(path.resolve())})
     if "rtemu_seed" in opened.attrs:
         description["seed"] = int(opened.attrs["rtemu_seed"])
     try:
-        return _select_inputs(opened, channels, f"data {path}"), description, opened
+        return _select_inputs(opened, channels, f"data {path}", stored=stored), description, opened
     except BaseException:
         opened.close()
         raise
 
 
-def _select_inputs(ds: xr.Dataset, channels, source: str = "data") -> xr.Dataset:
-    """Only the input variables; a wider channel dimension cut to ``channels``."""
+def _select_inputs(ds: xr.Dataset, channels, source: str = "data", stored: bool = False) -> xr.Dataset:
+    """The input variables (with ``stored`` also the reference outputs it holds); a wider
+    channel dimension cut to ``channels``."""
     missing = [v for v in INPUT_VARIABLES if v not in ds.variables]
     if missing:
         raise ValueError(f"{source}: missing variable(s) {missing} (rule: the physics input schema, "
                          f"all of {list(INPUT_VARIABLES)})")
     if "profile" not in ds.dims or ds.sizes["profile"] == 0:
         raise ValueError(f"{source}: no profiles (rule: dimension 'profile' with at least one entry)")
-    ds = ds[list(INPUT_VARIABLES)]
+    ds = ds[list(INPUT_VARIABLES) + ([n for n in _STORED_OUTPUTS if n in ds.variables] if stored else [])]
     if "channel" in ds.dims and "channel" in ds.coords:
         have = [str(c) for c in ds["channel"].values]
         if set(channels) <= set(have) and have != list(channels):
             # A test file of the whole instrument serves an emulator of some of its channels.
             ds = ds.sel(channel=list(channels))
     return ds
+
+
+_STORED_OUTPUTS = ("brightness_temperature", *JACOBIAN_NAMES, "quality_flag")
+
+
+def _stored_description(ds: xr.Dataset, description: dict) -> dict:
+    """``description`` plus, for data holding brightness temperatures, who computed them."""
+    if "brightness_temperature" in ds.variables:
+        description["stored_outputs"] = [n for n in _STORED_OUTPUTS if n in ds.variables]
+        for key in ("rtemu_teacher", "rtemu_teacher_version"):
+            if key in ds.attrs:
+                description[key.removeprefix("rtemu_")] = str(ds.attrs[key])
+    return description
+
+
+class StoredReference:
+    """The reference outputs a test set holds, served as a teacher of its own profiles.
+
+    ``simulate(block)`` returns the ``brightness_temperature`` (and Jacobians, and
+    ``quality_flag``) stored in ``block``; the audit uses it when the data already holds
+    what a teacher computed, so no model runs.
+    """
+
+    def __init__(self, instrument: Instrument, source: str):
+        self.instrument = instrument
+        self.source = source
+
+    @property
+    def channels(self) -> tuple[str, ...]:
+        return self.instrument.channel_ids
+
+    def simulate(self, dataset: xr.Dataset, jacobian: bool = False) -> xr.Dataset:
+        names = [n for n in _STORED_OUTPUTS if n in dataset.variables and (jacobian or n not in JACOBIAN_NAMES)]
+        return dataset[names]
+
+    def __repr__(self):
+        return f"StoredReference({self.source!r})"
+
+
+def _check_stored_instrument(ds_attrs: dict, instrument: Instrument, source: str) -> None:
+    """Refuse stored values computed for channels other than the emulator's (bands, position)."""
+    toml = ds_attrs.get("rtemu_instrument_toml")
+    if not toml:
+        return
+    stored = Instrument.from_toml(str(toml), source=f"{source}:rtemu_instrument_toml")
+    own = {ch.id: ch for ch in stored.channels}
+    for ch in instrument.channels:
+        if ch.id in own and dataclasses.replace(own[ch.id], noise_k=ch.noise_k) != ch:
+            raise ValueError(f"{source}: its brightness temperatures were computed for another definition of "
+                             f"channel {ch.id!r} than the emulator's (rule: the same channel; give a teacher "
+                             "to recompute them)")
+
+
+def _choose_reference(reference, operator, dataset: xr.Dataset, attrs: dict, source: str):
+    """The given teacher; else the outputs the data holds; else rtemu's physics."""
+    if reference is not None:
+        return reference
+    bundle = getattr(operator, "bundle", None)
+    if "brightness_temperature" in dataset.variables:
+        _check_stored_instrument(attrs, operator.instrument, source)
+        made_by = attrs.get("rtemu_teacher")
+        if bundle is not None and made_by is not None and str(made_by) != bundle.teacher[0]:
+            raise ValueError(f"{source}: its brightness temperatures come from teacher {str(made_by)!r}, the emulator "
+                             f"learned {bundle.teacher[0]!r} (rule: audit against the emulator's own teacher)")
+        return StoredReference(operator.instrument, source)
+    if bundle is not None and bundle.teacher[0] != _teacher.PHYSICS_TEACHER[0]:
+        raise ValueError(f"the emulator learned teacher {bundle.teacher[0]!r} (version {bundle.teacher[1]}), not "
+                         "rtemu's physics (rule: audit against its own teacher: give it as reference "
+                         "(--teacher MODULE:NAME) or test data holding its brightness temperatures)")
+    from rtemu.runtime import PhysicalOperator
+
+    return PhysicalOperator(operator.instrument)
+
+
+def _reference_description(reference, data_description: dict) -> dict:
+    if isinstance(reference, StoredReference):
+        return {"kind": "stored", "source": reference.source,
+                "teacher": data_description.get("teacher"), "version": data_description.get("teacher_version"),
+                "jacobians": all(n in data_description.get("stored_outputs", ()) for n in JACOBIAN_NAMES)}
+    name, version = _teacher.teacher_identity(reference)
+    kind = "physics" if (name, version) == _teacher.PHYSICS_TEACHER else "teacher"
+    entry = {"kind": kind, "teacher": name, "version": version}
+    if isinstance(reference, _teacher.ImportedTeacher):
+        entry["spec"] = reference.spec
+    return entry
 
 
 def _draw_test_data(count, seed, operator) -> tuple[xr.Dataset, dict, xr.Dataset]:
@@ -560,6 +655,22 @@ def _outputs(result: xr.Dataset, names) -> dict:
     return {n: result[n].transpose(*dims[result[n].ndim]).values for n in names}
 
 
+def _reference_outputs(reference, block: xr.Dataset, names) -> dict:
+    """The teacher's outputs, checked (:func:`rtemu.teacher.checked_simulate`); NaN for the
+    Jacobians of a reference without them."""
+    result = _teacher.checked_simulate(reference, block, jacobian=True, require_jacobian=False,
+                                       source=getattr(reference, "source", None))
+    n, c, nlev = block.sizes["profile"], len(reference.channels), block.sizes["level"]
+    out = {}
+    for name in names:
+        if name in result.variables:
+            out[name] = _outputs(result, [name])[name]
+        else:
+            out[name] = np.full((n, c, nlev) if name in ("jacobian_air_temperature",
+                                                          "jacobian_specific_humidity") else (n, c), np.nan)
+    return out
+
+
 _COMPARED = ("brightness_temperature", "jacobian_air_temperature", "jacobian_specific_humidity",
              "quality_flag")
 
@@ -574,7 +685,7 @@ def _evaluate(emulator, reference, dataset: xr.Dataset, progress: bool) -> _Coll
         for start in range(0, n, CHUNK_SIZE):
             block = dataset.isel(profile=slice(start, min(n, start + CHUNK_SIZE))).load()
             emu = _outputs(emulator.simulate(block, jacobian=True), _COMPARED)
-            phys = _outputs(reference.simulate(block, jacobian=True), _COMPARED)
+            phys = _reference_outputs(reference, block, _COMPARED)
             prep = prepare_inputs(block, channels, errors="mask")
             tcwv, zen, em = _geometry(prep)
             q = prep.to_caller_order(prep.specific_humidity)[:, None, :]  # the Jacobians' level order
@@ -640,7 +751,7 @@ def _jacobian_examples(emulator, reference, dataset, rows: dict, tcwv: np.ndarra
     block = dataset.isel(profile=[rows[k] for k in labels]).load()
     names = ("jacobian_air_temperature", "jacobian_specific_humidity")
     emu = _outputs(emulator.simulate(block, jacobian=True), names)
-    phys = _outputs(reference.simulate(block, jacobian=True), names)
+    phys = _reference_outputs(reference, block, names)
     prep = prepare_inputs(block, tuple(emulator.channels), errors="mask")
     pressure = prep.to_caller_order(prep.pressure_hpa)  # the Jacobians' level order
     q = prep.to_caller_order(prep.specific_humidity)[:, None, :]
@@ -823,7 +934,7 @@ def run_audit(
     operator=None,
     reference=None,
 ) -> dict:
-    """Measure an emulator against the physical model and write the audit directory.
+    """Measure an emulator against its teacher and write the audit directory.
 
     Parameters
     ----------
@@ -837,7 +948,10 @@ def run_audit(
     data : str, Path or xarray.Dataset, optional
         Independent test profiles in the physics input schema (e.g. from ``rtemu
         sample``). A ``channel`` dimension holding more channels than the emulator is
-        reduced to the emulator's channels.
+        reduced to the emulator's channels. Data that holds ``brightness_temperature``
+        (and the Jacobians, and ``quality_flag``) is its own reference unless
+        ``reference`` is given: the audit compares against those values and runs no
+        model (without stored Jacobians the Jacobian errors are left empty).
     count : int, optional
         Instead of ``data``: draw this many test profiles with
         :func:`rtemu.sampling.draw_states` on the emulator's pressure grid. With neither,
@@ -852,8 +966,10 @@ def run_audit(
     operator : observation operator, optional
         Use this object as the emulator instead of loading ``model`` (anything with
         ``instrument``, ``channels``, ``simulate``, ``tangent_linear``, ``adjoint``).
-    reference : observation operator, optional
-        The truth; default ``PhysicalOperator(emulator.instrument)``.
+    reference : Teacher, optional
+        The truth: any object in the :class:`rtemu.Teacher` protocol with the emulator's
+        channels (its output is checked, see :func:`rtemu.teacher.checked_simulate`);
+        default the values ``data`` holds, else ``PhysicalOperator(emulator.instrument)``.
 
     Returns
     -------
@@ -876,24 +992,27 @@ def run_audit(
         from rtemu.runtime import EmulatedOperator
 
         operator = EmulatedOperator.load(model)
-    if reference is None:
-        from rtemu.runtime import PhysicalOperator
-
-        reference = PhysicalOperator(operator.instrument)
-    if tuple(reference.channels) != tuple(operator.channels):
-        raise ValueError(f"reference channels {list(reference.channels)} differ from the emulator's "
-                         f"{list(operator.channels)} (rule: the same channels in the same order)")
+    if reference is not None:
+        _teacher.check_teacher(reference, "reference")
+        if tuple(reference.channels) != tuple(operator.channels):
+            raise ValueError(f"reference channels {list(reference.channels)} differ from the emulator's "
+                             f"{list(operator.channels)} (rule: the same channels in the same order)")
 
     if data is not None:
-        dataset, data_description, opened = _open_test_data(data, tuple(operator.channels))
+        dataset, data_description, opened = _open_test_data(data, tuple(operator.channels),
+                                                            stored=reference is None)
         try:
             _check_independent(data, operator)
+            attrs = opened.attrs if opened is not None else data.attrs
+            reference = _choose_reference(reference, operator, dataset, attrs, data_description.get("path", "data"))
         except BaseException:
             if opened is not None:
                 opened.close()
             raise
     else:
         dataset, data_description, opened = _draw_test_data(count or DEFAULT_COUNT, seed, operator)
+        reference = _choose_reference(reference, operator, dataset, {}, "drawn")
+    reference_description = _reference_description(reference, data_description)
     from tqdm.auto import tqdm
 
     from rtemu import _plots
@@ -908,6 +1027,7 @@ def run_audit(
                                           collected.tcwv)
             steps.update()
             summary = _summary(collected, operator, model, data_description, threshold, checks)
+            summary["reference"] = _jsonable(reference_description)
             audit_ds = _audit_dataset(collected, operator, summary)
             figures = _plots.render_all(collected, summary, examples, tuple(operator.channels))
             summary["figures"] = sorted(figures)
@@ -945,6 +1065,18 @@ def _range_label(lo, hi, units):
     return f"{lo:g}–{hi_text} {units}".strip()
 
 
+def _reference_text(reference: dict) -> str:
+    made_by = (f"teacher `{reference['teacher']}` version {reference['version']}" if reference.get("teacher")
+               else "an unrecorded model")
+    if reference["kind"] == "stored":
+        jacobians = "" if reference["jacobians"] else "; no Jacobians stored, so no Jacobian errors"
+        return f"the values stored in the test set, computed by {made_by}{jacobians}"
+    if reference["kind"] == "physics":
+        return f"rtemu's physical model (version {reference['version']})"
+    spec = f" (`{reference['spec']}`)" if reference.get("spec") else ""
+    return f"{made_by}{spec}"
+
+
 def _report(summary: dict, examples: dict) -> str:
     channels = summary["channels"]
     ids = list(channels)
@@ -964,6 +1096,7 @@ def _report(summary: dict, examples: dict) -> str:
         "",
         f"- Emulator: {model_text}",
         f"- Test set: {data_text}",
+        f"- Reference: {_reference_text(summary['reference'])}",
         f"- Profiles with every channel unflagged: {summary['profiles_fully_unflagged']} of {summary['profiles']}",
         "- Flag counts (profile, channel entries): "
         + ", ".join(f"{k} {v}" for k, v in summary["flag_counts"].items()),

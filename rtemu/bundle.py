@@ -21,6 +21,7 @@ from onnx import numpy_helper
 
 from rtemu import _graph
 from rtemu.instrument import Instrument
+from rtemu.teacher import PHYSICS_TEACHER
 
 __all__ = ["FORMAT_VERSION", "Bundle", "BundleError", "read_bundle", "describe", "make_session",
            "weights_sha256"]
@@ -101,6 +102,8 @@ class Bundle:
         The shared input transform's settings.
     metadata : dict
         All ``rtemu.*`` metadata strings, verbatim.
+    teacher : (str, str)
+        Name and version of the model the emulator learned (property).
     """
 
     path: str
@@ -124,6 +127,14 @@ class Bundle:
     graph: dict
     features: dict
     metadata: dict
+
+    @property
+    def teacher(self) -> tuple[str, str]:
+        """(name, version) of the model the emulator learned (``rtemu.teacher``,
+        ``rtemu.teacher_version``; the version of the latest training, each channel's own in
+        ``channel_stats``). A bundle without the record learned rtemu's physics."""
+        return (self.metadata.get("rtemu.teacher", PHYSICS_TEACHER[0]),
+                self.metadata.get("rtemu.teacher_version", "unrecorded"))
 
     def arrays(self) -> dict:
         """The bundle's initializers as numpy arrays (read again from the file, checked)."""
@@ -396,6 +407,7 @@ def describe(path) -> str:
         *_grid_lines(grid),
         f"  recipe             {b.recipe_name} (sha256 {hashlib.sha256(b.recipe_toml.encode()).hexdigest()[:16]}...)",
         f"  training data      sha256 {b.training_data_sha256}",
+        f"  teacher            {b.teacher[0]} {b.teacher[1]}",
         f"  weights            sha256 {b.weights_sha256}",
         f"  compression        {b.graph['n_components']} components ({_features_summary(b.features)})",
         f"  opacity kernels    {_kernels_summary(b.features)}",

@@ -79,8 +79,14 @@ def _run_instruments(args):
 
 
 def _add_sample(sub):
-    p = sub.add_parser("sample", help="draw atmospheric states and simulate them (training data)")
-    p.add_argument("--instrument", required=True, help="shipped instrument name or TOML path")
+    p = sub.add_parser("sample", help="draw atmospheric states and simulate them (training data)",
+                       description="Draw atmospheric states and run a teacher on them: rtemu's physics of "
+                       "an instrument (--instrument) or your own model (--teacher).")
+    which = p.add_mutually_exclusive_group(required=True)
+    which.add_argument("--instrument", help="shipped instrument name or TOML path (rtemu's physics)")
+    which.add_argument("--teacher", metavar="MODULE:NAME",
+                       help="your model: NAME in MODULE (the current directory is searched first) is a "
+                       "teacher object or a zero-argument callable returning one")
     p.add_argument("--count", type=int, required=True, help="number of profiles")
     p.add_argument("--seed", type=int, required=True, help="random seed")
     p.add_argument("--output", required=True, help="netCDF file to write")
@@ -97,13 +103,14 @@ def _add_sample(sub):
 def _run_sample(args):
     from rtemu import sampling
     from rtemu.instrument import load_instrument
+    from rtemu.teacher import load_teacher
 
     kwargs = {}
     if args.chunk_size:
         kwargs["chunk_size"] = args.chunk_size
     grid = sampling.read_levels_file(args.levels) if args.levels else None
     sampling.sample_to_netcdf(
-        load_instrument(args.instrument),
+        load_teacher(args.teacher) if args.teacher else load_instrument(args.instrument),
         args.output,
         count=args.count,
         seed=args.seed,
@@ -158,10 +165,15 @@ def _run_info(args):
 
 
 def _add_audit(sub):
-    p = sub.add_parser("audit", help="measure an emulator against the physics")
+    p = sub.add_parser("audit", help="measure an emulator against its teacher",
+                       description="Measure an emulator against its teacher: --teacher, else the brightness "
+                       "temperatures (and Jacobians) a --data file holds, else rtemu's physics.")
     p.add_argument("--model", required=True, help="rtemu ONNX bundle")
+    p.add_argument("--teacher", metavar="MODULE:NAME", default=None,
+                   help="the reference model, as for 'rtemu sample --teacher'")
     src = p.add_mutually_exclusive_group()
-    src.add_argument("--data", default=None, help="independent test netCDF (from 'rtemu sample')")
+    src.add_argument("--data", default=None, help="independent test netCDF (from 'rtemu sample'); reference "
+                     "values it holds are used unless --teacher is given")
     src.add_argument("--count", type=int, default=None, help="draw this many new test profiles")
     p.add_argument("--seed", type=int, default=None, help="seed for --count")
     p.add_argument("--output", required=True, help="directory for the report")
@@ -173,10 +185,13 @@ def _add_audit(sub):
 
 def _run_audit(args):
     from rtemu import audit
+    from rtemu.teacher import load_teacher
 
     kwargs = {}
     if args.threshold is not None:
         kwargs["threshold"] = args.threshold
+    if args.teacher:
+        kwargs["reference"] = load_teacher(args.teacher)
     audit.run_audit(
         args.model,
         args.output,

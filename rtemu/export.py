@@ -318,7 +318,7 @@ def _envelope_json(bounds: dict, parts: list[dict], channel_ids) -> dict:
 
 
 def _metadata(*, layout, config, instrument, channel_ids, grid, bounds, parts, limits, margins,
-              stats, recipe_name, recipe_toml, recipes, data_sha, tropopause=None) -> dict:
+              stats, recipe_name, recipe_toml, recipes, data_sha, teacher, tropopause=None) -> dict:
     import rtemu
 
     limit_names = ["mahalanobis_squared"] + [f"reconstruction_squared_{name}" for name, k in config.blocks() if k]
@@ -367,6 +367,10 @@ def _metadata(*, layout, config, instrument, channel_ids, grid, bounds, parts, l
         "rtemu.recipe_toml": recipe_toml,
         "rtemu.recipes": json.dumps(recipes, sort_keys=True),
         "rtemu.training_data_sha256": data_sha,
+        # The model the emulator learned: the physics fallback and the audit's default
+        # reference are right only for rtemu's physics.
+        "rtemu.teacher": teacher[0],
+        "rtemu.teacher_version": teacher[1],
     }
     return meta
 
@@ -404,7 +408,8 @@ def build_bundle_model(emu: TrainedEmulator, *, base=None, dtype=np.float32):
     new_stats = {}
     for cid in emu.channel_ids:
         new_stats[cid] = dict(emu.channels[cid].stats, recipe=emu.recipe.name,
-                              recipe_sha256=emu.recipe.sha256, training_data_sha256=emu.data_sha256)
+                              recipe_sha256=emu.recipe.sha256, training_data_sha256=emu.data_sha256,
+                              teacher_version=emu.teacher[1])
     if base is None:
         shared, bounds = _shared_from_emulator(emu)
         ids = list(emu.channel_ids)
@@ -469,7 +474,8 @@ def build_bundle_model(emu: TrainedEmulator, *, base=None, dtype=np.float32):
     meta = _metadata(layout=layout, config=cfg, instrument=instrument, channel_ids=ids,
                      grid=emu.pressure_hpa, bounds=bounds, parts=parts, limits=limits, margins=margins,
                      stats=stats, recipe_name=recipe_name, recipe_toml=recipe_toml, recipes=recipes,
-                     data_sha=data_sha, tropopause=_tropopause_json(shared, emu.pressure_hpa))
+                     data_sha=data_sha, teacher=emu.teacher,
+                     tropopause=_tropopause_json(shared, emu.pressure_hpa))
     return _finish(model, meta), layout
 
 
@@ -538,6 +544,9 @@ def _check_update(base, training, recipe) -> None:
     if recipe_features != bundle_features:
         raise ValueError(f"update: recipe {recipe.source} [features] {recipe_features} differ from the "
                          f"bundle's {bundle_features} (rule: the shared transform is fixed by the first training)")
+    if training.teacher[0] != base.teacher[0]:
+        raise ValueError(f"update: the bundle emulates teacher {base.teacher[0]!r}, the training data comes from "
+                         f"{training.teacher[0]!r} (rule: one teacher per bundle)")
     data_inst = training.instrument
     missing = [c for c in base.channel_ids if c not in data_inst.channel_ids]
     if missing:

@@ -32,6 +32,7 @@ from rtemu import physics as _physics
 from rtemu._checks import onto_grid, prepare_inputs
 from rtemu.instrument import Instrument, load_instrument
 from rtemu.levels import GRID_TOLERANCE_HPA
+from rtemu.teacher import PHYSICS_TEACHER
 
 ErrorMode = Literal["raise", "mask"]
 
@@ -135,6 +136,9 @@ class PhysicalOperator(_OperatorBase):
         Default: compute on the caller's levels.
     """
 
+    #: Its identity as a teacher (recorded in the training sets it makes).
+    name, version = PHYSICS_TEACHER
+
     def __init__(self, instrument, *, errors: ErrorMode = "mask", block_size: int = _physics.DEFAULT_BLOCK_SIZE,
                  grid_hpa=None):
         self.instrument = load_instrument(instrument)
@@ -206,7 +210,8 @@ class EmulatedOperator(_OperatorBase):
         * ``None``: flagged profiles keep emulated values (and their flags).
         * ``"physics"``: profiles outside the training envelope (flag bits
           ``outside_training_bounds`` or ``novel_state``) are recomputed with the physical
-          model and get the ``physics_fallback`` bit.
+          model and get the ``physics_fallback`` bit. Only for a bundle whose teacher is
+          rtemu's physics (:attr:`rtemu.bundle.Bundle.teacher`).
     errors : {"mask", "raise"}
         * ``"mask"`` (default): invalid profiles get NaN outputs and ``invalid_input``.
         * ``"raise"``: invalid input raises ValueError.
@@ -242,6 +247,10 @@ class EmulatedOperator(_OperatorBase):
         self.grid_tolerance_hpa = float(grid_tolerance_hpa)
         self.regrid = bool(regrid)
         self.bundle = _bundle.read_bundle(self.path)
+        if fallback == "physics" and self.bundle.teacher[0] != PHYSICS_TEACHER[0]:
+            raise ValueError(f"fallback='physics': {self.path} emulates teacher {self.bundle.teacher[0]!r}, not "
+                             "rtemu's physics (rule: the fallback recomputes with rtemu's physics, so only for "
+                             "emulators of it)")
         self.model_instrument = self.bundle.instrument
         model_ids = self.model_instrument.channel_ids
         self.instrument = (

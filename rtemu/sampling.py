@@ -38,6 +38,7 @@ from scipy.stats import qmc
 
 from rtemu import atmosphere as atm
 from rtemu import flags, physics
+from rtemu import teacher as _teacher
 from rtemu._io import atomic_path, write_text_atomic
 from rtemu._units import unit_conversion
 from rtemu._warnings import RtemuWarning
@@ -1104,9 +1105,12 @@ _CHUNK_PATTERN = "chunk-{:06d}.h5"
 
 
 def _compute_chunk(instrument_toml: str, seed: int, start: int, count: int, grid: np.ndarray,
-                   jacobian: bool, absorption_tables=None) -> dict:
+                   jacobian: bool, absorption_tables=None, teacher=None,
+                   teacher_spec: tuple[str, str] | None = None) -> dict:
     """States and model outputs of one chunk, as plain arrays (runs on a worker).
 
+    The model: ``teacher`` (an object, in this process), the teacher imported from
+    ``teacher_spec`` = (MODULE:NAME, directory), or else rtemu's physics of the instrument.
     ``absorption_tables`` are the arrays of the instrument's table file, if it names one
     (its TOML holds their digest, checked here).
     """
@@ -1114,17 +1118,30 @@ def _compute_chunk(instrument_toml: str, seed: int, start: int, count: int, grid
     states = draw_states(count, seed=seed, pressure_hpa=grid, start=start, channels=inst)
     inputs = states[["air_pressure", "air_temperature", "specific_humidity", "surface_temperature",
                      "surface_emissivity", "sensor_zenith_angle", "surface_air_pressure"]]
-    out = physics.simulate(inst, inputs, jacobian=jacobian)
+    if teacher_spec is not None:
+        teacher = _imported_teacher(*teacher_spec)
+    if teacher is None:
+        out = physics.simulate(inst, inputs, jacobian=jacobian)
+    else:
+        out = _teacher.checked_simulate(teacher, inputs, jacobian)
     arrays = {name: states[name].values for name in STATE_VARIABLES}
     for name in out.data_vars:
         arrays[name] = out[name].values
     return arrays
 
 
-def _arguments(inst: Instrument, count, seed, grid, jacobian, chunk_size) -> dict:
+@functools.lru_cache(maxsize=4)
+def _imported_teacher(spec: str, directory: str):
+    """One import of a teacher per worker process (a model may be costly to set up)."""
+    return _teacher.load_teacher(spec, directory)
+
+
+def _arguments(inst: Instrument, identity, count, seed, grid, jacobian, chunk_size) -> dict:
     toml = inst.to_toml()
     return {
         "generator_version": GENERATOR_VERSION,
+        "teacher": identity[0],
+        "teacher_version": identity[1],
         "instrument": inst.name,
         "instrument_toml_sha256": hashlib.sha256(toml.encode("utf-8")).hexdigest(),
         "count": count,
@@ -1267,7 +1284,7 @@ def _run_chunks(tasks: list[tuple[int, object, dict]], client, on_done) -> None:
 
 
 def sample_to_netcdf(
-    instrument,
+    teacher,
     output,
     *,
     count: int,
@@ -1279,7 +1296,7 @@ def sample_to_netcdf(
     chunk_size: int = 4096,
     progress: bool = True,
 ) -> Path:
-    """Draw ``count`` states, run the physical model on them and write one netCDF file.
+    """Draw ``count`` states, run the teacher (by default the physics) on them, write one netCDF file.
 
     The work is split into fixed chunks of ``chunk_size`` profiles (independent of the
     worker count). Each finished chunk is saved atomically in ``<output>.chunks/`` with
@@ -1291,8 +1308,12 @@ def sample_to_netcdf(
 
     Parameters
     ----------
-    instrument : Instrument or str
-        The instrument or its name/path.
+    teacher : Instrument, str or Teacher
+        An instrument or its shipped name/path: rtemu's physical model of it. Or any
+        object in the :class:`rtemu.Teacher` protocol, run in this process; one from
+        :func:`rtemu.load_teacher` (``MODULE:NAME``) also runs in worker processes, which
+        import it by that name. Finished chunks are reused while the teacher's name and
+        version (:func:`rtemu.teacher.teacher_identity`) stay the same.
     output : str or os.PathLike
         The netCDF file to write.
     count : int
@@ -1305,7 +1326,8 @@ def sample_to_netcdf(
         Also write the ``jacobian_*`` variables.
     workers : int, optional
         Local worker processes (dask.distributed LocalCluster, one thread each); None or
-        1 computes in this process.
+        1 computes in this process (the only choice for a teacher object not imported
+        by name).
     scheduler : str, optional
         Address of a running dask.distributed scheduler (instead of ``workers``). The
         workers need rtemu installed; results come back to this process, which writes
@@ -1332,11 +1354,18 @@ def sample_to_netcdf(
     ``jacobian_surface_temperature``, ``jacobian_surface_emissivity`` (profile,
     channel); coordinates ``profile`` (index) and ``channel`` (ids); CF attributes.
     Global attributes: ``Conventions``, ``title``, ``rtemu_generator_version``,
+    ``rtemu_teacher``, ``rtemu_teacher_version`` (the model that made the outputs),
     ``rtemu_instrument``, ``rtemu_instrument_toml``, ``rtemu_seed``, ``rtemu_count``,
     ``rtemu_jacobian``, ``rtemu_envelope`` (nominal, JSON),
-    ``rtemu_covered_envelope`` (JSON). No creation time: equal arguments give equal bytes.
+    ``rtemu_covered_envelope`` (JSON), and ``rtemu_teacher_refused`` when the teacher
+    returned non-finite values for some entries (flagged ``invalid_input``; also an
+    RtemuWarning). No creation time: equal arguments give equal bytes.
     """
-    inst = load_instrument(instrument)
+    if isinstance(teacher, (Instrument, str, os.PathLike)):
+        inst, model, identity = load_instrument(teacher), None, _teacher.PHYSICS_TEACHER
+    else:
+        model = _teacher.check_teacher(teacher)
+        inst, identity = model.instrument, _teacher.teacher_identity(model)
     count = _check_count(count)
     seed = _check_seed(seed)
     if count > MAX_PROFILES:
@@ -1353,7 +1382,11 @@ def sample_to_netcdf(
     output = Path(output)
     side = output.with_name(output.name + ".chunks")
 
-    arguments = _arguments(inst, count, seed, grid, jacobian, chunk_size)
+    spec = (model.spec, model.path) if isinstance(model, _teacher.ImportedTeacher) else None
+    if model is not None and spec is None and (scheduler is not None or workers not in (None, 1)):
+        raise ValueError(f"teacher {identity[0]}: an object runs in this process only (rule: for worker "
+                         "processes give the teacher as MODULE:NAME, rtemu.load_teacher)")
+    arguments = _arguments(inst, identity, count, seed, grid, jacobian, chunk_size)
     arguments_hash = _arguments_hash(arguments)
     _prepare_chunk_dir(side, arguments)
     chunks = [(i, s, min(chunk_size, count - s)) for i, s in enumerate(range(0, count, chunk_size))]
@@ -1375,6 +1408,11 @@ def sample_to_netcdf(
     try:
         if todo:
             with _dask_client(workers, scheduler) as (client, shared_files):
+                # Worker processes import the teacher by name; this process uses the object.
+                if client is None:
+                    job["teacher"] = model
+                else:
+                    job["teacher_spec"] = spec
                 if client is not None and shared_files:
                     # Local workers save their own chunks: no result crosses the network.
                     tasks = [(i, _compute_chunk_to_file,
@@ -1421,6 +1459,7 @@ def _assemble(output: Path, inst: Instrument, chunk_paths: list[Path], grid: np.
     sizes = {"profile": count, "level": grid.size, "channel": len(inst.channels)}
     profile_chunk = min(chunk_size, count)
     envelope = None
+    refused = 0  # entries the teacher gave no finite value for (drawn states are all valid)
     with atomic_path(output, suffix=".nc.partial") as tmp:
         with h5netcdf.File(tmp, "w") as f:
             f.dimensions = sizes
@@ -1450,14 +1489,20 @@ def _assemble(output: Path, inst: Instrument, chunk_paths: list[Path], grid: np.
                     variables[name][offset:offset + n] = arrays[name]
                 arrays["air_pressure"] = grid
                 envelope = _merge_envelopes(envelope, _envelope_of(arrays, kinds))
+                refused += int(np.count_nonzero(arrays["quality_flag"] & flags.INVALID_INPUT))
                 offset += n
             if offset != count:
                 raise ValueError(f"chunks hold {offset} profiles, expected {count}")
+            teacher = (arguments["teacher"], arguments["teacher_version"])
             f.attrs.update({
                 "Conventions": "CF-1.8",
                 "title": f"rtemu training set for {inst.name}",
-                "source": "rtemu.sampling.sample_to_netcdf (physical clear-sky model)",
+                "source": ("rtemu.sampling.sample_to_netcdf (physical clear-sky model)"
+                           if teacher == _teacher.PHYSICS_TEACHER else
+                           f"rtemu.sampling.sample_to_netcdf (teacher {teacher[0]} {teacher[1]})"),
                 "rtemu_generator_version": GENERATOR_VERSION,
+                "rtemu_teacher": teacher[0],
+                "rtemu_teacher_version": teacher[1],
                 "rtemu_instrument": inst.name,
                 "rtemu_instrument_toml": inst.to_toml(),
                 "rtemu_seed": np.int64(arguments["seed"]),
@@ -1466,6 +1511,13 @@ def _assemble(output: Path, inst: Instrument, chunk_paths: list[Path], grid: np.
                 "rtemu_envelope": json.dumps(envelope_description(), sort_keys=True),
                 "rtemu_covered_envelope": json.dumps(envelope, sort_keys=True),
             })
+            if refused:
+                f.attrs["rtemu_teacher_refused"] = np.int64(refused)
+    if refused:
+        warnings.warn(f"teacher {arguments['teacher']}: no finite output for {refused} of "
+                      f"{count * len(inst.channels)} (profile, channel) entries of valid drawn states; "
+                      "they are NaN with the invalid_input flag, and training leaves them out",
+                      RtemuWarning, stacklevel=3)
 
 
 def _variable(f, name, dims, dtype, attrs, profile_chunk):

@@ -55,6 +55,7 @@ from rtemu.features import (
     raw_features,
 )
 from rtemu.instrument import Instrument
+from rtemu.teacher import PHYSICS_TEACHER
 
 #: Recipe ``[features] instrument_kernels``: none, one kernel term per sub-band of every
 #: channel, or one per channel (its sub-bands' weighted geometric-mean coefficients).
@@ -429,6 +430,10 @@ class TrainingData:
         Physical Jacobians dBT/dT [K K-1] and dBT/dq [K (kg kg-1)-1], float32, shape
         (N, C, L), levels surface-first; read only on request (``load_training_data(...,
         jacobians=True)``), for recipes with a Jacobian term (``jacobian_weight`` > 0).
+    teacher : (str, str)
+        Name and version of the model that computed the outputs (file attributes
+        ``rtemu_teacher``, ``rtemu_teacher_version``; without them rtemu's physics,
+        version ``"unrecorded"``).
     """
 
     instrument: Instrument
@@ -444,6 +449,7 @@ class TrainingData:
     source: str
     jacobian_air_temperature: Any = None
     jacobian_specific_humidity: Any = None
+    teacher: tuple = (PHYSICS_TEACHER[0], "unrecorded")
 
     @property
     def n_profiles(self) -> int:
@@ -552,7 +558,8 @@ def _read_training(ds: xr.Dataset, source: str, sha: str | None, jacobians: bool
         surface_temperature=ts, surface_emissivity=em, sensor_zenith_angle=zen,
         brightness_temperature=bt, usable=usable,
         sha256=sha or _arrays_sha256(ds[[n for n in ("air_pressure", *_STATE, "brightness_temperature")]]),
-        source=source, **jac,
+        source=source, teacher=(str(ds.attrs.get("rtemu_teacher", PHYSICS_TEACHER[0])),
+                                str(ds.attrs.get("rtemu_teacher_version", "unrecorded"))), **jac,
     )
 
 
@@ -904,6 +911,7 @@ class TrainedEmulator:
     recipe: Any
     data_sha256: str
     data_source: str
+    teacher: tuple  # (name, version) of the model the training data came from
 
     def predict(self, air_temperature, specific_humidity, surface_temperature, surface_emissivity,
                 sensor_zenith_angle) -> np.ndarray:
@@ -1093,7 +1101,7 @@ def fit_emulator(data, recipe, *, channels=None, transform=None, workers=None, p
     return TrainedEmulator(
         instrument=inst, channel_ids=ids, pressure_hpa=data.pressure_hpa, config=config,
         transform=transform, envelope=envelope, channels={c: fits[c] for c in ids}, recipe=recipe,
-        data_sha256=data.sha256, data_source=data.source,
+        data_sha256=data.sha256, data_source=data.source, teacher=data.teacher,
     )
 
 
