@@ -79,6 +79,12 @@ class Teacher(Protocol):
         ``jacobian_surface_temperature`` [K K-1] and ``jacobian_surface_emissivity``
         [K] (profile, channel). NaN marks a profile the model refuses. A
         ``quality_flag`` (profile, channel) of :mod:`rtemu.flags` bits is optional.
+
+        The dataset may carry ``surface_air_pressure`` (profile) [hPa], the ground
+        (drawn states over terrain have it): the model must compute on the column above
+        it (:func:`rtemu.levels.cut_at_surface` gives rtemu's rule) with zero Jacobians
+        below it, or return NaN for those profiles. A model that ignores it learns its
+        emulator wrong numbers over terrain.
         """
         ...
 
@@ -272,7 +278,7 @@ def checked_simulate(teacher, dataset: xr.Dataset, jacobian: bool = False, *,
 def _as_teacher_input(dataset: xr.Dataset, channels) -> xr.Dataset:
     """``dataset`` in canonical units (hPa, K, kg kg-1, 1, degree), channels in the teacher's order."""
     converted = {}
-    for name in INPUT_VARIABLES:
+    for name in INPUT_VARIABLES + tuple(n for n in ("surface_air_pressure",) if n in dataset.variables):
         var = dataset.variables[name]
         scale, offset = unit_conversion(name, var.attrs.get("units"))
         if (scale, offset) != (1.0, 0.0) or var.attrs.get("units") != CANONICAL_UNITS[name]:
