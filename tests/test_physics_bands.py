@@ -324,4 +324,4 @@ def test_sampling_job_with_tables(tmp_path):
 def physics_input_names():
     from rtemu._checks import INPUT_VARIABLES
 
-    return INPUT_VARIABLES
+    return INPUT_VARIABLES + ("surface_air_pressure",)  # drawn states carry their ground
