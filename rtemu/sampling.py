@@ -38,7 +38,8 @@ from scipy.stats import qmc
 
 from rtemu import atmosphere as atm
 from rtemu import flags, physics
-from rtemu._io import atomic_path, write_text_atomic
+from rtemu._io import (assembly_size, atomic_path, check_space, exclusive_output, remove_partials,
+                      write_bytes_atomic, write_text_atomic)
 from rtemu._units import unit_conversion
 from rtemu._warnings import RtemuWarning
 from rtemu.constants import DRY_AIR_GAS_CONSTANT, EPSILON, STANDARD_GRAVITY
@@ -878,15 +879,22 @@ def _chunk_ready(path: Path, expected_hash: str) -> bool:
 
 
 def _write_chunk(path: Path, arrays: dict, index: int, arguments_hash: str) -> None:
-    """One finished chunk as plain HDF5 datasets (an internal file, not netCDF)."""
+    """One finished chunk as plain HDF5 datasets (an internal file, not netCDF).
+
+    Built in memory and written with plain file I/O (a full disk gives a clean OSError,
+    see rtemu._io.to_netcdf_atomic).
+    """
+    import io
+
     import h5py
 
-    with atomic_path(path, suffix=".partial") as tmp:
-        with h5py.File(tmp, "w") as f:
-            f.attrs["rtemu_chunk_index"] = index
-            f.attrs["rtemu_arguments_sha256"] = arguments_hash
-            for name, values in arrays.items():
-                f.create_dataset(name, data=values, track_times=False)
+    buffer = io.BytesIO()
+    with h5py.File(buffer, "w") as f:
+        f.attrs["rtemu_chunk_index"] = index
+        f.attrs["rtemu_arguments_sha256"] = arguments_hash
+        for name, values in arrays.items():
+            f.create_dataset(name, data=values, track_times=False)
+    write_bytes_atomic(path, buffer.getvalue(), durable=False)
 
 
 def _compute_chunk_to_file(path: str, index: int, arguments_hash: str, *, start: int, count: int,
@@ -1039,39 +1047,41 @@ def sample_to_netcdf(
     output = Path(output)
     side = output.with_name(output.name + ".chunks")
 
-    arguments = _arguments(inst, count, seed, grid, jacobian, chunk_size)
-    arguments_hash = _arguments_hash(arguments)
-    _prepare_chunk_dir(side, arguments)
-    chunks = [(i, s, min(chunk_size, count - s)) for i, s in enumerate(range(0, count, chunk_size))]
-    paths = {i: side / _CHUNK_PATTERN.format(i) for i, _, _ in chunks}
-    todo = [c for c in chunks if not _chunk_ready(paths[c[0]], arguments_hash)]
+    with exclusive_output(output):
+        arguments = _arguments(inst, count, seed, grid, jacobian, chunk_size)
+        arguments_hash = _arguments_hash(arguments)
+        _prepare_chunk_dir(side, arguments)
+        remove_partials(side)  # of a job that died; we hold the output's lock
+        chunks = [(i, s, min(chunk_size, count - s)) for i, s in enumerate(range(0, count, chunk_size))]
+        paths = {i: side / _CHUNK_PATTERN.format(i) for i, _, _ in chunks}
+        todo = [c for c in chunks if not _chunk_ready(paths[c[0]], arguments_hash)]
 
-    from tqdm.auto import tqdm
+        from tqdm.auto import tqdm
 
-    bar = tqdm(total=len(chunks), initial=len(chunks) - len(todo), unit="chunk",
-               desc=f"rtemu sample {output.name}", disable=not progress)
+        bar = tqdm(total=len(chunks), initial=len(chunks) - len(todo), unit="chunk",
+                   desc=f"rtemu sample {output.name}", disable=not progress)
 
-    def on_done(index, arrays):
-        if arrays is not None:
-            _write_chunk(paths[index], arrays, index, arguments_hash)
-        bar.update(1)
+        def on_done(index, arrays):
+            if arrays is not None:
+                _write_chunk(paths[index], arrays, index, arguments_hash)
+            bar.update(1)
 
-    job = {"instrument_toml": inst.to_toml(), "seed": seed, "grid": grid, "jacobian": bool(jacobian)}
-    try:
-        if todo:
-            with _dask_client(workers, scheduler) as (client, shared_files):
-                if client is not None and shared_files:
-                    # Local workers save their own chunks: no result crosses the network.
-                    tasks = [(i, _compute_chunk_to_file,
-                              dict(path=str(paths[i]), index=i, arguments_hash=arguments_hash,
-                                   start=s, count=n, **job)) for i, s, n in todo]
-                else:
-                    tasks = [(i, _compute_chunk, dict(start=s, count=n, **job)) for i, s, n in todo]
-                _run_chunks(tasks, client, on_done)
-    finally:
-        bar.close()
-    _assemble(output, inst, [paths[i] for i, _, _ in chunks], grid, arguments, chunk_size)
-    _remove_chunk_dir(side)
+        job = {"instrument_toml": inst.to_toml(), "seed": seed, "grid": grid, "jacobian": bool(jacobian)}
+        try:
+            if todo:
+                with _dask_client(workers, scheduler) as (client, shared_files):
+                    if client is not None and shared_files:
+                        # Local workers save their own chunks: no result crosses the network.
+                        tasks = [(i, _compute_chunk_to_file,
+                                  dict(path=str(paths[i]), index=i, arguments_hash=arguments_hash,
+                                       start=s, count=n, **job)) for i, s, n in todo]
+                    else:
+                        tasks = [(i, _compute_chunk, dict(start=s, count=n, **job)) for i, s, n in todo]
+                    _run_chunks(tasks, client, on_done)
+        finally:
+            bar.close()
+        _assemble(output, inst, [paths[i] for i, _, _ in chunks], grid, arguments, chunk_size)
+        _remove_chunk_dir(side)
     return output
 
 
@@ -1106,6 +1116,7 @@ def _assemble(output: Path, inst: Instrument, chunk_paths: list[Path], grid: np.
     sizes = {"profile": count, "level": grid.size, "channel": len(inst.channels)}
     profile_chunk = min(chunk_size, count)
     envelope = None
+    check_space(output, assembly_size(chunk_paths))
     with atomic_path(output, suffix=".nc.partial") as tmp:
         with h5netcdf.File(tmp, "w") as f:
             f.dimensions = sizes
