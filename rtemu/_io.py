@@ -93,7 +93,12 @@ def to_netcdf_atomic(
     could not extend, leaves state that crashes the interpreter (segmentation fault).
     For files too large for memory see :func:`check_space`.
     """
-    data = dataset.to_netcdf(engine="h5netcdf", **kwargs)
+    import dask
+
+    # Synchronous: with a dask.distributed client active xarray would otherwise ask the
+    # cluster for a write lock on the in-memory target.
+    with dask.config.set(scheduler="synchronous"):
+        data = dataset.to_netcdf(engine="h5netcdf", **kwargs)
     with atomic_path(path, suffix=".nc.partial", durable=durable) as tmp:
         with open(tmp, "wb") as handle:
             handle.write(data)
