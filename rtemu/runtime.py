@@ -189,11 +189,15 @@ class EmulatedOperator(_OperatorBase):
         * ``"raise"``: invalid input raises ValueError.
     grid_tolerance_hpa : float
         Largest accepted difference between the dataset's and the bundle's levels [hPa].
+    key : str, os.PathLike or bytes, optional
+        Key file (or secret) of a keyed signature: the bundle must carry an HMAC-SHA256
+        signature that verifies with it (see :func:`rtemu.bundle.sign_bundle`). Without
+        it only the unkeyed digests are checked, which detect corruption, not authorship.
     """
 
     def __init__(self, *, path, channels=None, batch_size: int = 4096, threads: int | None = None,
                  fallback: Literal[None, "physics"] = None, errors: ErrorMode = "mask",
-                 grid_tolerance_hpa: float = 1e-3):
+                 grid_tolerance_hpa: float = 1e-3, key=None):
         from rtemu import bundle as _bundle
 
         if fallback not in (None, "physics"):
@@ -206,7 +210,7 @@ class EmulatedOperator(_OperatorBase):
         self.fallback = fallback
         self.errors = errors
         self.grid_tolerance_hpa = float(grid_tolerance_hpa)
-        self.bundle = _bundle.read_bundle(self.path)
+        self.bundle = _bundle.read_bundle(self.path, key=key)
         self.model_instrument = self.bundle.instrument
         model_ids = self.model_instrument.channel_ids
         self.instrument = (
