@@ -342,7 +342,7 @@ def test_report_states_rules_and_results(crafted_run):
         assert f"`{cid}`" in text
     for name in FIGURES:
         assert f"]({name})" in text
-    assert "2 of 3 channels pass" in text
+    assert "1 of 3 channels pass" in text
 
 
 # -- an emulator with realistic, unknown-in-advance errors ----------------------------------
