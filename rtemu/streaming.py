@@ -40,9 +40,22 @@ def _invalid_rules(summary: str, offset: int) -> list[dict]:
             for m in _PROBLEM.finditer(summary)]
 
 
-def _simulate_chunk(operator, input_path: str, jacobian: bool, start: int, stop: int) -> xr.Dataset:
+def _select_channels(block: xr.Dataset, channels) -> xr.Dataset:
+    """The input's per-channel values of the chosen ``channels`` (when the input has more)."""
+    if channels is None or "channel" not in block.coords:
+        return block
+    have = [str(c) for c in block["channel"].values]
+    missing = [c for c in channels if c not in have]
+    if missing:
+        raise ValueError(f"surface_emissivity: no values for channel(s) {missing} in the input "
+                         f"(it has {have}) (rule: one value per chosen channel)")
+    return block.sel(channel=list(channels))
+
+
+def _simulate_chunk(operator, input_path: str, jacobian: bool, start: int, stop: int,
+                    channels=None) -> xr.Dataset:
     with open_dataset(input_path) as ds:
-        block = ds.isel(profile=slice(start, stop)).load()
+        block = _select_channels(ds.isel(profile=slice(start, stop)), channels).load()
     out = operator.simulate(block, jacobian=jacobian)
     summary = out.attrs.pop("invalid_input_summary", "")
     out.attrs[_RULES_ATTR] = json.dumps(_invalid_rules(summary, start))
@@ -124,7 +137,7 @@ def simulate_file(
     chunk_size : int, optional
         Profiles per chunk (default 4096); part of the job's identity for resuming.
     channels : sequence of str, optional
-        Channel ids to compute (default all).
+        Channel ids to compute (default all); per-channel inputs are taken for these.
     fallback : {None, "physics"}
         With a model: profiles the emulator flags are computed by the physical model.
 
@@ -147,7 +160,7 @@ def simulate_file(
             raise ValueError(f"{input_path}: no profiles (rule: dimension 'profile' with at least one entry)")
         count = ds.sizes["profile"]
         # Structural problems (missing variables, units, dims) fail now, not in a worker.
-        operator.simulate(ds.isel(profile=slice(0, 1)).load(), jacobian=False)
+        operator.simulate(_select_channels(ds.isel(profile=slice(0, 1)), channels).load(), jacobian=False)
     if model is not None:
         operator_id = {"model_sha256": _sha256(model)}
     else:
@@ -168,7 +181,8 @@ def simulate_file(
         "input_file": input_path.name,
     }
     attrs = functools.partial(_final_attrs, base_attrs, total=count)
-    compute = functools.partial(_simulate_chunk, operator, str(input_path), jacobian)
+    compute = functools.partial(_simulate_chunk, operator, str(input_path), jacobian,
+                                channels=None if channels is None else list(operator.channels))
     return run_chunked(
         output_path,
         count=count,
