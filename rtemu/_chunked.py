@@ -22,8 +22,8 @@ from typing import Callable
 import dask
 import xarray as xr
 
-from rtemu._io import (assembly_size, atomic_path, check_space, exclusive_output, open_dataset, remove_partials, to_netcdf_atomic,
-                      write_text_atomic)
+from rtemu._io import (assembly_size, atomic_path, check_space, exclusive_output, open_dataset,
+                      remove_partials, to_netcdf_atomic, write_text_atomic)
 
 MANIFEST = "manifest.json"
 

@@ -982,6 +982,9 @@ def sample_to_netcdf(
     with other arguments discards the old chunks (with an RtemuWarning) and starts
     over. The final file is assembled by streaming the chunks, one at a time, into a
     temporary file that is renamed onto ``output``; then the chunk directory is removed.
+    The job holds :func:`rtemu._io.exclusive_output` on ``output`` throughout: a second
+    job on the same output is refused naming this one, and only this job touches the
+    chunk directory.
 
     Parameters
     ----------

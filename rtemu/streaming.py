@@ -62,7 +62,7 @@ def _simulate_chunk(operator, input_path: str, jacobian: bool, start: int, stop:
     return out
 
 
-def invalid_input_summary(rules: list[dict], invalid: int, total: int) -> str:
+def _summary_line(rules: list[dict], invalid: int, total: int) -> str:
     """One line: how many profiles are invalid, then per rule its count and first profile."""
     parts = [f"{r['rule']} ({r['count']} profile(s), first index {r['first']})" for r in rules]
     return f"{invalid} of {total} profile(s) invalid: " + " | ".join(parts)
@@ -81,7 +81,7 @@ def _final_attrs(base: dict, chunk_attrs: list[dict], total: int) -> dict:
         # Each profile counts under its first failed rule (prepare_inputs), so the sum is exact.
         invalid = sum(r["count"] for r in rules)
         attrs["invalid_input_count"] = invalid
-        attrs["invalid_input_summary"] = invalid_input_summary(rules, invalid, total)
+        attrs["invalid_input_summary"] = _summary_line(rules, invalid, total)
     else:
         attrs["invalid_input_count"] = 0
     attrs["profile_count"] = total
