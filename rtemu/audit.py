@@ -1126,8 +1126,9 @@ def _report(summary: dict, examples: dict) -> str:
     for name in summary["figures"]:
         lines += [f"![{captions.get(name, name)}]({name})", "", captions.get(name, ""), ""]
     if examples:
-        lines.append("Typical profiles (nearest the 10 %, 50 % and 90 % quantiles of column water among fully "
-                     "unflagged profiles): "
+        lines.append("Typical profiles (nearest the 10 %, 50 % and 90 % quantiles of column water among the "
+                     f"{summary['profiles_fully_unflagged']} fully unflagged profiles of {summary['profiles']}; "
+                     "when many are flagged they are not typical of the whole test set): "
                      + ", ".join(f"{k} = row {v['row']} ({v['tcwv']:.1f} kg m-2)" for k, v in examples.items())
                      + ".")
     lines += ["", "Per-profile errors: `audit.nc`; every number of this report: `summary.json`.", ""]

@@ -256,8 +256,16 @@ def _run_demo(args):
     demo.run_demo(args.output, progress=not args.quiet)
 
 
+class _Parser(argparse.ArgumentParser):
+    """argparse with the one-line error of every other rtemu failure."""
+
+    def error(self, message):
+        print(f"rtemu: error: {_one_line(message)} (see '{self.prog} --help')", file=sys.stderr)
+        sys.exit(EXIT_ERROR)
+
+
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="rtemu",
         description="Fast, audited emulators of a clear-sky radiance observation operator.",
     )
@@ -266,7 +274,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"rtemu {__version__}")
     parser.add_argument("--debug", action="store_true",
                         help="on an error, print the full traceback (anywhere on the command line)")
-    sub = parser.add_subparsers(dest="command", required=True)
+    sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
     for add in (_add_demo, _add_instruments, _add_simulate, _add_sample, _add_train, _add_info,
                 _add_sign, _add_audit):
         add(sub)

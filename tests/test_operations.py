@@ -453,3 +453,9 @@ def test_metadata_of_unreasonable_size_is_refused_before_parsing(tiny_bundle, tm
     monkeypatch.setattr(rb.json, "loads", lambda *a, **k: pytest.fail("metadata parsed"))
     with pytest.raises(rb.BundleError, match="bytes of metadata.*refused before parsing"):
         rb.read_bundle(target)
+
+
+def test_usage_errors_are_one_line_too(tmp_path):
+    line = one_line_error(run_cli("simulate", "--instrument", "demo-sounder", "--input", tmp_path / "x.nc"))
+    assert "--output" in line and "rtemu simulate --help" in line
+    assert "invalid choice" in one_line_error(run_cli("simulate", "--fallback", "magic"))
