@@ -493,8 +493,8 @@ def describe(path, key=None) -> str:
         f"  recipe             {b.recipe_name} (sha256 {hashlib.sha256(b.recipe_toml.encode()).hexdigest()[:16]}...)",
         f"  training data      sha256 {b.training_data_sha256}",
         f"  weights            sha256 {b.weights_sha256}",
-        "  integrity          SHA-256 digests of graph, weights and metadata match: no corruption. They "
-        "are unkeyed and do not show who made the file",
+        "  integrity          SHA-256 digests of graph, weights and metadata match (no corruption detected); "
+        "they are unkeyed, anyone editing the file can recompute them, so they do not show who made the file",
         "  signature          " + ("HMAC-SHA256, verified with the given key: made by a holder of the key"
                                    if key is not None else
                                    "HMAC-SHA256 present, not checked (give --key KEYFILE)" if signed else
