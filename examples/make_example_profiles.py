@@ -13,7 +13,7 @@ Usage:  python examples/make_example_profiles.py [OUTPUT]   (default examples/da
 
 from __future__ import annotations
 
-import sys
+import argparse
 from pathlib import Path
 
 import numpy as np
@@ -52,8 +52,10 @@ def make_profiles():
 
 
 def main(argv=None):
-    argv = sys.argv[1:] if argv is None else argv
-    output = Path(argv[0]) if argv else DEFAULT_OUTPUT
+    parser = argparse.ArgumentParser(description="Write the example profile file (INVENTED scenario).")
+    parser.add_argument("output", nargs="?", type=Path, default=DEFAULT_OUTPUT,
+                        help=f"netCDF file to write (default {DEFAULT_OUTPUT.relative_to(HERE.parent)})")
+    output = parser.parse_args(argv).output
     to_netcdf_atomic(make_profiles(), output)
     print(f"wrote {output}")
 

@@ -32,6 +32,7 @@ _LAZY = {
     "load_recipe": "rtemu.training",
     "list_recipes": "rtemu.training",
     "read_bundle": "rtemu.bundle",
+    "sign_bundle": "rtemu.bundle",
     "BundleError": "rtemu.bundle",
     # runtime
     "PhysicalOperator": "rtemu.runtime",
@@ -75,6 +76,7 @@ __all__ = [
     "load_recipe",
     "list_recipes",
     "read_bundle",
+    "sign_bundle",
     "BundleError",
     # runtime
     "PhysicalOperator",

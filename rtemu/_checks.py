@@ -2,12 +2,16 @@
 
 Every error names the variable, the rule and the first offending profile. With
 ``errors="mask"`` the physical-rule violations become a per-profile validity mask instead;
-structural problems (missing variables, wrong dims, unknown units, empty input) always raise.
+structural problems (missing variables, wrong dims, unknown units, empty input) and an input
+whose pressures or temperatures are implausible as a whole (a wrong unit label, see
+:data:`PLAUSIBLE_BOTTOM_MIN_HPA`, :data:`PLAUSIBLE_MEDIAN_TEMPERATURE_MIN_K`) always raise.
+Variables are found by name, or else by their CF ``standard_name`` attribute.
 """
 
 from __future__ import annotations
 
 import dataclasses
+import warnings
 from typing import Literal
 
 import numpy as np
@@ -31,6 +35,16 @@ HUMIDITY_MAX = 0.1  # [kg kg-1], exclusive
 ZENITH_MAX_DEG = 85.0
 SATURATION_TOLERANCE = 1e-6  # relative: a state projected onto saturation is not flagged
 PRESSURE_MAX_HPA = 1200.0  # above any observed sea-level pressure (about 1084 hPa)
+
+# Plausibility of a whole input (units, not single profiles). Beyond these bounds the input
+# is refused with "units?", in either error mode: a wrong unit label, not a bad profile.
+#: The median over profiles of the bottom level must lie below this height, i.e. at a
+#: larger pressure [hPa]: the highest surface on Earth is at about 330 hPa (common
+#: knowledge: Everest summit ~8.8 km), kPa labelled hPa puts it near 100.
+PLAUSIBLE_BOTTOM_MIN_HPA = 300.0
+#: The median of all air temperatures must exceed this [K]: the coldest mean stratosphere
+#: or mesosphere level in a profile is about 180 K; Celsius labelled K gives below 50.
+PLAUSIBLE_MEDIAN_TEMPERATURE_MIN_K = 150.0
 
 ErrorMode = Literal["raise", "mask"]
 
@@ -99,6 +113,38 @@ def _values(ds, name, order, take=None):
     return values * scale + offset, scale
 
 
+def _by_standard_name(dataset: xr.Dataset) -> xr.Dataset:
+    """Rename variables whose CF ``standard_name`` is an input variable missing by name."""
+    missing = [v for v in INPUT_VARIABLES if v not in dataset.variables]
+    if not missing:
+        return dataset
+    renames = {}
+    for wanted in missing:
+        found = [name for name, var in dataset.variables.items()
+                 if var.attrs.get("standard_name") == wanted and name not in INPUT_VARIABLES]
+        if len(found) > 1:
+            _fail(f"{wanted}: variables {sorted(map(str, found))} all have standard_name {wanted!r} "
+                  "(rule: one variable per input)")
+        if found:
+            renames[found[0]] = wanted
+    return dataset.rename_vars(renames) if renames else dataset
+
+
+def _check_plausible(p: np.ndarray, t: np.ndarray) -> None:
+    """Refuse a whole input whose pressures or temperatures point at a wrong unit label."""
+    with np.errstate(invalid="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN input: checked by the rules
+        bottom = np.nanmedian(np.nanmax(p, axis=1))
+        median_t = np.nanmedian(t)
+    if bottom < PLAUSIBLE_BOTTOM_MIN_HPA:
+        _fail(f"air_pressure: the bottom level lies at {bottom:.4g} hPa (median over profiles), above the "
+              f"{PLAUSIBLE_BOTTOM_MIN_HPA:g} hPa of any surface: units? (kPa labelled hPa, or a top-of-"
+              "atmosphere grid?) (rule: plausible units)")
+    if median_t < PLAUSIBLE_MEDIAN_TEMPERATURE_MIN_K:
+        _fail(f"air_temperature: median {median_t:.4g} K, below {PLAUSIBLE_MEDIAN_TEMPERATURE_MIN_K:g} K: "
+              "units? (Celsius labelled K?) (rule: plausible units)")
+
+
 def _first_bad(mask_rows: np.ndarray) -> int:
     return int(np.flatnonzero(mask_rows)[0])
 
@@ -125,6 +171,7 @@ def prepare_inputs(
         raise ValueError(f"errors must be 'raise' or 'mask', got {errors!r}")
     if not isinstance(dataset, xr.Dataset):
         raise ValueError(f"input must be an xarray.Dataset, got {type(dataset).__name__}")
+    dataset = _by_standard_name(dataset)
     missing = [v for v in INPUT_VARIABLES if v not in dataset.variables]
     if missing:
         _fail(f"input dataset is missing variable(s) {missing} (rule: all of {list(INPUT_VARIABLES)} are required)")
@@ -183,6 +230,7 @@ def prepare_inputs(
     em = np.broadcast_to(em.reshape(n, -1), (n, nchan)).copy() if em.ndim == 1 else em
     ps, ps_scale = _values(ds, "surface_air_pressure", ("profile",)) if terrain else (None, None)
 
+    _check_plausible(p, t)
     bad = np.zeros(n, dtype=bool)
     problems: list[str] = []
 

@@ -22,7 +22,8 @@ from typing import Callable
 import dask
 import xarray as xr
 
-from rtemu._io import atomic_path, open_dataset, to_netcdf_atomic, write_text_atomic
+from rtemu._io import (assembly_size, atomic_path, check_space, exclusive_output, open_dataset,
+                      remove_partials, to_netcdf_atomic, write_text_atomic)
 
 MANIFEST = "manifest.json"
 
@@ -96,6 +97,7 @@ def run_chunked(
     progress: bool = True,
     description: str = "chunks",
     attrs: dict | None = None,
+    inputs=(),
 ) -> Path:
     """Run ``compute_chunk(start, stop)`` over all chunks and assemble ``output``.
 
@@ -109,13 +111,27 @@ def run_chunked(
         Local dask worker processes; None or 1 runs in this process.
     scheduler : str, optional
         Address of a dask.distributed scheduler (takes precedence over ``workers``).
-    attrs : dict, optional
-        Global attributes of the final file.
+    attrs : dict or callable, optional
+        Global attributes of the final file, or a function of the list of the chunks'
+        attributes returning them.
+    inputs : iterable of path
+        Files the job reads: ``output`` may not be one of them.
+
+    The job holds :func:`rtemu._io.exclusive_output` on ``output`` throughout: a second
+    job on the same output is refused, and the chunk folder is only touched by this job.
     """
+    with exclusive_output(output, inputs):
+        return _run_locked(Path(output), count=count, chunk_size=chunk_size, compute_chunk=compute_chunk,
+                           job=job, workers=workers, scheduler=scheduler, progress=progress,
+                           description=description, attrs=attrs)
+
+
+def _run_locked(output: Path, *, count, chunk_size, compute_chunk, job, workers, scheduler, progress,
+                description, attrs) -> Path:
     from tqdm.auto import tqdm
 
-    output = Path(output)
     side = _side_directory(output, fingerprint(job))
+    remove_partials(side)  # of a job that died; we hold the output's lock
     bounds = chunk_bounds(count, chunk_size)
     paths = [side / f"chunk-{i:06d}.nc" for i in range(len(bounds))]
     todo = [i for i, p in enumerate(paths) if not _readable(p)]
@@ -159,6 +175,12 @@ def run_chunked(
                 bar.update()
     finally:
         bar.close()
+    if callable(attrs):
+        chunk_attrs = []
+        for path in paths:
+            with open_dataset(path) as part:
+                chunk_attrs.append(dict(part.attrs))
+        attrs = attrs(chunk_attrs)
     assemble(paths, output, attrs=attrs)
     shutil.rmtree(side)
     return output
@@ -166,6 +188,7 @@ def run_chunked(
 
 def assemble(paths: list[Path], output: Path, attrs: dict | None = None) -> None:
     """Concatenate chunk files along ``profile`` into ``output`` by streaming."""
+    check_space(output, assembly_size(paths))
     parts = [open_dataset(p, chunks={}) for p in paths]
     try:
         combined = xr.concat(parts, dim="profile", data_vars="minimal", coords="minimal",

@@ -192,7 +192,8 @@ def jacobian_profiles(examples: dict, channels, which: str) -> bytes:
 
 
 def _relative(value: float) -> str:
-    return f"{value:.2%}" if value < 10.0 else f"{value:.3g}"
+    """A relative error as a plain ratio [1], the same unit at every size (0.0227, 1.19e+04)."""
+    return f"{value:.3g}"
 
 
 def _power_of_ten(values) -> tuple[float, str]:

@@ -3,16 +3,25 @@
 A bundle is an ONNX model whose ``metadata_props`` carry everything needed to use and audit
 it (keys prefixed ``rtemu.``, see :data:`REQUIRED_KEYS`). :func:`read_bundle` refuses, with
 a :class:`BundleError` (a ValueError) that says why, any file that is truncated or
-corrupted, not made by rtemu, written by a newer rtemu format, inconsistent, or whose
+corrupted, not made by rtemu, written by a newer rtemu format, inconsistent, split over
+external data files (a bundle is one file), with metadata of unreasonable size, or whose
 weights, graph or metadata do not match the SHA-256 digests stored at export.
 No code-executing format is involved: the file is protobuf, the metadata JSON and TOML.
+
+What the digests prove: they are unkeyed, so they detect corruption (a damaged download,
+a truncated copy, a flipped bit), not authorship: anyone can edit a bundle and recompute
+them. Authorship needs a secret: :func:`sign_bundle` adds an HMAC-SHA256 signature with
+a key file, and ``read_bundle(path, key=...)`` verifies it (``rtemu sign``, ``rtemu info
+--key``, ``EmulatedOperator.load(path, key=...)``).
 """
 
 from __future__ import annotations
 
 import dataclasses
 import hashlib
+import hmac
 import json
+import os
 from pathlib import Path
 
 import numpy as np
@@ -24,7 +33,7 @@ from rtemu.instrument import Instrument
 from rtemu.teacher import PHYSICS_TEACHER
 
 __all__ = ["FORMAT_VERSION", "Bundle", "BundleError", "read_bundle", "describe", "make_session",
-           "weights_sha256"]
+           "weights_sha256", "sign_bundle", "SIGNATURE_KEY"]
 
 #: Bundle format written by this rtemu; files with a larger number are refused.
 FORMAT_VERSION = 6
@@ -53,6 +62,16 @@ REQUIRED_KEYS = (
     "rtemu.content_sha256",
     "rtemu.metadata_sha256",
 )
+#: Metadata key of the optional keyed signature (HMAC-SHA256, hex; see :func:`sign_bundle`).
+SIGNATURE_KEY = "rtemu.signature_hmac_sha256"
+#: Largest bundle file read [bytes]: protobuf's own limit for one message (2 GiB).
+MAX_FILE_BYTES = 2**31 - 1
+#: Largest total size of the ``rtemu.*`` metadata strings parsed [bytes]; the metadata of
+#: the full recipe on 16 channels take well under 1 MB.
+MAX_METADATA_BYTES = 16 * 2**20
+#: Shortest accepted signing key [bytes] (RFC 2104: keys shorter than the hash output, 32
+#: bytes for SHA-256, are discouraged).
+MIN_KEY_BYTES = 32
 _JSON_KEYS = ("rtemu.channels", "rtemu.pressure_hpa", "rtemu.inputs", "rtemu.outputs", "rtemu.graph",
               "rtemu.features", "rtemu.envelope", "rtemu.flag_thresholds", "rtemu.flag_meanings",
               "rtemu.channel_stats", "rtemu.recipes")
@@ -165,16 +184,82 @@ def content_sha256(model: onnx.ModelProto) -> str:
 
 def metadata_sha256(props: dict) -> str:
     """SHA-256 of all ``rtemu.*`` metadata except the digests themselves, in key order."""
-    skip = {"rtemu.metadata_sha256"}
+    skip = {"rtemu.metadata_sha256", SIGNATURE_KEY}
     text = json.dumps({k: v for k, v in sorted(props.items()) if k.startswith(PREFIX) and k not in skip},
                       sort_keys=True, ensure_ascii=True)
     return hashlib.sha256(text.encode("ascii")).hexdigest()
+
+
+# ---- keyed signature ----------------------------------------------------------------------
+def _read_key(key) -> bytes:
+    """The secret of ``key``: bytes as given, or the bytes of a key file (path)."""
+    if isinstance(key, (bytes, bytearray)):
+        secret = bytes(key)
+        where = "the key"
+    else:
+        where = f"key file {key}"
+        try:
+            secret = Path(key).read_bytes()
+        except OSError as exc:
+            raise BundleError(f"{where}: cannot be read ({exc.strerror or exc})") from None
+    if len(secret) < MIN_KEY_BYTES:
+        raise BundleError(f"{where}: {len(secret)} bytes, a signing key needs at least {MIN_KEY_BYTES} "
+                          "(e.g. 'head -c 32 /dev/urandom > KEYFILE')")
+    return secret
+
+
+def _signature(model: onnx.ModelProto, props: dict, secret: bytes) -> str:
+    """HMAC-SHA256 over the graph and weights (content digest) and all other rtemu metadata."""
+    message = b"rtemu bundle signature v1\0" + content_sha256(model).encode() + b"\0" + \
+        metadata_sha256(props).encode()
+    return hmac.new(secret, message, hashlib.sha256).hexdigest()
+
+
+def sign_bundle(path, *, key) -> str:
+    """Add (or replace) the keyed signature of the bundle at ``path``; returns it (hex).
+
+    The bundle is checked first (:func:`read_bundle`) and rewritten atomically. The
+    signature (HMAC-SHA256 under the secret in ``key``) covers the graph, the weights and
+    every other ``rtemu.*`` metadata string; only a holder of the key can make one that
+    verifies.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+    key : str, os.PathLike or bytes
+        Key file (its raw bytes are the secret, at least 32) or the secret itself.
+    """
+    from rtemu._io import write_bytes_atomic
+
+    secret = _read_key(key)
+    read_bundle(path)
+    model, props = _load_checked(Path(path))
+    signature = _signature(model, props, secret)
+    kept = [p for p in model.metadata_props if p.key != SIGNATURE_KEY]
+    del model.metadata_props[:]
+    model.metadata_props.extend(kept)
+    model.metadata_props.add(key=SIGNATURE_KEY, value=signature)
+    write_bytes_atomic(path, model.SerializeToString())
+    return signature
+
+
+def _verify_signature(path: Path, model, props: dict, key) -> None:
+    if SIGNATURE_KEY not in props:
+        raise BundleError(f"{path}: not signed (no {SIGNATURE_KEY}); a key was given, so an unsigned "
+                          "bundle is refused (sign it with 'rtemu sign')")
+    expected = _signature(model, props, _read_key(key))
+    if not hmac.compare_digest(expected, props[SIGNATURE_KEY]):
+        raise BundleError(f"{path}: the HMAC-SHA256 signature does not verify with this key: the bundle "
+                          "was changed after signing, or signed with another key")
 
 
 # ---- reading ------------------------------------------------------------------------------
 def _load_checked(path: Path):
     if not path.is_file():
         raise BundleError(f"{path}: no such file")
+    size = path.stat().st_size
+    if size > MAX_FILE_BYTES:
+        raise BundleError(f"{path}: {size} bytes, larger than any ONNX file can be ({MAX_FILE_BYTES})")
     data = path.read_bytes()
     if not data:
         raise BundleError(f"{path}: empty file, not an ONNX model")
@@ -185,6 +270,15 @@ def _load_checked(path: Path):
         raise BundleError(f"{path}: not a readable ONNX file (truncated or corrupted): {exc}") from None
     if not model.HasField("graph") or not model.graph.node:
         raise BundleError(f"{path}: not a readable ONNX model (no graph; truncated, corrupted or not ONNX)")
+    external = [t.name for t in model.graph.initializer if t.data_location == onnx.TensorProto.EXTERNAL]
+    if external:
+        raise BundleError(f"{path}: weights {external[:3]} are stored in external data files; an rtemu "
+                          "bundle is one self-contained file (refused: the digests and onnxruntime would "
+                          "read them from different places)")
+    metadata_bytes = sum(len(p.key) + len(p.value) for p in model.metadata_props)
+    if metadata_bytes > MAX_METADATA_BYTES:
+        raise BundleError(f"{path}: {metadata_bytes} bytes of metadata, more than the {MAX_METADATA_BYTES} "
+                          "an rtemu bundle has (refused before parsing)")
     props = {p.key: p.value for p in model.metadata_props}
     if "rtemu.format_version" not in props:
         raise BundleError(
@@ -198,14 +292,20 @@ def _load_checked(path: Path):
     return model, props
 
 
-def read_bundle(path) -> Bundle:
+def read_bundle(path, *, key=None) -> Bundle:
     """Open, check and parse an rtemu bundle.
 
-    Checks, in order: readable ONNX; rtemu metadata present (else "foreign"); the ONNX
-    checker; format version (newer than :data:`FORMAT_VERSION` is refused); all required
-    keys, valid JSON/TOML; consistency (channel count of instrument, metadata, graph;
-    level count of the grid and the input shapes; input and output names); the SHA-256 of
-    the metadata, of the graph and of the weights.
+    Checks, in order: file size; readable ONNX; no external data; metadata size; rtemu
+    metadata present (else "foreign"); the ONNX checker; format version (newer than
+    :data:`FORMAT_VERSION` is refused); all required keys, valid JSON/TOML; consistency
+    (channel count of instrument, metadata, graph; level count of the grid and the input
+    shapes; input and output names); the SHA-256 of the metadata, of the graph and of the
+    weights (corruption, not authorship); with ``key`` the HMAC-SHA256 signature.
+
+    Parameters
+    ----------
+    key : str, os.PathLike or bytes, optional
+        Key file or secret: the bundle must carry a signature that verifies with it.
 
     Raises
     ------
@@ -233,11 +333,11 @@ def read_bundle(path) -> Bundle:
         raise BundleError(f"{path}: metadata do not match their SHA-256 (rtemu.metadata_sha256): "
                           "the file was corrupted or edited")
     parsed = {}
-    for key in _JSON_KEYS:
+    for name in _JSON_KEYS:
         try:
-            parsed[key] = json.loads(props[key])
-        except json.JSONDecodeError as exc:
-            raise BundleError(f"{path}: metadata {key} is not valid JSON: {exc}") from None
+            parsed[name] = json.loads(props[name])
+        except (json.JSONDecodeError, RecursionError) as exc:
+            raise BundleError(f"{path}: metadata {name} is not valid JSON: {exc}") from None
     try:
         instrument = Instrument.from_toml(props["rtemu.instrument_toml"], source=f"{path}:rtemu.instrument_toml")
     except ValueError as exc:
@@ -277,10 +377,12 @@ def read_bundle(path) -> Bundle:
         raise BundleError(f"{path}: inconsistent rtemu bundle: " + "; ".join(problems))
     if weights_sha256(model) != props["rtemu.weights_sha256"]:
         raise BundleError(f"{path}: weights do not match their SHA-256 (rtemu.weights_sha256): the file was "
-                          "corrupted or tampered with")
+                          "corrupted or edited")
     if content_sha256(model) != props["rtemu.content_sha256"]:
         raise BundleError(f"{path}: graph does not match its SHA-256 (rtemu.content_sha256): the file was "
                           "corrupted or edited")
+    if key is not None:
+        _verify_signature(path, model, props, key)
     grid.setflags(write=False)
     return Bundle(
         path=str(path), format_version=version, rtemu_version=props["rtemu.version"],
@@ -391,9 +493,11 @@ def _grid_lines(grid, per_line: int = 10) -> list[str]:
     return ["    " + " ".join(f"{v:>10s}" for v in values[i : i + per_line]) for i in range(0, len(values), per_line)]
 
 
-def describe(path) -> str:
-    """Human-readable summary of a bundle's metadata (for ``rtemu info``)."""
-    b = read_bundle(path)
+def describe(path, key=None) -> str:
+    """Human-readable summary of a bundle's metadata (for ``rtemu info``); with ``key`` the
+    signature is verified first."""
+    b = read_bundle(path, key=key)
+    signed = SIGNATURE_KEY in b.metadata
     grid = b.pressure_hpa
     lines = [
         f"rtemu bundle {b.path}",
@@ -409,6 +513,12 @@ def describe(path) -> str:
         f"  training data      sha256 {b.training_data_sha256}",
         f"  teacher            {b.teacher[0]} {b.teacher[1]}",
         f"  weights            sha256 {b.weights_sha256}",
+        "  integrity          SHA-256 digests of graph, weights and metadata match (no corruption detected); "
+        "they are unkeyed, anyone editing the file can recompute them, so they do not show who made the file",
+        "  signature          " + ("HMAC-SHA256, verified with the given key: made by a holder of the key"
+                                   if key is not None else
+                                   "HMAC-SHA256 present, not checked (give --key KEYFILE)" if signed else
+                                   "none (sign with 'rtemu sign --key KEYFILE')"),
         f"  compression        {b.graph['n_components']} components ({_features_summary(b.features)})",
         f"  opacity kernels    {_kernels_summary(b.features)}",
         f"  hidden layers      {b.graph['hidden']} (padded)",

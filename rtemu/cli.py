@@ -1,14 +1,21 @@
 """The ``rtemu`` command line: one subcommand per stage of the job.
 
-Every subcommand writes its outputs atomically and exits non-zero with a one-line
-``rtemu: error: ...`` message on bad input.
+Every subcommand writes its outputs atomically, one job per output path. Exit status:
+0 success; 2 an error, reported as one line ``rtemu: error: ...`` (``--debug`` adds the
+traceback); 3 ``simulate`` found no valid profile (the output holds only flags);
+130 interrupted.
 """
 
 from __future__ import annotations
 
 import argparse
+import errno
 import sys
+import warnings
 from pathlib import Path
+
+EXIT_ERROR = 2
+EXIT_NO_VALID_PROFILE = 3
 
 
 def _add_simulate(sub):
@@ -29,6 +36,10 @@ def _add_simulate(sub):
                    "linear in ln p, their lowest level (or surface_air_pressure) as the ground; Jacobians "
                    "come back on the file's levels. With --model the bundle's grid (no file); with "
                    "--instrument the grid of LEVELS_FILE (as for 'rtemu sample --levels')")
+    p.add_argument("--channels", default=None, help="comma-separated channel ids to compute (default all)")
+    p.add_argument("--fallback", choices=["physics"], default=None,
+                   help="with --model: compute the profiles the emulator flags as outside its training "
+                        "envelope with the physical model (flag bit physics_fallback)")
     scale = p.add_mutually_exclusive_group()
     scale.add_argument("--workers", type=int, default=None, help="local worker processes (dask)")
     scale.add_argument("--scheduler", default=None, help="dask.distributed scheduler address")
@@ -37,14 +48,26 @@ def _add_simulate(sub):
     p.set_defaults(func=_run_simulate)
 
 
+def _channel_list(text):
+    if text is None:
+        return None
+    ids = [c.strip() for c in text.split(",") if c.strip()]
+    if not ids:
+        raise ValueError(f"--channels {text!r}: no channel id (rule: comma-separated ids)")
+    return ids
+
+
 def _run_simulate(args):
     from rtemu import streaming
+    from rtemu._io import open_dataset
 
     grid = None
     if isinstance(args.regrid, str):
         from rtemu.sampling import read_levels_file
 
         grid = read_levels_file(args.regrid)
+    if args.fallback and not args.model:
+        raise ValueError("--fallback physics applies to an emulator: give --model")
     streaming.simulate_file(
         input_path=args.input,
         output_path=args.output,
@@ -57,8 +80,22 @@ def _run_simulate(args):
         scheduler=args.scheduler,
         chunk_size=args.chunk_size,
         progress=not args.quiet,
+        channels=_channel_list(args.channels),
+        fallback=args.fallback,
     )
+    with open_dataset(args.output) as out:
+        invalid = int(out.attrs.get("invalid_input_count", 0))
+        total = int(out.attrs.get("profile_count", out.sizes.get("profile", 0)))
+        summary = out.attrs.get("invalid_input_summary", "")
     print(f"wrote {args.output}")
+    if invalid:
+        print(f"rtemu: warning: {summary} (NaN and flag invalid_input in the output; the summary is "
+              "kept in its attribute invalid_input_summary)", file=sys.stderr)
+    if total and invalid == total:
+        print(f"rtemu: error: no valid profile in {args.input}; {args.output} holds only flags",
+              file=sys.stderr)
+        return EXIT_NO_VALID_PROFILE
+    return 0
 
 
 def _add_instruments(sub):
@@ -108,6 +145,9 @@ def _run_sample(args):
     kwargs = {}
     if args.chunk_size:
         kwargs["chunk_size"] = args.chunk_size
+    from rtemu._io import refuse_input_as_output
+
+    refuse_input_as_output(args.output, [args.levels])
     grid = sampling.read_levels_file(args.levels) if args.levels else None
     sampling.sample_to_netcdf(
         load_teacher(args.teacher) if args.teacher else load_instrument(args.instrument),
@@ -138,30 +178,56 @@ def _add_train(sub):
 
 def _run_train(args):
     from rtemu import export
+    from rtemu._io import exclusive_output
 
-    channels = [c.strip() for c in args.channels.split(",") if c.strip()] if args.channels else None
-    export.train_to_onnx(
-        args.data,
-        args.recipe,
-        args.output,
-        channels=channels,
-        update=args.update,
-        workers=args.workers,
-        progress=not args.quiet,
-    )
+    channels = _channel_list(args.channels)
+    # The bundle may be the one --update reads (rewritten atomically), never the data.
+    with exclusive_output(args.output, inputs=[args.data]):
+        export.train_to_onnx(
+            args.data,
+            args.recipe,
+            args.output,
+            channels=channels,
+            update=args.update,
+            workers=args.workers,
+            progress=not args.quiet,
+        )
     print(f"wrote {args.output}")
 
 
 def _add_info(sub):
     p = sub.add_parser("info", help="check an ONNX bundle and print its metadata")
     p.add_argument("model", help="rtemu ONNX bundle")
+    p.add_argument("--key", default=None, help="key file: also verify the bundle's HMAC-SHA256 signature")
     p.set_defaults(func=_run_info)
 
 
 def _run_info(args):
     from rtemu import bundle
 
-    print(bundle.describe(args.model))
+    print(bundle.describe(args.model, key=args.key))
+
+
+def _add_sign(sub):
+    p = sub.add_parser(
+        "sign", help="add a keyed signature (HMAC-SHA256) to a bundle",
+        description="Sign a bundle with a secret key file (HMAC-SHA256 over the bundle's content and "
+        "metadata). Unlike the SHA-256 digests every bundle carries, which detect corruption only, "
+        "a signature shows the bundle was signed by a holder of the key: check it with "
+        "'rtemu info --key FILE' or EmulatedOperator.load(path, key=FILE).",
+    )
+    p.add_argument("model", help="rtemu ONNX bundle (signed in place, atomically)")
+    p.add_argument("--key", required=True, help="file holding the secret key (at least 32 bytes)")
+    p.set_defaults(func=_run_sign)
+
+
+def _run_sign(args):
+    from rtemu import bundle
+    from rtemu._io import exclusive_output
+
+    with exclusive_output(args.model):
+        bundle.sign_bundle(args.model, key=args.key)
+    print(f"signed {args.model} (HMAC-SHA256)")
 
 
 def _add_audit(sub):
@@ -217,34 +283,97 @@ def _run_demo(args):
     demo.run_demo(args.output, progress=not args.quiet)
 
 
+class _Parser(argparse.ArgumentParser):
+    """argparse with the one-line error of every other rtemu failure."""
+
+    def error(self, message):
+        print(f"rtemu: error: {_one_line(message)} (see '{self.prog} --help')", file=sys.stderr)
+        sys.exit(EXIT_ERROR)
+
+
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="rtemu",
         description="Fast, audited emulators of a clear-sky radiance observation operator.",
     )
     from rtemu import __version__
 
     parser.add_argument("--version", action="version", version=f"rtemu {__version__}")
-    sub = parser.add_subparsers(dest="command", required=True)
-    for add in (_add_demo, _add_instruments, _add_simulate, _add_sample, _add_train, _add_info, _add_audit):
+    parser.add_argument("--debug", action="store_true",
+                        help="on an error, print the full traceback (anywhere on the command line)")
+    sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
+    for add in (_add_demo, _add_instruments, _add_simulate, _add_sample, _add_train, _add_info,
+                _add_sign, _add_audit):
         add(sub)
     return parser
 
 
+_OS_ERRORS = {
+    errno.ENOSPC: "no space left on the device",
+    errno.EFBIG: "file too large for the file system or the process's file size limit",
+    errno.EDQUOT: "disk quota exceeded",
+    errno.EROFS: "read-only file system",
+    errno.EACCES: "permission denied",
+    errno.EPERM: "operation not permitted",
+    errno.EISDIR: "is a directory",
+    errno.ENOTDIR: "a parent is not a directory",
+}
+
+
+def _one_line(text) -> str:
+    return " ".join(str(text).split())
+
+
+def error_message(exc: BaseException) -> str:
+    """The one-line ``rtemu: error: ...`` text for an exception escaping a subcommand."""
+    if isinstance(exc, KeyError) and exc.args:
+        return _one_line(exc.args[0])
+    if isinstance(exc, OSError) and exc.errno in _OS_ERRORS:
+        import os
+
+        where = exc.filename or ""
+        if exc.strerror and exc.strerror != os.strerror(exc.errno):  # rtemu's own, more precise text
+            return _one_line(exc.strerror)
+        hint = " (finished chunks are kept: free space and rerun the same command to resume)" \
+            if exc.errno in (errno.ENOSPC, errno.EFBIG, errno.EDQUOT) else ""
+        return _one_line(f"{where}: {_OS_ERRORS[exc.errno]}{hint}" if where else f"{_OS_ERRORS[exc.errno]}{hint}")
+    if isinstance(exc, (ValueError, FileNotFoundError, OSError)):
+        return _one_line(exc)
+    module = type(exc).__module__ or ""
+    if module.startswith("onnxruntime"):
+        return _one_line(f"onnxruntime failed ({type(exc).__name__}): {exc}")
+    return _one_line(f"unexpected {type(exc).__name__}: {exc} (rerun with --debug for the traceback)")
+
+
+def _one_line_warning(message, category, filename, lineno, file=None, line=None):
+    print(f"rtemu: warning: {_one_line(message)}", file=file or sys.stderr)
+
+
 def main(argv=None) -> int:
+    argv = list(sys.argv[1:] if argv is None else argv)
+    debug = "--debug" in argv
+    argv = [a for a in argv if a != "--debug"]
     parser = build_parser()
     args = parser.parse_args(argv)
+    previous = warnings.showwarning
+    if not debug:
+        warnings.showwarning = _one_line_warning
     try:
-        args.func(args)
-    except (ValueError, FileNotFoundError, KeyError) as exc:
-        message = exc.args[0] if isinstance(exc, KeyError) and exc.args else exc
-        print(f"rtemu: error: {message}", file=sys.stderr)
-        return 2
+        code = args.func(args)
+        return code if isinstance(code, int) else 0
     except KeyboardInterrupt:
         print("rtemu: interrupted; finished chunks are kept, rerun the same command to resume",
               file=sys.stderr)
         return 130
-    return 0
+    except Exception as exc:
+        if debug:
+            import traceback
+
+            traceback.print_exc()
+        print(f"rtemu: error: {error_message(exc)}", file=sys.stderr)
+        return EXIT_ERROR
+    finally:
+        warnings.showwarning = previous
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -228,11 +228,15 @@ class EmulatedOperator(_OperatorBase):
     ``surface_air_pressure`` in a dataset is accepted only where it equals the bundle's
     bottom level (within ``grid_tolerance_hpa``) for every profile: the emulator was not
     trained with terrain. Compute columns over terrain with :class:`PhysicalOperator`.
+    key : str, os.PathLike or bytes, optional
+        Key file (or secret) of a keyed signature: the bundle must carry an HMAC-SHA256
+        signature that verifies with it (see :func:`rtemu.bundle.sign_bundle`). Without
+        it only the unkeyed digests are checked, which detect corruption, not authorship.
     """
 
     def __init__(self, *, path, channels=None, batch_size: int = 4096, threads: int | None = 1,
                  fallback: Literal[None, "physics"] = None, errors: ErrorMode = "mask",
-                 grid_tolerance_hpa: float = GRID_TOLERANCE_HPA, regrid: bool = False):
+                 grid_tolerance_hpa: float = GRID_TOLERANCE_HPA, regrid: bool = False, key=None):
         from rtemu import bundle as _bundle
 
         if fallback not in (None, "physics"):
@@ -246,7 +250,7 @@ class EmulatedOperator(_OperatorBase):
         self.errors = errors
         self.grid_tolerance_hpa = float(grid_tolerance_hpa)
         self.regrid = bool(regrid)
-        self.bundle = _bundle.read_bundle(self.path)
+        self.bundle = _bundle.read_bundle(self.path, key=key)
         if fallback == "physics" and self.bundle.teacher[0] != PHYSICS_TEACHER[0]:
             raise ValueError(f"fallback='physics': {self.path} emulates teacher {self.bundle.teacher[0]!r}, not "
                              "rtemu's physics (rule: the fallback recomputes with rtemu's physics, so only for "

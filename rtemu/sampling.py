@@ -39,7 +39,8 @@ from scipy.stats import qmc
 from rtemu import atmosphere as atm
 from rtemu import flags, physics
 from rtemu import teacher as _teacher
-from rtemu._io import atomic_path, write_text_atomic
+from rtemu._io import (assembly_size, atomic_path, check_space, exclusive_output, remove_partials,
+                      write_bytes_atomic, write_text_atomic)
 from rtemu._units import unit_conversion
 from rtemu._warnings import RtemuWarning
 from rtemu.constants import DRY_AIR_GAS_CONSTANT, EPSILON, STANDARD_GRAVITY
@@ -1209,15 +1210,22 @@ def _chunk_ready(path: Path, expected_hash: str) -> bool:
 
 
 def _write_chunk(path: Path, arrays: dict, index: int, arguments_hash: str) -> None:
-    """One finished chunk as plain HDF5 datasets (an internal file, not netCDF)."""
+    """One finished chunk as plain HDF5 datasets (an internal file, not netCDF).
+
+    Built in memory and written with plain file I/O (a full disk gives a clean OSError,
+    see rtemu._io.to_netcdf_atomic).
+    """
+    import io
+
     import h5py
 
-    with atomic_path(path, suffix=".partial") as tmp:
-        with h5py.File(tmp, "w") as f:
-            f.attrs["rtemu_chunk_index"] = index
-            f.attrs["rtemu_arguments_sha256"] = arguments_hash
-            for name, values in arrays.items():
-                f.create_dataset(name, data=values, track_times=False)
+    buffer = io.BytesIO()
+    with h5py.File(buffer, "w") as f:
+        f.attrs["rtemu_chunk_index"] = index
+        f.attrs["rtemu_arguments_sha256"] = arguments_hash
+        for name, values in arrays.items():
+            f.create_dataset(name, data=values, track_times=False)
+    write_bytes_atomic(path, buffer.getvalue(), durable=False)
 
 
 def _compute_chunk_to_file(path: str, index: int, arguments_hash: str, *, start: int, count: int,
@@ -1305,6 +1313,9 @@ def sample_to_netcdf(
     with other arguments discards the old chunks (with an RtemuWarning) and starts
     over. The final file is assembled by streaming the chunks, one at a time, into a
     temporary file that is renamed onto ``output``; then the chunk directory is removed.
+    The job holds :func:`rtemu._io.exclusive_output` on ``output`` throughout: a second
+    job on the same output is refused naming this one, and only this job touches the
+    chunk directory.
 
     Parameters
     ----------
@@ -1386,45 +1397,47 @@ def sample_to_netcdf(
     if model is not None and spec is None and (scheduler is not None or workers not in (None, 1)):
         raise ValueError(f"teacher {identity[0]}: an object runs in this process only (rule: for worker "
                          "processes give the teacher as MODULE:NAME, rtemu.load_teacher)")
-    arguments = _arguments(inst, identity, count, seed, grid, jacobian, chunk_size)
-    arguments_hash = _arguments_hash(arguments)
-    _prepare_chunk_dir(side, arguments)
-    chunks = [(i, s, min(chunk_size, count - s)) for i, s in enumerate(range(0, count, chunk_size))]
-    paths = {i: side / _CHUNK_PATTERN.format(i) for i, _, _ in chunks}
-    todo = [c for c in chunks if not _chunk_ready(paths[c[0]], arguments_hash)]
+    with exclusive_output(output):
+        arguments = _arguments(inst, identity, count, seed, grid, jacobian, chunk_size)
+        arguments_hash = _arguments_hash(arguments)
+        _prepare_chunk_dir(side, arguments)
+        remove_partials(side)  # of a job that died; we hold the output's lock
+        chunks = [(i, s, min(chunk_size, count - s)) for i, s in enumerate(range(0, count, chunk_size))]
+        paths = {i: side / _CHUNK_PATTERN.format(i) for i, _, _ in chunks}
+        todo = [c for c in chunks if not _chunk_ready(paths[c[0]], arguments_hash)]
 
-    from tqdm.auto import tqdm
+        from tqdm.auto import tqdm
 
-    bar = tqdm(total=len(chunks), initial=len(chunks) - len(todo), unit="chunk",
-               desc=f"rtemu sample {output.name}", disable=not progress)
+        bar = tqdm(total=len(chunks), initial=len(chunks) - len(todo), unit="chunk",
+                   desc=f"rtemu sample {output.name}", disable=not progress)
 
-    def on_done(index, arrays):
-        if arrays is not None:
-            _write_chunk(paths[index], arrays, index, arguments_hash)
-        bar.update(1)
+        def on_done(index, arrays):
+            if arrays is not None:
+                _write_chunk(paths[index], arrays, index, arguments_hash)
+            bar.update(1)
 
-    job = {"instrument_toml": inst.to_toml(), "absorption_tables": inst.absorption_tables, "seed": seed,
-           "grid": grid, "jacobian": bool(jacobian)}
-    try:
-        if todo:
-            with _dask_client(workers, scheduler) as (client, shared_files):
-                # Worker processes import the teacher by name; this process uses the object.
-                if client is None:
-                    job["teacher"] = model
-                else:
-                    job["teacher_spec"] = spec
-                if client is not None and shared_files:
-                    # Local workers save their own chunks: no result crosses the network.
-                    tasks = [(i, _compute_chunk_to_file,
-                              dict(path=str(paths[i]), index=i, arguments_hash=arguments_hash,
-                                   start=s, count=n, **job)) for i, s, n in todo]
-                else:
-                    tasks = [(i, _compute_chunk, dict(start=s, count=n, **job)) for i, s, n in todo]
-                _run_chunks(tasks, client, on_done)
-    finally:
-        bar.close()
-    _assemble(output, inst, [paths[i] for i, _, _ in chunks], grid, arguments, chunk_size)
-    _remove_chunk_dir(side)
+        job = {"instrument_toml": inst.to_toml(), "absorption_tables": inst.absorption_tables, "seed": seed,
+               "grid": grid, "jacobian": bool(jacobian)}
+        try:
+            if todo:
+                with _dask_client(workers, scheduler) as (client, shared_files):
+                    # Worker processes import the teacher by name; this process uses the object.
+                    if client is None:
+                        job["teacher"] = model
+                    else:
+                        job["teacher_spec"] = spec
+                    if client is not None and shared_files:
+                        # Local workers save their own chunks: no result crosses the network.
+                        tasks = [(i, _compute_chunk_to_file,
+                                  dict(path=str(paths[i]), index=i, arguments_hash=arguments_hash,
+                                       start=s, count=n, **job)) for i, s, n in todo]
+                    else:
+                        tasks = [(i, _compute_chunk, dict(start=s, count=n, **job)) for i, s, n in todo]
+                    _run_chunks(tasks, client, on_done)
+        finally:
+            bar.close()
+        _assemble(output, inst, [paths[i] for i, _, _ in chunks], grid, arguments, chunk_size)
+        _remove_chunk_dir(side)
     return output
 
 
@@ -1459,6 +1472,7 @@ def _assemble(output: Path, inst: Instrument, chunk_paths: list[Path], grid: np.
     sizes = {"profile": count, "level": grid.size, "channel": len(inst.channels)}
     profile_chunk = min(chunk_size, count)
     envelope = None
+    check_space(output, assembly_size(chunk_paths))
     refused = 0  # entries the teacher gave no finite value for (drawn states are all valid)
     with atomic_path(output, suffix=".nc.partial") as tmp:
         with h5netcdf.File(tmp, "w") as f:

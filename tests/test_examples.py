@@ -74,3 +74,14 @@ def test_dask_cluster_example(tmp_path, tiny_bundle):
     out = _run(str(EXAMPLES / "dask_cluster_simulation.py"), "--model", str(tiny_bundle),
                "--output-dir", str(tmp_path))
     assert "identical bytes: True" in out
+
+
+def test_example_profiles_script_parses_its_arguments(tmp_path):
+    done = subprocess.run([sys.executable, str(EXAMPLES / "make_example_profiles.py"), "--help"],
+                          capture_output=True, text=True, cwd=tmp_path)
+    assert done.returncode == 0 and "usage:" in done.stdout
+    assert list(tmp_path.iterdir()) == []  # --help writes nothing (it once wrote a file named --help)
+    bad = subprocess.run([sys.executable, str(EXAMPLES / "make_example_profiles.py"), "a.nc", "b.nc"],
+                         capture_output=True, text=True, cwd=tmp_path)
+    assert bad.returncode == 2 and "unrecognized arguments" in bad.stderr
+    assert list(tmp_path.iterdir()) == []
