@@ -115,13 +115,12 @@ def _values(ds, name, order, take=None):
 
 def _by_standard_name(dataset: xr.Dataset) -> xr.Dataset:
     """Rename variables whose CF ``standard_name`` is an input variable missing by name."""
-    missing = [v for v in INPUT_VARIABLES if v not in dataset.variables]
-    if not missing:
-        return dataset
+    known = INPUT_VARIABLES + ("surface_air_pressure",)  # the optional ground too
+    missing = [v for v in known if v not in dataset.variables]
     renames = {}
     for wanted in missing:
         found = [name for name, var in dataset.variables.items()
-                 if var.attrs.get("standard_name") == wanted and name not in INPUT_VARIABLES]
+                 if var.attrs.get("standard_name") == wanted and name not in known]
         if len(found) > 1:
             _fail(f"{wanted}: variables {sorted(map(str, found))} all have standard_name {wanted!r} "
                   "(rule: one variable per input)")
