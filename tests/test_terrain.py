@@ -33,9 +33,11 @@ def profiles(small_profiles):
 
 
 def _grounds(ds):
-    """One ps between levels, one equal to a level, one equal to the bottom, one high up."""
+    """One ps between levels, one equal to a level, one equal to the bottom, one high up
+    (about 440 hPa on the 30-level test grid: realistic grounds, which the plausibility
+    rule of the inputs requires of a truncated column's bottom)."""
     p = ds["air_pressure"].values
-    return np.array([0.5 * (p[4] + p[5]), p[9], p[0], 0.3 * p[14] + 0.7 * p[15]])
+    return np.array([0.5 * (p[1] + p[2]), p[4], p[0], 0.3 * p[6] + 0.7 * p[7]])
 
 
 def _truncated(ds, i, ps):
