@@ -18,7 +18,7 @@ Method, per channel and per sideband (each sideband is reduced on its own):
    the difference from the line-by-line teacher.
 3. g-intervals: ``count`` intervals with equal steps of arc length along the curve
    (g, ln tau_col(g) / its range) of the reference column optical depth tau_col (US 1976,
-   clipped to 1e-3-1e4): fine where k(g) is steep (line cores), coarse where it is flat;
+   floored at 1e-3): fine where k(g) is steep (line cores), coarse where it is flat;
    no interval narrower than one frequency's share. Weight of a sub-band = its g width
    (its response share).
 4. Tables: at every node the sub-band's coefficient of each absorber (dry lines,
@@ -66,8 +66,9 @@ from rtemu.spectroscopy.linebyline import (
 )
 from rtemu.spectroscopy.lines import PassbandFile, read_passbands
 
-#: Table grid: covers 0.005-1100 hPa and 150-350 K as the table spec asks.
-TABLE_PRESSURE_HPA = np.geomspace(0.005, 1100.0, 48)
+#: Table grid: covers 0.005-1100 hPa and 150-350 K as the table spec asks; 96 pressures
+#: (not 48: measured on mw-h3, polar ck - LBL -0.069 K -> -0.009 K).
+TABLE_PRESSURE_HPA = np.geomspace(0.005, 1100.0, 96)
 TABLE_TEMPERATURE_K = np.arange(150.0, 350.0 + 1e-9, 10.0)
 TABLE_ABSORBERS = ("dry", "h2o", "continuum")
 #: Stored for a coefficient that is zero everywhere (masked) [ln(m2 kg-1)]
@@ -138,7 +139,7 @@ def g_edges(tau_col, weight, count: int):
 
 
 #: Clip of the reference column optical depth for the interval edges [1]
-_EDGE_TAU_RANGE = (1e-3, 1e4)
+_EDGE_TAU_RANGE = (1e-3, np.inf)
 
 
 # -- reference atmospheres -------------------------------------------------------------------
@@ -146,13 +147,13 @@ def reference_atmospheres(pressure_hpa=None) -> dict:
     """Three reference columns: US 1976, a moist tropical and a dry polar one.
 
     * ``us76``: U.S. Standard Atmosphere 1976 temperature; relative humidity 50 % at the
-      surface falling as (p / 1013.25)^2 to 300 hPa, 2 % above.
+      surface falling as (p / 1013.25)^2 to 300 hPa, 2 % up to 100 hPa;
     * ``tropical``: US 1976 + 12 K at the surface, tapering linearly in ln p to +0 K at
-      100 hPa; relative humidity 85 % falling as (p / 1013.25) to 300 hPa, 3 % above.
+      100 hPa; relative humidity 85 % falling as (p / 1013.25) to 300 hPa, 3 % up to 100 hPa;
     * ``polar``: US 1976 - 30 K at the surface, tapering to -8 K at 300 hPa and above;
-      relative humidity 60 % below 300 hPa, 2 % above.
-    Specific humidity is floored at 3e-6 kg kg-1 (stratospheric water). These are invented
-    columns for convergence checks, not climatologies.
+      relative humidity 60 % below 300 hPa, 2 % up to 100 hPa.
+    Above 100 hPa specific humidity is 3e-6 kg kg-1 (stratospheric water), and it is never
+    less. These are invented columns for convergence checks, not climatologies.
 
     Parameters
     ----------
@@ -174,7 +175,8 @@ def reference_atmospheres(pressure_hpa=None) -> dict:
     }
     out = {}
     for name, (t, rh) in columns.items():
-        q = np.maximum(specific_humidity_from_relative_humidity(rh, t, p), 3e-6)
+        q = np.where(p >= 100.0, specific_humidity_from_relative_humidity(rh, t, p), 0.0)
+        q = np.maximum(q, 3e-6)
         out[name] = (p.copy(), t, q)
     return out
 

@@ -140,12 +140,16 @@ def _grid(passband) -> _SpectralGrid:
 
 
 def channel_absorption(line_lists, nu, unit, pressure_hpa, temperature, *, derivative=False):
-    """Summed coefficients of several line lists [3, J, F] [m2 kg-1] (and d/dT [m2 kg-1 K-1]).
+    """Summed coefficients of the line lists in ``unit`` [3, J, F] [m2 kg-1] (and d/dT [m2 kg-1 K-1]).
 
+    Only lists given in the channel's own unit contribute (see rtemu.spectroscopy.lines).
     The continuum reference pressure must agree between lists (checked by the caller).
     """
     total = None
-    for ll in line_lists:
+    serving = [ll for ll in line_lists if ll.unit == unit]
+    if not serving:
+        raise ValueError(f"no line list in {unit} for a channel given in {unit}")
+    for ll in serving:
         part = absorption(ll, nu, pressure_hpa, temperature, unit, derivative=derivative)
         if total is None:
             total = part

@@ -33,7 +33,11 @@ Line-list file (text, one record a line; ``#`` starts a comment)::
 * ``continuum`` rows: nodes of the water-vapour self continuum, whose coefficient multiplies
   (e / p_ref) times the vapour mass path (rtemu/physics.py eq. 3): K_REF [m2 kg-1] at the
   reference temperature, scaled by (T_ref / T)^TEMPERATURE_EXPONENT; linear in position
-  between nodes, the end node's values beyond them.
+  between nodes, zero outside the first-to-last node range.
+
+A line list serves the channels given in its own unit (GHz lists the frequency channels,
+cm-1 lists the wavenumber channels): the Van Vleck-Weisskopf wing does not decay at high
+frequency, so a microwave list must not leak into the infrared.
 
 Passband file: TOML, see :func:`read_passbands` and docs/spectroscopy.md.
 
@@ -441,7 +445,8 @@ def absorption(line_list: LineList, nu, pressure_hpa, temperature, unit: str, *,
                 dk[a_index] += s * (dlog_s[:, m:m + 1] * shape + dshape_dt)
     if ll.continuum_position.size:
         x_nodes = ll.continuum_position
-        k_ref = np.interp(x_nu, x_nodes, ll.continuum_k)
+        inside = (x_nu >= x_nodes[0]) & (x_nu <= x_nodes[-1])
+        k_ref = np.where(inside, np.interp(x_nu, x_nodes, ll.continuum_k), 0.0)
         expo = np.interp(x_nu, x_nodes, ll.continuum_exponent)
         scale = (t_ref / t[:, None]) ** expo[None, :]  # eq. of the module docstring
         k[2] = k_ref[None, :] * scale
