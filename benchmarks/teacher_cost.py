@@ -73,8 +73,8 @@ def main(argv=None) -> int:
     lbl = LineByLineOperator(os.path.join(FOLDER, "demo-sounder-ck.passbands"))
     gray, note = _gray_instrument(lbl)
     n_lbl, n_gray = args.lbl_profiles, args.gray_profiles
-    ds_lbl = draw_states(n_lbl, seed=1, channels=list(lbl.channels))
-    ds_gray = draw_states(n_gray, seed=1, channels=list(lbl.channels))
+    ds_lbl = draw_states(n_lbl, seed=1, channels=lbl.instrument)
+    ds_gray = draw_states(n_gray, seed=1, channels=lbl.instrument)
     print(f"line-by-line: {sum(lbl.frequency_count.values())} monochromatic frequencies over "
           f"{len(lbl.channels)} channels; gray: {sum(len(c.bands) for c in gray.channels)} sub-bands ({note})")
     t_lbl = _timed(lambda: lbl.simulate(ds_lbl)) / n_lbl
@@ -86,7 +86,7 @@ def main(argv=None) -> int:
     print(f"{'gray sub-bands (physics)':<28} {t_gray:>20.4g} {t_gray_j:>27.4g}")
     print(f"ratio line-by-line / gray: forward {t_lbl / t_gray:.0f}x, with Jacobians {t_lbl_j / t_gray_j:.0f}x")
     print("\nline-by-line forward cost per channel [s/profile]:")
-    one = draw_states(1, seed=2, channels=list(lbl.channels))
+    one = draw_states(1, seed=2, channels=lbl.instrument)
     for cid, count in lbl.frequency_count.items():
         single = LineByLineOperator(_select(lbl, cid))
         t = _timed(lambda: single.simulate(one.sel(channel=[cid])))

@@ -466,7 +466,9 @@ def tables_dataset(result: BuildResult) -> xr.Dataset:
 def instrument_toml(result: BuildResult, tables_file: str) -> str:
     """Instrument TOML text of the shared spec (bands with ``table`` and a Planck position)."""
     pbf, sub = result.passbands, result.sub_bands
-    lines = [f"name = {_toml_str(pbf.name)}", f"description = {_toml_str(pbf.description)}",
+    lines = [f"# Written by rtemu.spectroscopy.ckd from {Path(pbf.source).name} and the line lists "
+             f"{', '.join(pbf.line_list_paths)}; rebuild, do not edit.",
+             f"name = {_toml_str(pbf.name)}", f"description = {_toml_str(pbf.description)}",
              f"absorption_tables = {_toml_str(tables_file)}", "",
              "[reference]", f"pressure_hpa = {_toml_float(result.p_ref)}", "temperature_k = 273.15"]
     for c, pb in enumerate(pbf.channels):
@@ -490,6 +492,9 @@ def write_instrument(result: BuildResult, toml_path) -> tuple:
     """
     toml_path = Path(toml_path)
     nc_path = toml_path.with_name(toml_path.stem + ".tables.nc")
-    to_netcdf_atomic(tables_dataset(result), nc_path)
+    tables = tables_dataset(result)
+    # gzip: masked tables are all zeros and smooth ln k compresses; values stay exact float64
+    encoding = {name: {"compression": "gzip", "compression_opts": 6, "shuffle": True} for name in tables.data_vars}
+    to_netcdf_atomic(tables, nc_path, encoding=encoding)
     write_text_atomic(toml_path, instrument_toml(result, nc_path.name))
     return toml_path, nc_path
