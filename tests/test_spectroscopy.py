@@ -473,3 +473,17 @@ def test_shipped_demo_files_are_invented_and_consistent():
     layer_p, weights = op.weighting_functions(*ckd.reference_atmospheres()["us76"])
     peaks = layer_p[np.argmax(weights, axis=1)]
     assert peaks[0] < peaks[1] < peaks[2]
+
+
+def test_shipped_line_lists_are_what_the_committed_generator_writes(tmp_path, capsys):
+    from importlib import resources
+
+    from rtemu.spectroscopy import build
+
+    assert build.main(["lines", str(tmp_path)]) == 0
+    folder = resources.files("rtemu") / "instruments"
+    for suffix in ("lines-mw", "lines-ir"):
+        assert (tmp_path / f"demo-sounder-ck.{suffix}").read_text() == (folder / f"demo-sounder-ck.{suffix}").read_text()
+    assert build.main(["instrument", str(tmp_path / "missing.passbands"), str(tmp_path / "x.toml")]) == 2
+    assert "missing.passbands: cannot read passband file" in capsys.readouterr().err
+    assert not (tmp_path / "x.toml").exists()

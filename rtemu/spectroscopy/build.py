@@ -2,7 +2,7 @@
 
 ``python -m rtemu.spectroscopy.build lines FOLDER``
     Write the INVENTED demo line lists (rtemu.spectroscopy.invented) into FOLDER.
-``python -m rtemu.spectroscopy.build instrument PASSBANDS OUTPUT.toml [--tolerance K] [--max-count N]``
+``python -m rtemu.spectroscopy.build instrument PASSBANDS OUTPUT.toml``
     Reduce the passbands (and the line lists they name) to correlated-k sub-bands; write
     OUTPUT.toml and OUTPUT.tables.nc; print per channel the sub-band count, the weighting
     function peak and the difference from the line-by-line teacher.
@@ -22,10 +22,10 @@ from rtemu._io import write_text_atomic
 def _lines(args) -> int:
     from rtemu.spectroscopy import invented
 
-    folder = Path(args.folder)
-    write_text_atomic(folder / f"{args.name}.lines-mw", invented.microwave_text())
-    write_text_atomic(folder / f"{args.name}.lines-ir", invented.infrared_text())
-    print(f"wrote {folder / (args.name + '.lines-mw')} and {folder / (args.name + '.lines-ir')}")
+    stem = Path(args.folder) / "demo-sounder-ck"
+    write_text_atomic(f"{stem}.lines-mw", invented.microwave_text())
+    write_text_atomic(f"{stem}.lines-ir", invented.infrared_text())
+    print(f"wrote {stem}.lines-mw and {stem}.lines-ir")
     return 0
 
 
@@ -39,8 +39,7 @@ def _instrument(args) -> int:
     from rtemu.spectroscopy.ckd import build_correlated_k, reference_atmospheres, write_instrument
     from rtemu.spectroscopy.linebyline import LineByLineOperator
 
-    result = build_correlated_k(args.passbands, tolerance=args.tolerance, max_count=args.max_count,
-                                progress=lambda line: print(line, flush=True))
+    result = build_correlated_k(args.passbands, progress=lambda line: print(line, flush=True))
     toml_path, nc_path = write_instrument(result, args.output)
     peaks = weighting_function_peaks(LineByLineOperator(result.passbands), *reference_atmospheres()["us76"])
     names = list(result.reports[0].lbl_difference_k)
@@ -59,13 +58,10 @@ def main(argv=None) -> int:
     sub = parser.add_subparsers(dest="command", required=True)
     p = sub.add_parser("lines", help="write the INVENTED demo line lists")
     p.add_argument("folder")
-    p.add_argument("--name", default="demo-sounder-ck", help="file name stem")
     p.set_defaults(func=_lines)
     p = sub.add_parser("instrument", help="build a correlated-k instrument from a passband file")
     p.add_argument("passbands")
     p.add_argument("output", help="instrument TOML to write (tables beside it)")
-    p.add_argument("--tolerance", type=float, default=0.01, help="doubling criterion [K]")
-    p.add_argument("--max-count", type=int, default=64, help="largest sub-band count per channel")
     p.set_defaults(func=_instrument)
     args = parser.parse_args(argv)
     try:
