@@ -297,14 +297,21 @@ class LineByLineOperator:
         """Brightness temperatures (and Jacobians) of ``dataset``; schema of rtemu.physics.simulate.
 
         Inputs are checked by :func:`rtemu._checks.prepare_inputs` (same rules, errors and
-        ``errors`` modes as the physics); outputs labelled by :func:`rtemu.physics.label_outputs`.
+        ``errors`` modes as the physics); with ``surface_air_pressure`` the transfer runs on
+        the column above the ground (:func:`rtemu.levels.cut_at_surface`), as in the physics;
+        outputs labelled by :func:`rtemu.physics.label_outputs`.
         """
         prep = prepare_inputs(dataset, self.channels, errors=errors)
-        arrays = self.transfer(prep.pressure_hpa, prep.air_temperature, prep.specific_humidity,
-                               prep.surface_temperature, prep.surface_emissivity, prep.sensor_zenith_angle,
-                               jacobian=jacobian)
+        # Terrain: the column above surface_air_pressure, as in rtemu.physics (rtemu.levels).
+        cut = prep.surface_cut()
+        column = (prep.pressure_hpa, prep.air_temperature, prep.specific_humidity) if cut is None else \
+            (cut.pressure_hpa, cut.air_temperature, cut.specific_humidity)
+        arrays = self.transfer(*column, prep.surface_temperature, prep.surface_emissivity,
+                               prep.sensor_zenith_angle, jacobian=jacobian)
         for name in ("jacobian_air_temperature", "jacobian_specific_humidity"):
             if name in arrays:
+                if cut is not None:
+                    arrays[name] = cut.jacobian_to_input_levels(arrays[name])
                 arrays[name] = prep.to_caller_order(arrays[name])
         flag = np.where(prep.valid, 0, _flags.INVALID_INPUT) | np.where(prep.supersaturated, _flags.SUPERSATURATED, 0)
         flag = flag[:, None] * np.ones(len(self.channels), np.int32)
