@@ -42,8 +42,12 @@ _LAZY = {
     "run_audit": "rtemu.audit",
     # demo
     "run_demo": "rtemu.demo",
+    # line spectroscopy (teachers)
+    "LineByLineOperator": "rtemu.spectroscopy",
+    "build_correlated_k": "rtemu.spectroscopy",
 }
-_LAZY_MODULES = ("assim", "atmosphere", "levels", "teacher", "sampling", "training", "bundle", "runtime", "audit")
+_LAZY_MODULES = ("assim", "atmosphere", "levels", "teacher", "sampling", "training", "bundle", "runtime", "audit",
+                 "spectroscopy")
 
 __all__ = [
     "__version__",
@@ -88,6 +92,10 @@ __all__ = [
     "assim",
     # demo
     "run_demo",
+    # line spectroscopy
+    "spectroscopy",
+    "LineByLineOperator",
+    "build_correlated_k",
 ]
 
 
