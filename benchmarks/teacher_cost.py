@@ -8,9 +8,7 @@ Run from the repository root:
   lists of demo-sounder-ck (all 16 channels, monochromatic grids as shipped), forward and
   with Jacobians, one process; the per-channel split of the forward cost is printed too;
 * gray sub-bands: ``rtemu.physics.simulate`` on the built instrument
-  ``rtemu/instruments/demo-sounder-ck.toml``. Where the physics cannot read absorption
-  tables yet (the loader refuses the file), a stand-in with the same number of gray
-  sub-bands per channel and power laws is timed instead, and the script says so.
+  ``rtemu/instruments/demo-sounder-ck.toml`` (its (ln p, T) absorption tables).
 
 Profiles from ``rtemu.sampling.draw_states`` on the 60-level demo grid. Prints seconds per
 profile and the cost ratio. Not a test: figures depend on the machine.
@@ -28,7 +26,7 @@ sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 import numpy as np  # noqa: E402
 
 from rtemu import physics  # noqa: E402
-from rtemu.instrument import Band, Channel, Instrument, load_instrument  # noqa: E402
+from rtemu.instrument import load_instrument  # noqa: E402
 from rtemu.sampling import draw_states  # noqa: E402
 from rtemu.spectroscopy import LineByLineOperator  # noqa: E402
 
@@ -44,39 +42,19 @@ def _timed(func, repeat=1):
     return best
 
 
-def _gray_instrument(lbl: LineByLineOperator):
-    """The built instrument, or a power-law stand-in with its sub-band counts (and a note)."""
-    path = os.path.join(FOLDER, "demo-sounder-ck.toml")
-    try:
-        return load_instrument(path), "demo-sounder-ck.toml (tables)"
-    except ValueError as exc:
-        import tomllib
-
-        doc = tomllib.loads(open(path, encoding="utf-8").read())
-        counts = {ch["id"]: len(ch["bands"]) for ch in doc["channels"]}
-        channels = tuple(
-            Channel(ch.id, ch.frequency_ghz, ch.wavenumber_cm1, ch.noise_k,
-                    tuple(Band(1.0 / counts[ch.id], dry=1e-3 * (i + 1), h2o=0.1, continuum=0.1)
-                          for i in range(counts[ch.id])))
-            for ch in lbl.instrument.channels
-        )
-        note = (f"STAND-IN: power laws with demo-sounder-ck's sub-band counts (this physics "
-                f"does not read tables: {str(exc)[:80]}...)")
-        return Instrument("stand-in", "INVENTED", channels), note
-
-
 def main(argv=None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--lbl-profiles", type=int, default=3)
     parser.add_argument("--gray-profiles", type=int, default=2000)
     args = parser.parse_args(argv)
     lbl = LineByLineOperator(os.path.join(FOLDER, "demo-sounder-ck.passbands"))
-    gray, note = _gray_instrument(lbl)
+    gray = load_instrument(os.path.join(FOLDER, "demo-sounder-ck.toml"))
     n_lbl, n_gray = args.lbl_profiles, args.gray_profiles
     ds_lbl = draw_states(n_lbl, seed=1, channels=lbl.instrument)
     ds_gray = draw_states(n_gray, seed=1, channels=lbl.instrument)
     print(f"line-by-line: {sum(lbl.frequency_count.values())} monochromatic frequencies over "
-          f"{len(lbl.channels)} channels; gray: {sum(len(c.bands) for c in gray.channels)} sub-bands ({note})")
+          f"{len(lbl.channels)} channels; gray: {sum(len(c.bands) for c in gray.channels)} sub-bands "
+          "(demo-sounder-ck.toml, (ln p, T) tables)")
     t_lbl = _timed(lambda: lbl.simulate(ds_lbl)) / n_lbl
     t_lbl_j = _timed(lambda: lbl.simulate(ds_lbl, jacobian=True)) / n_lbl
     t_gray = _timed(lambda: physics.simulate(gray, ds_gray), repeat=3) / n_gray
