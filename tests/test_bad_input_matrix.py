@@ -141,7 +141,10 @@ def _check_outcome(case, run, ds):
     if case.outcome == "ok":
         clean = run(ds)
         sel = mutated["profile"].values if "profile" in mutated.coords else slice(None)
-        np.testing.assert_allclose(bt, clean["brightness_temperature"].sel(profile=sel).values, atol=1e-9)
+        # rtol 4 float32 epsilons: the emulator's float32 graph may round differently for
+        # another batch size (measured: 3.05e-5 K, 2 ulp at 259 K, one channel of one profile)
+        np.testing.assert_allclose(bt, clean["brightness_temperature"].sel(profile=sel).values,
+                                   rtol=4 * np.finfo(np.float32).eps, atol=1e-9)
         assert (qf == 0).all()
         return
     rows = list(range(bt.shape[0])) if case.outcome == "flag_all" else [BAD]

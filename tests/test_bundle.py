@@ -65,7 +65,7 @@ def test_good_bundle_parses(good):
     assert b.format_version == rb.FORMAT_VERSION
     assert b.channel_ids == ("mw-t2", "ir-w1")
     assert b.instrument.channel_ids == b.channel_ids
-    assert b.pressure_hpa.size == 60 and b.pressure_hpa[0] > b.pressure_hpa[-1]
+    assert b.pressure_hpa.size == 64 and b.pressure_hpa[0] > b.pressure_hpa[-1]
     assert set(b.channel_stats) == {"mw-t2", "ir-w1"}
     assert json.loads(b.metadata["rtemu.flag_meanings"]) == b.flag_meanings
     assert b.flag_meanings["1"] == "invalid_input" and b.flag_meanings["4"] == "novel_state"
@@ -80,7 +80,7 @@ def test_good_bundle_parses(good):
 def test_describe_is_readable(good):
     text = rb.describe(good)
     for piece in ("mw-t2", "ir-w1", "format version", "tiny-bundle", "brightness_temperature",
-                  "jacobian_specific_humidity", "novel_state", "60 levels", "tropopause check: first level"):
+                  "jacobian_specific_humidity", "novel_state", "64 levels", "tropopause check: first level"):
         assert piece in text
     assert "opacity kernels    none" in text  # this bundle's recipe has none
     summary = rb._kernels_summary({"line_kernels": [0.1, 3.0], "continuum_kernels": [30.0], "reflection_kernels": True,

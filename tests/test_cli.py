@@ -65,7 +65,7 @@ def test_audit_and_emulated_simulate(workdir, tiny_bundle, capsys):
     assert main(["simulate", "--model", str(tiny_bundle), "--input", str(workdir / "train.nc"),
                  "--output", str(target), "--jacobian", "--quiet"]) == 0
     with open_dataset(target) as ds:
-        assert ds["jacobian_air_temperature"].shape == (700, 16, 60)
+        assert ds["jacobian_air_temperature"].shape == (700, 16, 64)
         assert np.isfinite(ds["brightness_temperature"].values).all()
 
 
