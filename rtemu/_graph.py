@@ -48,7 +48,7 @@ from rtemu.gray import GAS_POWERS, HUMIDITY_FLOOR, REFERENCE_PRESSURE_HPA, REFER
 OPSET = 19
 IR_VERSION = 9
 #: Rows the batch is padded to a multiple of.
-BLOCK = 2
+BLOCK = 16
 
 INPUT_NAMES = (
     "air_temperature",
@@ -160,6 +160,8 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     def unsq(src, *axes):
         return b.op("Unsqueeze", src, ints(list(axes)))
 
+    axis1 = b.const("axis_1", 1, dtype=np.int64)  # CumSum takes its axis as a scalar
+
     def rsum(src, axis, keep=0):
         return b.op("ReduceSum", src, ints(axis), keepdims=keep)
 
@@ -210,7 +212,7 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     path4 = unsq(path, 2, 3)  # [N, Lm, 1, 1]
     kappa = b.op("Reshape", b.op("Exp", expo), ints([0, Lm, C, K * 3]))
     tau = b.op("Mul", rsum(b.op("Reshape", kappa, ints([0, Lm, C, K, 3])), [4]), path4)  # [N, Lm, C, K]
-    c_in = b.op("CumSum", tau, ints(1), reverse=1)
+    c_in = b.op("CumSum", tau, axis1, reverse=1)
     c_ex = b.op("Sub", c_in, tau)
     c0 = cols(c_in, 0, 1, 1)  # [N, 1, C, K]
     two_c0 = b.op("Add", c0, c0)
@@ -274,8 +276,8 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     Y = b.op("Add", b.op("Mul", b.op("Mul", l4(lam_r), unsq(refl3, 1)), B4), b.op("Mul", l4(d_r), tm4))
     Vsum = b.op("Add", b.op("Mul", b.op("Mul", lam_r, refl3), VB), b.op("Mul", d_r, VT))
     S = b.op("Add", b.op("Add", b.op("Mul", lam_r, b.op("Mul", E3, Bs3)), b.op("Mul", d_f, Ts3)), d_g)
-    inc = b.op("CumSum", b.op("Add", b.op("Mul", t_lo, X), b.op("Mul", u_lo, Y)), ints(1))
-    exc = b.op("CumSum", b.op("Add", b.op("Mul", t_hi, X), b.op("Mul", u_hi, Y)), ints(1), exclusive=1)
+    inc = b.op("CumSum", b.op("Add", b.op("Mul", t_lo, X), b.op("Mul", u_lo, Y)), axis1)
+    exc = b.op("CumSum", b.op("Add", b.op("Mul", t_hi, X), b.op("Mul", u_hi, Y)), axis1, exclusive=1)
     const = b.op("Neg", b.op("Add", b.op("Add", Vsum, Vsum), b.op("Mul", S, t0)))
     h_tau = b.op("Mul", b.op("Add", b.op("Sub", inc, exc), l4(const)), path4)  # dJ/dtau * path [N, Lm, C, K]
     hk = b.op("Mul", b.op("Reshape", unsq(h_tau, 4), ints([0, Lm, C, K, 1])),

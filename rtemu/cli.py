@@ -111,7 +111,6 @@ def _add_train(sub):
     p.add_argument("--recipe", required=True, help="recipe name (demo, full) or TOML path")
     p.add_argument("--output", required=True, help="ONNX bundle to write")
     p.add_argument("--channels", default=None, help="comma-separated channel ids to train")
-    p.add_argument("--update", default=None, help="existing bundle whose other channels are kept")
     p.add_argument("--workers", type=int, default=None, help="parallel channel fits")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=_run_train)
@@ -126,7 +125,6 @@ def _run_train(args):
         args.recipe,
         args.output,
         channels=channels,
-        update=args.update,
         workers=args.workers,
         progress=not args.quiet,
     )

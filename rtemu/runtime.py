@@ -155,7 +155,8 @@ def _session_for(path: str, digest: str, threads: int | None, jacobian: bool):
     with _SESSIONS_LOCK:
         session = _SESSIONS.get(key)
         if session is None:
-            outputs = None if jacobian else ["brightness_temperature", "quality_flag"]
+            outputs = None if jacobian else ["brightness_temperature", "brightness_temperature_uncertainty",
+                                             "quality_flag"]
             session = _bundle.make_session(path, outputs=outputs, threads=threads, check=False)
             _SESSIONS[key] = session
     return session
@@ -265,7 +266,20 @@ class EmulatedOperator(_OperatorBase):
                 f"the bundle's grid); first offending profile index {first}"
             )
 
-    def _run_session(self, prep, jacobian: bool) -> dict:
+    def _surface_pressure(self, dataset, n: int) -> np.ndarray:
+        """ps [hPa] (N,) float32: the dataset's ``surface_air_pressure`` (terrain), else the
+        grid's bottom pressure (no terrain)."""
+        if "surface_air_pressure" not in dataset:
+            return np.full(n, self._grid_surface_first[0], dtype=np.float32)
+        from rtemu._units import unit_conversion
+
+        var = dataset["surface_air_pressure"]
+        if var.dims != ("profile",):
+            raise ValueError(f"surface_air_pressure: dims {var.dims}, expected ('profile',)")
+        scale, offset = unit_conversion("air_pressure", var.attrs.get("units"))
+        return (np.asarray(var.values, dtype=float) * scale + offset).astype(np.float32)
+
+    def _run_session(self, prep, jacobian: bool, surface_air_pressure=None) -> dict:
         """onnxruntime's outputs over all bundle channels, as it returns them: float32,
         levels in the bundle's order, ``quality_flag`` int32."""
         session = self._session(jacobian)
@@ -282,8 +296,10 @@ class EmulatedOperator(_OperatorBase):
             "surface_temperature": prep.surface_temperature.astype(np.float32),
             "surface_emissivity": emissivity,
             "sensor_zenith_angle": prep.sensor_zenith_angle.astype(np.float32),
+            "surface_air_pressure": (np.full(n, self._grid_surface_first[0], dtype=np.float32)
+                                     if surface_air_pressure is None else surface_air_pressure),
         }
-        names = ["brightness_temperature", "quality_flag"]
+        names = ["brightness_temperature", "brightness_temperature_uncertainty", "quality_flag"]
         if jacobian:
             names += list(_physics.JACOBIAN_NAMES)
         if n <= self.batch_size:
@@ -318,8 +334,9 @@ class EmulatedOperator(_OperatorBase):
     def _simulate_eager(self, dataset, jacobian):
         prep = prepare_inputs(dataset, self.channels, errors=self.errors)
         self._check_grid(prep)
-        raw = self._run_session(prep, jacobian)
+        raw = self._run_session(prep, jacobian, self._surface_pressure(dataset, prep.air_temperature.shape[0]))
         flag = raw.pop("quality_flag")
+        sigma = raw.pop("brightness_temperature_uncertainty")
         flag = (flag if self._subset is None else flag[:, self._subset]).astype(np.int32)
         arrays = self._caller_arrays(raw, prep)
         if self.fallback == "physics":
@@ -333,7 +350,13 @@ class EmulatedOperator(_OperatorBase):
             for values in arrays.values():
                 values[invalid] = np.nan
         flag[prep.supersaturated] |= _flags.SUPERSATURATED
+        sigma = np.array(sigma if self._subset is None else sigma[:, self._subset], dtype=np.float64)
+        sigma[(flag & _flags.PHYSICS_FALLBACK) != 0] = 0.0  # the physics' own values
+        sigma[~prep.valid] = np.nan
         out = _physics.label_outputs(arrays, dataset, self.channels, flag)
+        out["brightness_temperature_uncertainty"] = xr.Variable(("profile", "channel"), sigma, {
+            "long_name": "emulator uncertainty of the brightness temperature (one standard deviation)",
+            "units": "K"})
         if prep.problems:
             out.attrs["invalid_input_summary"] = "; ".join(prep.problems)
         return out
