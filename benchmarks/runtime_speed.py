@@ -7,10 +7,10 @@ Measured side by side in one run, on the demo instrument and its 60-level grid:
   runtime operators (what a user calls) and through the bare onnxruntime session;
 * the emulator's FLOP rate (counted from the MatMul shapes of its graph) as a fraction of
   this machine's float32 matrix-multiply rate, measured here with onnxruntime's own MatMul
-  [target: BT at batch 10,000 >= 50 %];
+  [target: with Jacobians at batch 10,000 >= 50 %];
 * single-profile latency of the emulator with Jacobians through the ONNX session
-  [target < 100 us];
-* the speed-up with Jacobians at batch 10,000 [target >= 100x];
+  [target < 50 us, aim 30 us];
+* the speed-up with Jacobians at batch 10,000 [target >= 50x, aim 100x];
 * where the time goes: onnxruntime's per-node profile, summed by operator type.
 
 Usage:  python benchmarks/runtime_speed.py [--model emulator.onnx] [--quick]
@@ -103,6 +103,7 @@ def _feeds(states, channels):
         "surface_temperature": states["surface_temperature"].values.astype(np.float32),
         "surface_emissivity": states["surface_emissivity"].sel(channel=list(channels)).values.astype(np.float32),
         "sensor_zenith_angle": states["sensor_zenith_angle"].values.astype(np.float32),
+        "surface_air_pressure": np.full(states.sizes["profile"], float(states["air_pressure"].max()), np.float32),
     }
 
 
@@ -210,10 +211,10 @@ def main(argv=None):
     achieved = flops_bt * 10_000 / r10k[5]
     achieved_all = flops_all * 10_000 / r10k[6]
     print(f"\nwith Jacobians at batch 10,000 (runtime operators): emulator {speedup:.0f}x faster "
-          f"than the physics [target >= 100x]")
+          f"than the physics [target >= 50x, aim 100x]; bare session +J vs physics +J: {r10k[2] / r10k[6]:.0f}x")
     print(f"emulator BT at batch 10,000 (session): {achieved / 1e9:.1f} GFLOP/s = {achieved / rate:.0%} of "
-          f"the MatMul rate [target >= 50 %]; with Jacobians {achieved_all / 1e9:.1f} GFLOP/s = "
-          f"{achieved_all / rate:.0%}")
+          f"the MatMul rate; with Jacobians {achieved_all / 1e9:.1f} GFLOP/s = "
+          f"{achieved_all / rate:.0%} [target >= 50 %]")
 
     one = {k: v[:1] for k, v in feeds.items()}
     lat = []
@@ -235,7 +236,7 @@ def main(argv=None):
         physical.simulate(sub1, jacobian=True)
         phys_lat.append(time.perf_counter() - t0)
     print(f"single profile with Jacobians, ONNX session (1 thread): median {np.median(lat):.0f} us, "
-          f"95th pct {np.percentile(lat, 95):.0f} us [target < 100 us]; through EmulatedOperator.simulate "
+          f"95th pct {np.percentile(lat, 95):.0f} us [target < 50 us]; through EmulatedOperator.simulate "
           f"(validation, units, xarray): median {np.median(op_lat) * 1e6:.0f} us; PhysicalOperator.simulate "
           f"(same checks and labelling): median {np.median(phys_lat) * 1e6:.0f} us")
 
