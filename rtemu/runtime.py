@@ -37,7 +37,7 @@ def _is_lazy(dataset: xr.Dataset) -> bool:
                for v in dataset.variables.values())
 
 
-def _output_template(dataset: xr.Dataset, channel_ids, jacobian: bool) -> xr.Dataset:
+def _output_template(dataset: xr.Dataset, channel_ids, jacobian: bool, extra=()) -> xr.Dataset:
     """A lazy Dataset with the output schema, chunked like ``dataset`` along profile."""
     import dask.array as da
 
@@ -52,13 +52,18 @@ def _output_template(dataset: xr.Dataset, channel_ids, jacobian: bool) -> xr.Dat
         for name in ("jacobian_surface_temperature", "jacobian_surface_emissivity"):
             arrays[name] = da.empty((n, nchan), chunks=(pchunks, nchan))
     flag = da.zeros((n, nchan), chunks=(pchunks, nchan), dtype=np.int32)
-    return _physics.label_outputs(arrays, dataset, channel_ids, flag)
+    out = _physics.label_outputs(arrays, dataset, channel_ids, flag)
+    for name, attrs in extra:
+        out[name] = xr.Variable(("profile", "channel"), da.empty((n, nchan), chunks=(pchunks, nchan)), attrs)
+    return out
 
 
 class _OperatorBase:
     """Shared protocol: lazy dispatch, tangent linear and adjoint from the Jacobians."""
 
     instrument: Instrument
+    #: (name, attributes) of outputs beyond the physics' schema, (profile, channel) each.
+    _extra_outputs: tuple = ()
 
     @property
     def channels(self) -> tuple[str, ...]:
@@ -73,7 +78,7 @@ class _OperatorBase:
         if _is_lazy(dataset):
             # Structural checks now (cheap, on the first profile); values per chunk later.
             self._simulate_eager(dataset.isel(profile=slice(0, 1)).compute(), False)
-            template = _output_template(dataset, self.channels, jacobian)
+            template = _output_template(dataset, self.channels, jacobian, self._extra_outputs)
             return xr.map_blocks(
                 _simulate_block, dataset, args=(self, jacobian), template=template
             )
@@ -162,6 +167,10 @@ def _session_for(path: str, digest: str, threads: int | None, jacobian: bool):
     return session
 
 
+_UNCERTAINTY_ATTRS = {"long_name": "emulator uncertainty of the brightness temperature (one standard deviation)",
+                      "units": "K"}
+
+
 class EmulatedOperator(_OperatorBase):
     """An rtemu ONNX bundle as an observation operator.
 
@@ -191,6 +200,8 @@ class EmulatedOperator(_OperatorBase):
     grid_tolerance_hpa : float
         Largest accepted difference between the dataset's and the bundle's levels [hPa].
     """
+
+    _extra_outputs = (("brightness_temperature_uncertainty", _UNCERTAINTY_ATTRS),)
 
     def __init__(self, *, path, channels=None, batch_size: int = 4096, threads: int | None = None,
                  fallback: Literal[None, "physics"] = None, errors: ErrorMode = "mask",
@@ -354,9 +365,8 @@ class EmulatedOperator(_OperatorBase):
         sigma[(flag & _flags.PHYSICS_FALLBACK) != 0] = 0.0  # the physics' own values
         sigma[~prep.valid] = np.nan
         out = _physics.label_outputs(arrays, dataset, self.channels, flag)
-        out["brightness_temperature_uncertainty"] = xr.Variable(("profile", "channel"), sigma, {
-            "long_name": "emulator uncertainty of the brightness temperature (one standard deviation)",
-            "units": "K"})
+        out["brightness_temperature_uncertainty"] = xr.Variable(("profile", "channel"), sigma,
+                                                                dict(self._extra_outputs[0][1]))
         if prep.problems:
             out.attrs["invalid_input_summary"] = "; ".join(prep.problems)
         return out
