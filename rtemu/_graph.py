@@ -42,7 +42,7 @@ import onnx
 from onnx import TensorProto, helper
 
 from rtemu import flags as _flags
-from rtemu.gray import GAS_POWERS, HUMIDITY_FLOOR, REFERENCE_PRESSURE_HPA, REFERENCE_TEMPERATURE_K
+from rtemu.gray import HUMIDITY_FLOOR, REFERENCE_PRESSURE_HPA, REFERENCE_TEMPERATURE_K
 
 #: ONNX opset and IR version of the exported graph (onnxruntime >= 1.16 runs them).
 OPSET = 19
@@ -198,28 +198,31 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     x = b.op("Sub", b.op("Concat", T, ln_q, axis=1), "compression_center")
     z = b.op("Add", b.op("MatMul", x, "compression_projection"), "compression_offset")  # [N, Kz]
 
-    # ---- gray absorbers, tensors [N, Lm, C, K]
+    # ---- gray absorbers, tensors [N, Lm, A] over the A = C K absorbers (channel-major);
+    # every element-wise product is between equal shapes or against a trailing vector or a
+    # per-row scalar (onnxruntime's other broadcasts are slow)
+    A = C * K
     tm = b.op("MatMul", T, "layer_mean")  # [N, Lm]
     qm_c = b.op("Max", b.op("MatMul", q, "layer_mean"), floor)
     pm = b.op("MatMul", p, "layer_mean")
     sec = b.op("Reciprocal", b.op("Cos", b.op("Mul", theta, b.const("degree", math.pi / 180.0))))
     path = b.op("Mul", b.op("MatMul", p, "layer_thickness"), b.op("Mul", unsq(sec, 1),
                                                                    b.const("inv_p0", 1.0 / REFERENCE_PRESSURE_HPA)))
+    path3 = unsq(path, 2)  # [N, Lm, 1]
     phi = b.op("Concat", unsq(b.op("Log", b.op("Mul", pm, b.const("inv_p0_b", 1.0 / REFERENCE_PRESSURE_HPA))), 2),
                unsq(b.op("Log", b.op("Mul", tm, b.const("inv_t0", 1.0 / REFERENCE_TEMPERATURE_K))), 2),
                unsq(b.op("Log", qm_c), 2), axis=2)  # [N, Lm, 3]
-    expo = b.op("Add", b.op("MatMul", phi, "gray_exponent"), "gray_log_k")  # [N, Lm, C K 3]
-    path4 = unsq(path, 2, 3)  # [N, Lm, 1, 1]
-    kappa = b.op("Reshape", b.op("Exp", expo), ints([0, Lm, C, K * 3]))
-    tau = b.op("Mul", rsum(b.op("Reshape", kappa, ints([0, Lm, C, K, 3])), [4]), path4)  # [N, Lm, C, K]
+    expo = b.op("Add", b.op("MatMul", phi, "gray_exponent"), "gray_log_k")  # [N, Lm, 3 A], term-major
+    k_dry, k_line, k_cont = b.op_multi("Split", [b.op("Exp", expo), ints([A, A, A])], 3, axis=2)
+    tau = b.op("Mul", b.op("Add", b.op("Add", k_dry, k_line), k_cont), path3)  # [N, Lm, A]
     c_in = b.op("CumSum", tau, axis1, reverse=1)
     c_ex = b.op("Sub", c_in, tau)
-    c0 = cols(c_in, 0, 1, 1)  # [N, 1, C, K]
+    c0 = cols(c_in, 0, 1, 1)  # [N, 1, A]
     two_c0 = b.op("Add", c0, c0)
     t_lo, t_hi = b.op("Exp", b.op("Neg", c_in)), b.op("Exp", b.op("Neg", c_ex))
     u_lo, u_hi = b.op("Exp", b.op("Sub", c_in, two_c0)), b.op("Exp", b.op("Sub", c_ex, two_c0))
     dt, du = b.op("Sub", t_hi, t_lo), b.op("Sub", u_lo, u_hi)
-    t0 = b.op("Squeeze", cols(t_lo, 0, 1, 1), ints(1))  # [N, C, K]
+    t0 = b.op("Squeeze", cols(t_lo, 0, 1, 1), ints(1))  # [N, A]
 
     def planck(temp, b_c):  # B = 1 / expm1(b/T), B' = B (B + 1) b / T^2
         xx = b.op("Div", b_c, temp)
@@ -229,27 +232,41 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
         slope = b.op("Div", b.op("Mul", b.op("Mul", rad, b.op("Add", rad, one)), xx), temp)
         return rad, slope
 
-    B, dB = planck(unsq(tm, 2), "planck_b")  # [N, Lm, C]
-    B4, dB4 = unsq(B, 3), unsq(dB, 3)
-    tm4 = unsq(tm, 2, 3)
+    # 0/1 [C, A]: each absorber's channel (a product by it is faster than a Gather on the last axis)
+    owner = b.const("absorber_channel", np.repeat(np.eye(C), K, axis=1))
+
+    def per_absorber(v, axis):  # [.., C] -> [.., A]
+        return b.op("MatMul", v, owner)
+
+    def per_channel(v):  # [N, A] -> [N, C]: sum over each channel's absorbers
+        return rsum(b.op("Reshape", v, ints([0, C, K])), [2])
+
+    tm3 = unsq(tm, 2)
+    B, dB = planck(tm3, "planck_b")  # [N, Lm, C]
+    B_a, dB_a = per_absorber(B, 2), per_absorber(dB, 2)  # [N, Lm, A]
     Ts1 = unsq(Ts, 1)
     Bs, dBs = planck(Ts1, "planck_b")  # [N, C]
-    E3 = unsq(E, 2)  # [N, C, 1]
-    refl3 = b.op("Sub", one, E3)
-    UB, VB = rsum(b.op("Mul", B4, dt), [1]), rsum(b.op("Mul", B4, du), [1])  # [N, C, K]
-    UT, VT = rsum(b.op("Mul", tm4, dt), [1]), rsum(b.op("Mul", tm4, du), [1])
-    Bs3 = unsq(Bs, 2)
-    Ra = b.op("Add", b.op("Add", b.op("Mul", b.op("Mul", E3, Bs3), t0), UB), b.op("Mul", refl3, VB))
-    R = rsum(b.op("Mul", Ra, "absorber_weight"), [2])  # [N, C]
+    Bs_a, dBs_a, E_a = per_absorber(Bs, 1), per_absorber(dBs, 1), per_absorber(E, 1)  # [N, A]
+    refl_a = b.op("Sub", one, E_a)
+    UB, VB = rsum(b.op("Mul", B_a, dt), [1]), rsum(b.op("Mul", B_a, du), [1])  # [N, A]
+    UT, VT = rsum(b.op("Mul", tm3, dt), [1]), rsum(b.op("Mul", tm3, du), [1])
+    Ra = b.op("Add", b.op("Add", b.op("Mul", b.op("Mul", E_a, Bs_a), t0), UB), b.op("Mul", refl_a, VB))
+    R = per_channel(b.op("Mul", Ra, "absorber_weight"))  # [N, C]
     bt0 = b.op("Div", "planck_b", b.op("Log", b.op("Add", one, b.op("Reciprocal", R))))
     B0, dB0 = planck(bt0, "planck_b")
     bt_gray = b.op("Sub", bt0, b.op("Div", b.op("Sub", B0, R), dB0))
-    f = b.op("Add", UT, b.op("Mul", unsq(Ts1, 2), t0))
+    f_a = b.op("Add", UT, b.op("Mul", Ts1, t0))
+
+    def by_channel(v):  # [N, A] -> [N, C, K]
+        return b.op("Reshape", v, ints([0, C, K]))
+
+    f, t0_c, VT_c = by_channel(f_a), by_channel(t0), by_channel(VT)
+    E3 = unsq(E, 2)  # [N, C, 1]
     Ts3 = unsq(Ts1, 2)  # [N, 1, 1]
 
     # ---- networks, channel-major [C, N, H]
     shape_nc1 = b.op("Concat", n_pad := b.op("Shape", Ts, start=0, end=1), ints([C, 1]), axis=0)
-    own = b.op("Concat", unsq(bt_gray, 2), f, t0, VT, b.op("Expand", Ts3, shape_nc1),
+    own = b.op("Concat", unsq(bt_gray, 2), f, t0_c, VT_c, b.op("Expand", Ts3, shape_nc1),
                b.op("Expand", unsq(sec, 1, 2), shape_nc1), E3, axis=2)  # [N, C, V]
     own_c = b.op("Sub", b.op("Transpose", own, perm=[1, 0, 2]), "own_center")  # [C, N, V]
     pre_z = b.op("Transpose", b.op("Reshape", b.op("MatMul", z, "layer1_z"), ints([0, C, H1])), perm=[1, 0, 2])
@@ -267,31 +284,36 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     d_z = b.op("Transpose", b.op("MatMul", g, "layer1_z_t"), perm=[1, 0, 2])  # [N, C, Kz]
     d_own = b.op("Transpose", b.op("MatMul", g, "layer1_own_t"), perm=[1, 0, 2])  # [N, C, V]
     d_bt_gray, d_f, d_g, d_r, d_ts, _, d_e = b.op_multi("Split", [d_own, ints([1, K, K, K, 1, 1, 1])], 7, axis=2)
-    lam_r = b.op("Mul", b.op("Div", b.op("Add", d_bt_gray, one), unsq(dB0, 2)), "absorber_weight")  # [N, C, K]
+    flat = ints([0, A])
+    lam_r = b.op("Mul", b.op("Reshape", b.op("Expand", b.op("Div", b.op("Add", d_bt_gray, one), unsq(dB0, 2)),
+                                              b.op("Concat", n_pad, ints([C, K]), axis=0)), flat),
+                 "absorber_weight")  # [N, A]
+    d_f, d_g, d_r = (b.op("Reshape", v, flat) for v in (d_f, d_g, d_r))
 
-    def l4(v):
+    def l3(v):  # [N, A] -> [N, 1, A]
         return unsq(v, 1)
 
-    X = b.op("Add", b.op("Mul", l4(lam_r), B4), b.op("Mul", l4(d_f), tm4))
-    Y = b.op("Add", b.op("Mul", b.op("Mul", l4(lam_r), unsq(refl3, 1)), B4), b.op("Mul", l4(d_r), tm4))
-    Vsum = b.op("Add", b.op("Mul", b.op("Mul", lam_r, refl3), VB), b.op("Mul", d_r, VT))
-    S = b.op("Add", b.op("Add", b.op("Mul", lam_r, b.op("Mul", E3, Bs3)), b.op("Mul", d_f, Ts3)), d_g)
+    X = b.op("Add", b.op("Mul", l3(lam_r), B_a), b.op("Mul", l3(d_f), tm3))
+    lam_refl = b.op("Mul", lam_r, refl_a)
+    Y = b.op("Add", b.op("Mul", l3(lam_refl), B_a), b.op("Mul", l3(d_r), tm3))
+    Vsum = b.op("Add", b.op("Mul", lam_refl, VB), b.op("Mul", d_r, VT))
+    S = b.op("Add", b.op("Add", b.op("Mul", lam_r, b.op("Mul", E_a, Bs_a)), b.op("Mul", d_f, Ts1)), d_g)
     inc = b.op("CumSum", b.op("Add", b.op("Mul", t_lo, X), b.op("Mul", u_lo, Y)), axis1)
     exc = b.op("CumSum", b.op("Add", b.op("Mul", t_hi, X), b.op("Mul", u_hi, Y)), axis1, exclusive=1)
     const = b.op("Neg", b.op("Add", b.op("Add", Vsum, Vsum), b.op("Mul", S, t0)))
-    h_tau = b.op("Mul", b.op("Add", b.op("Sub", inc, exc), l4(const)), path4)  # dJ/dtau * path [N, Lm, C, K]
-    hk = b.op("Mul", b.op("Reshape", unsq(h_tau, 4), ints([0, Lm, C, K, 1])),
-              b.op("Reshape", kappa, ints([0, Lm, C, K, 3])))
-    hk = b.op("Reshape", hk, ints([0, Lm, C, K * 3]))
-    d_lnt = rsum(b.op("Mul", hk, "gray_temperature_exponent"), [3])  # [N, Lm, C]
-    d_lnq = rsum(b.op("Mul", hk, "gray_humidity_power"), [3])
-    direct = b.op("Add", b.op("Mul", l4(lam_r), b.op("Mul", dB4, b.op("Add", dt, b.op("Mul", unsq(refl3, 1), du)))),
-                  b.op("Add", b.op("Mul", l4(d_f), dt), b.op("Mul", l4(d_r), du)))
-    g_tm = b.op("Add", rsum(direct, [3]), b.op("Div", d_lnt, unsq(tm, 2)))
+    h_tau = b.op("Mul", b.op("Add", b.op("Sub", inc, exc), l3(const)), path3)  # dJ/dtau * path [N, Lm, A]
+    # d tau / d ln T and d ln q per unit path: sum over the terms of n_g k_g and m_g k_g
+    k_lnt = b.op("Add", b.op("Add", b.op("Mul", k_dry, "gray_temperature_exponent_dry"),
+                             b.op("Mul", k_line, "gray_temperature_exponent_line")),
+                 b.op("Mul", k_cont, "gray_temperature_exponent_continuum"))
+    k_lnq = b.op("Add", k_line, b.op("Add", k_cont, k_cont))
+    direct = b.op("Add", b.op("Mul", l3(lam_r), b.op("Mul", dB_a, b.op("Add", dt, b.op("Mul", l3(refl_a), du)))),
+                  b.op("Add", b.op("Mul", l3(d_f), dt), b.op("Mul", l3(d_r), du)))
+    g_tm = b.op("Add", direct, b.op("Div", b.op("Mul", h_tau, k_lnt), tm3))
     q_on = b.op("Cast", b.op("Greater", b.op("MatMul", q, "layer_mean"), floor), to=b.elem)
-    g_qm = b.op("Mul", b.op("Div", d_lnq, unsq(qm_c, 2)), unsq(q_on, 2))
-    g_levels = b.op("MatMul", b.op("Transpose", b.op("Concat", g_tm, g_qm, axis=2), perm=[0, 2, 1]),
-                    "layer_mean_t")  # [N, 2C, L]
+    g_qm = b.op("Mul", b.op("Div", b.op("Mul", h_tau, k_lnq), unsq(qm_c, 2)), unsq(q_on, 2))
+    g_layers = rsum(b.op("Reshape", b.op("Concat", g_tm, g_qm, axis=2), ints([0, Lm, 2 * C, K])), [3])
+    g_levels = b.op("MatMul", b.op("Transpose", g_layers, perm=[0, 2, 1]), "layer_mean_t")  # [N, 2C, L]
     gT_gray, gq_gray = b.op_multi("Split", [g_levels, ints([C, C])], 2, axis=1)
     d_x = b.op("MatMul", d_z, "compression_projection_t")  # [N, C, 2L]
     dT_z, dlnq_z = b.op_multi("Split", [d_x, ints([L, L])], 2, axis=2)
@@ -308,9 +330,9 @@ def build_model(layout: GraphLayout, arrays: dict[str, np.ndarray], *, dtype=np.
     outputs["brightness_temperature"] = bt
     outputs["jacobian_air_temperature"] = uncollapse(gT)
     outputs["jacobian_specific_humidity"] = uncollapse(gq)
-    d_ts_gray = rsum(b.op("Mul", t0, b.op("Add", b.op("Mul", lam_r, b.op("Mul", E3, unsq(dBs, 2))), d_f)), [2])
+    d_ts_gray = per_channel(b.op("Mul", t0, b.op("Add", b.op("Mul", lam_r, b.op("Mul", E_a, dBs_a)), d_f)))
     outputs["jacobian_surface_temperature"] = b.op("Add", d_ts_gray, b.op("Squeeze", d_ts, ints(2)))
-    d_e_gray = rsum(b.op("Mul", lam_r, b.op("Sub", b.op("Mul", Bs3, t0), VB)), [2])
+    d_e_gray = per_channel(b.op("Mul", lam_r, b.op("Sub", b.op("Mul", Bs_a, t0), VB)))
     outputs["jacobian_surface_emissivity"] = b.op("Add", d_e_gray, b.op("Squeeze", d_e, ints(2)))
 
     # ---- uncertainty and flags
@@ -416,9 +438,10 @@ def primary_shapes(layout: GraphLayout) -> dict[str, tuple[int, ...]]:
         "compression_projection_t": (Kz, 2 * L),
         "reconstruction": (2 * L, 2 * L), "reconstruction_offset": (2 * L,),
         "novelty_scale": (Kz, 1), "reconstruction_scale": (2 * L, 2),
-        "gray_exponent": (3, C * K * 3), "gray_log_k": (C * K * 3,),
-        "gray_temperature_exponent": (C, K * 3), "gray_humidity_power": (K * 3,),
-        "absorber_weight": (C, K), "planck_b": (C,),
+        "gray_exponent": (3, 3 * C * K), "gray_log_k": (3 * C * K,),
+        "gray_temperature_exponent_dry": (C * K,), "gray_temperature_exponent_line": (C * K,),
+        "gray_temperature_exponent_continuum": (C * K,),
+        "absorber_weight": (C * K,), "planck_b": (C,),
         "layer1_z": (Kz, C * h[0]), "layer1_z_t": (C, h[0], Kz),
         "layer1_own": (C, V, h[0]), "layer1_own_t": (C, h[0], V), "layer1_bias": (C, 1, h[0]),
         "own_center": (C, 1, V),

@@ -96,9 +96,13 @@ def _channel_arrays(emu: TrainedEmulator, layout: _graph.GraphLayout) -> dict:
         out["output_offset"][c] = ch.target_mean + ch.target_scale * float(ch.intercepts[-1][0])
         out["sigma_offset"][c], out["sigma_slope"][c] = ch.sigma_offset, ch.sigma_slope
     out.update({
-        "gray_exponent": expo.reshape(3, -1), "gray_log_k": log_k.reshape(-1),
-        "gray_temperature_exponent": expo[1].reshape(C, K * 3), "gray_humidity_power": np.tile(GAS_POWERS, K),
-        "absorber_weight": weight, "planck_b": planck_b,
+        # term-major columns: [dry (A), water vapour (A), continuum (A)], A = C K channel-major
+        "gray_exponent": expo.transpose(0, 3, 1, 2).reshape(3, 3 * C * K),
+        "gray_log_k": log_k.transpose(2, 0, 1).reshape(-1),
+        "gray_temperature_exponent_dry": expo[1, :, :, 0].reshape(-1),
+        "gray_temperature_exponent_line": expo[1, :, :, 1].reshape(-1),
+        "gray_temperature_exponent_continuum": expo[1, :, :, 2].reshape(-1),
+        "absorber_weight": weight.reshape(-1), "planck_b": planck_b,
         "layer1_z": w1z.transpose(1, 0, 2).reshape(Kz, C * h[0]), "layer1_z_t": w1z.transpose(0, 2, 1),
         "layer1_own": w1v, "layer1_own_t": w1v.transpose(0, 2, 1), "own_center": own_center,
         "output_weight_row": out["output_weight"].transpose(0, 2, 1),
