@@ -107,6 +107,18 @@ def accuracy(bundle_path: Path, test: xr.Dataset) -> dict:
         jac = (f"   {100 * row['jT_med']:6.2f}% {100 * row['jT_p95']:6.2f}% {100 * row['jq_med']:6.2f}% "
                f"{100 * row['jq_p95']:6.2f}%") if has_jac else ""
         print(f"{cid:>10s} {row['bias']:8.4f} {row['rmse']:8.4f} {row['p999']:8.4f} {row['max']:8.4f}{jac}")
+    if has_jac:
+        # spurious sensitivity: each channel's largest |dBT/d ln q| (95th percentile over the
+        # profiles) as a fraction of the largest physical one over all channels
+        q = test["specific_humidity"].values[ok][:, order]
+        emu_q = np.abs(out["jacobian_specific_humidity"][ok].astype(float) * q[:, None, :]).max(axis=2)
+        phy_q = np.abs(test["jacobian_specific_humidity"].sel(channel=ids).values[ok][:, :, order]
+                       * q[:, None, :]).max(axis=2)
+        scale = np.quantile(phy_q, 0.95, axis=0).max()
+        print("humidity sensitivity, p95 over profiles of max |dBT/d ln q| as % of the largest physical one "
+              "(emulator / physics): " + ", ".join(
+                  f"{cid} {100 * np.quantile(emu_q[:, i], 0.95) / scale:.2g}/{100 * np.quantile(phy_q[:, i], 0.95) / scale:.2g}"
+                  for i, cid in enumerate(ids)))
     sigma = out["brightness_temperature_uncertainty"][ok].astype(float)
     within = np.abs(err[ok]) <= 2.0 * sigma
     print("uncertainty: |error| <= 2 sigma for " + f"{100 * within.mean():.1f} % of profile-channels (per channel "
