@@ -25,6 +25,9 @@ LARGE_UNCERTAINTY = 32
 UNUSUAL_TROPOPAUSE = 64
 """The temperature at the lapse-rate tropopause is outside its training range for that level."""
 
+ENVELOPE = OUTSIDE_TRAINING_BOUNDS | NOVEL_STATE | LARGE_UNCERTAINTY | UNUSUAL_TROPOPAUSE
+"""The emulator's own tests (outside what it learned): the bits ``fallback="physics"`` recomputes."""
+
 FLAG_MASKS = np.array(
     [INVALID_INPUT, OUTSIDE_TRAINING_BOUNDS, NOVEL_STATE, PHYSICS_FALLBACK, SUPERSATURATED, LARGE_UNCERTAINTY,
      UNUSUAL_TROPOPAUSE],

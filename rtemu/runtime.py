@@ -192,7 +192,8 @@ class EmulatedOperator(_OperatorBase):
     fallback : {None, "physics"}
         * ``None``: flagged profiles keep emulated values (and their flags).
         * ``"physics"``: profiles outside the training envelope (flag bits
-          ``outside_training_bounds`` or ``novel_state``) are recomputed with the physical
+          ``outside_training_bounds``, ``novel_state``, ``large_uncertainty`` or
+          ``unusual_tropopause``, :data:`rtemu.flags.ENVELOPE`) are recomputed with the physical
           model and get the ``physics_fallback`` bit.
     errors : {"mask", "raise"}
         * ``"mask"`` (default): invalid profiles get NaN outputs and ``invalid_input``.
@@ -351,7 +352,7 @@ class EmulatedOperator(_OperatorBase):
         flag = (flag if self._subset is None else flag[:, self._subset]).astype(np.int32)
         arrays = self._caller_arrays(raw, prep)
         if self.fallback == "physics":
-            outside = (flag & (_flags.OUTSIDE_TRAINING_BOUNDS | _flags.NOVEL_STATE)).any(axis=1) & prep.valid
+            outside = (flag & _flags.ENVELOPE).any(axis=1) & prep.valid
             if outside.any():
                 self._recompute_with_physics(prep, outside, arrays, jacobian)
                 flag[outside] |= _flags.PHYSICS_FALLBACK
