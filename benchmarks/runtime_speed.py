@@ -7,10 +7,10 @@ Measured side by side in one run, on the demo instrument and its 60-level grid:
   runtime operators (what a user calls) and through the bare onnxruntime session;
 * the emulator's FLOP rate (counted from the MatMul shapes of its graph) as a fraction of
   this machine's float32 matrix-multiply rate, measured here with onnxruntime's own MatMul
-  [target: BT at batch 10,000 >= 50 %];
+  [target: with Jacobians at batch 10,000 >= 50 %];
 * single-profile latency of the emulator with Jacobians through the ONNX session
-  [target < 100 us];
-* the speed-up with Jacobians at batch 10,000 [target >= 100x];
+  [target < 50 us, aim 30 us];
+* the speed-up with Jacobians at batch 10,000 [target >= 50x, aim 100x];
 * where the time goes: onnxruntime's per-node profile, summed by operator type.
 
 Usage:  python benchmarks/runtime_speed.py [--model emulator.onnx] [--quick]
@@ -68,32 +68,41 @@ def matmul_rate(threads=None, size=1024, repeats=20):
     return 2.0 * size**3 / dt
 
 
-def graph_flops(path, outputs=None, n=1):
-    """Multiply-add FLOPs per call of the (pruned) graph for batch ``n``, from MatMul/Gemm shapes."""
+def graph_flops(path, outputs=None, n=16):
+    """Multiply-add FLOPs per profile of the (pruned) graph, from the MatMul/Gemm operand
+    shapes seen in one onnxruntime run at batch ``n`` (a multiple of the graph's padding
+    block, so no padded rows are counted)."""
     model = onnx.load(str(path))
     if outputs is not None:
         model = rb.pruned_model(model, outputs)
+    inits = {t.name: list(t.dims) for t in model.graph.initializer}
+    nodes = [node for node in model.graph.node if node.op_type in ("MatMul", "Gemm")]
+    probe = onnx.ModelProto()
+    probe.CopyFrom(model)
+    names = sorted({i for node in nodes for i in node.input[:2] if i not in inits})
+    known = {o.name for o in probe.graph.output}
+    probe.graph.output.extend(helper.make_empty_tensor_value_info(name) for name in names if name not in known)
+    session = ort.InferenceSession(probe.SerializeToString(), providers=["CPUExecutionProvider"])
+    feeds = {}
     for value in model.graph.input:
-        dim = value.type.tensor_type.shape.dim[0]
-        dim.Clear()
-        dim.dim_value = n
-    inferred = onnx.shape_inference.infer_shapes(model)
-    shapes = {}
-    for value in list(inferred.graph.value_info) + list(inferred.graph.input) + list(inferred.graph.output):
-        shapes[value.name] = [d.dim_value for d in value.type.tensor_type.shape.dim]
-    for init in inferred.graph.initializer:
-        shapes[init.name] = list(init.dims)
+        dims = [n] + [d.dim_value for d in value.type.tensor_type.shape.dim[1:]]
+        feeds[value.name] = np.full(dims, 1.0, np.float32)
+    feeds["air_temperature"][:] = 250.0
+    feeds["specific_humidity"][:] = 1e-3
+    feeds["surface_temperature"][:] = 280.0
+    feeds["surface_emissivity"][:] = 0.9
+    feeds["sensor_zenith_angle"][:] = 10.0
+    feeds["surface_air_pressure"][:] = 1013.25
+    shapes = dict(inits)
+    shapes.update({name: list(v.shape) for name, v in zip(names, session.run(names, feeds))})
     total = 0
-    for node in inferred.graph.node:
-        if node.op_type in ("MatMul", "Gemm"):
-            a, b = shapes.get(node.input[0]), shapes.get(node.input[1])
-            if not a or not b or 0 in a or 0 in b:
-                raise RuntimeError(f"shape of {node.name or node.op_type} unknown")
-            if node.op_type == "Gemm" and any(att.name == "transB" and att.i for att in node.attribute):
-                b = b[::-1]
-            batch = np.broadcast_shapes(tuple(a[:-2]), tuple(b[:-2])) if len(a) > 2 or len(b) > 2 else ()
-            total += 2 * int(np.prod(batch)) * a[-2] * a[-1] * b[-1]
-    return total
+    for node in nodes:
+        a, b = shapes[node.input[0]], shapes[node.input[1]]
+        if node.op_type == "Gemm" and any(att.name == "transB" and att.i for att in node.attribute):
+            b = b[::-1]
+        batch = np.broadcast_shapes(tuple(a[:-2]), tuple(b[:-2])) if len(a) > 2 or len(b) > 2 else ()
+        total += 2 * int(np.prod(batch)) * a[-2] * a[-1] * b[-1]
+    return total // n
 
 
 def _feeds(states, channels):
@@ -103,6 +112,7 @@ def _feeds(states, channels):
         "surface_temperature": states["surface_temperature"].values.astype(np.float32),
         "surface_emissivity": states["surface_emissivity"].sel(channel=list(channels)).values.astype(np.float32),
         "sensor_zenith_angle": states["sensor_zenith_angle"].values.astype(np.float32),
+        "surface_air_pressure": np.full(states.sizes["profile"], float(states["air_pressure"].max()), np.float32),
     }
 
 
@@ -180,7 +190,7 @@ def main(argv=None):
     sess_one = rb.make_session(model, threads=1)
     flops_bt = graph_flops(model, ["brightness_temperature", "quality_flag"])
     flops_all = graph_flops(model)
-    print(f"emulator MatMul FLOPs per profile: BT {flops_bt:,}; BT+Jacobians {flops_all:,}")
+    print(f"emulator MatMul FLOPs per profile (from the graph): BT {flops_bt:,}; BT+Jacobians {flops_all:,}")
 
     rows = []
     for batch in (1, 100, 10_000, 100_000):
@@ -210,10 +220,10 @@ def main(argv=None):
     achieved = flops_bt * 10_000 / r10k[5]
     achieved_all = flops_all * 10_000 / r10k[6]
     print(f"\nwith Jacobians at batch 10,000 (runtime operators): emulator {speedup:.0f}x faster "
-          f"than the physics [target >= 100x]")
+          f"than the physics [target >= 50x, aim 100x]; bare session +J vs physics +J: {r10k[2] / r10k[6]:.0f}x")
     print(f"emulator BT at batch 10,000 (session): {achieved / 1e9:.1f} GFLOP/s = {achieved / rate:.0%} of "
-          f"the MatMul rate [target >= 50 %]; with Jacobians {achieved_all / 1e9:.1f} GFLOP/s = "
-          f"{achieved_all / rate:.0%}")
+          f"the MatMul rate; with Jacobians {achieved_all / 1e9:.1f} GFLOP/s = "
+          f"{achieved_all / rate:.0%} [target >= 50 %]")
 
     one = {k: v[:1] for k, v in feeds.items()}
     lat = []
@@ -235,7 +245,7 @@ def main(argv=None):
         physical.simulate(sub1, jacobian=True)
         phys_lat.append(time.perf_counter() - t0)
     print(f"single profile with Jacobians, ONNX session (1 thread): median {np.median(lat):.0f} us, "
-          f"95th pct {np.percentile(lat, 95):.0f} us [target < 100 us]; through EmulatedOperator.simulate "
+          f"95th pct {np.percentile(lat, 95):.0f} us [target < 50 us]; through EmulatedOperator.simulate "
           f"(validation, units, xarray): median {np.median(op_lat) * 1e6:.0f} us; PhysicalOperator.simulate "
           f"(same checks and labelling): median {np.median(phys_lat) * 1e6:.0f} us")
 

@@ -71,7 +71,7 @@ def main(argv=None):
 
     # With the fallback, a flagged column's values are the physical model's (the flag then
     # carries physics_fallback beside the envelope bits), so its observations may be used.
-    accept = (flags.PHYSICS_FALLBACK | flags.OUTSIDE_TRAINING_BOUNDS | flags.NOVEL_STATE) if args.fallback else 0
+    accept = (flags.PHYSICS_FALLBACK | flags.ENVELOPE) if args.fallback else 0
     result = assim.var1d(operator, background, observations, b_matrix=b, max_iter=10, accept_flags=accept)
     d = result.diagnostics
     err_b = background["air_temperature"] - truth["air_temperature"]

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import importlib
 
-__version__ = "0.1.0"
+__version__ = "0.2.0"
 
 from rtemu import flags, physics
 from rtemu.instrument import AbsorptionTables, Band, Channel, Instrument, list_instruments, load_instrument

@@ -36,7 +36,9 @@ __all__ = ["FORMAT_VERSION", "Bundle", "BundleError", "read_bundle", "describe",
            "weights_sha256", "sign_bundle", "SIGNATURE_KEY"]
 
 #: Bundle format written by this rtemu; files with a larger number are refused.
-FORMAT_VERSION = 6
+FORMAT_VERSION = 7
+#: The rtemu release that introduced :data:`FORMAT_VERSION`; older formats are refused.
+FORMAT_SINCE = "0.2.0"
 PREFIX = "rtemu."
 
 REQUIRED_KEYS = (
@@ -326,6 +328,11 @@ def read_bundle(path, *, key=None) -> Bundle:
         )
     if version < 1:
         raise BundleError(f"{path}: rtemu.format_version {version} is not a valid format (corrupted?)")
+    if version < FORMAT_VERSION:
+        raise BundleError(
+            f"{path}: written in rtemu bundle format {version}, which this rtemu no longer reads (it reads "
+            f"format {FORMAT_VERSION}); retrain with rtemu >= {FORMAT_SINCE}"
+        )
     missing = [k for k in REQUIRED_KEYS if k not in props]
     if missing:
         raise BundleError(f"{path}: incomplete rtemu metadata, missing {missing}")
@@ -464,29 +471,6 @@ def make_session(path, *, outputs=None, threads: int | None = None, check: bool 
 
 
 # ---- description --------------------------------------------------------------------------
-def _features_summary(features: dict) -> str:
-    skip = ("line_kernels", "continuum_kernels", "channel_kernels", "reflection_kernels", "kernel_temperature_laws")
-    return ", ".join(f"{k} {v}" for k, v in sorted(features.items()) if k not in skip)
-
-
-def _kernels_summary(features: dict) -> str:
-    line, cont = features.get("line_kernels", []), features.get("continuum_kernels", [])
-    channels = features.get("channel_kernels", [])
-    parts = []
-    if line:
-        parts.append(f"line path {line} m2 kg-1")
-    if cont:
-        parts.append(f"continuum path {cont} m2 kg-1")
-    if channels:
-        parts.append(f"{len(channels)} from the instrument's channels ({sum(len(c) for c in channels)} sub-bands)")
-    if not parts:
-        return "none"
-    laws = features.get("kernel_temperature_laws") or []
-    if laws:
-        parts.append("absorption in (T_ref / T)^n, T_ref {:g} K, n dry/line/continuum {:g}/{:g}/{:g}".format(*laws))
-    return "; ".join(parts) + ("; with the reflected-sky term" if features.get("reflection_kernels") else "")
-
-
 def _grid_lines(grid, per_line: int = 10) -> list[str]:
     """The grid's pressures [hPa], ``per_line`` to a line, in the bundle's order."""
     values = [f"{x:.7g}" for x in np.asarray(grid, dtype=float)]
@@ -519,8 +503,8 @@ def describe(path, key=None) -> str:
                                    if key is not None else
                                    "HMAC-SHA256 present, not checked (give --key KEYFILE)" if signed else
                                    "none (sign with 'rtemu sign --key KEYFILE')"),
-        f"  compression        {b.graph['n_components']} components ({_features_summary(b.features)})",
-        f"  opacity kernels    {_kernels_summary(b.features)}",
+        f"  compression        {b.graph['n_components']} components of T and ln q",
+        f"  gray absorbers     up to {b.graph['n_absorbers']} per channel (learned from the training data)",
         f"  hidden layers      {b.graph['hidden']} (padded)",
         "  inputs:",
     ]
@@ -546,32 +530,14 @@ def describe(path, key=None) -> str:
                      f"{trop['base_pressure_hpa'][-1]:.4g} hPa with lapse rate <= {trop['lapse_rate_k_per_km']:g} K/km; "
                      f"training reached {int(reached.sum())} of {lo.size} levels, temperature there "
                      + (f"{lo[reached].min():.4g} .. {hi[reached].max():.4g} K" if reached.any() else "-"))
-    lines.append("  validation (K):   channel        rmse     bias    p99.9      max  hidden      iterations  inputs"
-                 "       Jacobian term")
+    lines.append("  validation (K):   channel        rmse     bias    p99.9      max  absorbers  gray rmse  hidden"
+                 "      iterations  within 2 sigma")
     for cid in b.channel_ids:
         s = b.channel_stats[cid]
-        kernels = _inputs_label(s)
-        # channels fitted with the Jacobian term: its iterations and the median relative
-        # Jacobian error on the validation probes before -> after
-        jterm = (f"{s['jacobian_iterations']} it, {s['validation_jacobian_error_median_before']:.3f} -> "
-                 f"{s['validation_jacobian_error_median']:.3f}" if "jacobian_iterations" in s else "-")
         lines.append(
             f"    {cid:>20s} {s['validation_rmse_k']:8.4f} {s['validation_bias_k']:8.4f} "
-            f"{s['validation_p999_abs_k']:8.4f} {s['validation_max_abs_k']:8.4f}  "
-            f"{str(s['hidden_layers']):12s} {s['iterations']:<11d} {kernels:12s} {jterm}"
+            f"{s['validation_p999_abs_k']:8.4f} {s['validation_max_abs_k']:8.4f}  {s['n_absorbers']:<10d} "
+            f"{s['gray_only_validation_rmse_k']:8.4f}  {str(s['hidden_layers']):12s} {s['iterations']:<11d} "
+            f"{s['uncertainty_validation_within_2_sigma']:.3f}"
         )
-    lines.append("  inputs: all = profile components and kernels, profiles = no kernels, kernels = kernel "
-                 "scalars, Ts and zenith only; /own = linear part on the channel's own kernel")
     return "\n".join(lines)
-
-
-def _inputs_label(stats: dict) -> str:
-    """What a channel's network and linear part see (recipe opacity_kernels, profile_blocks,
-    linear_inputs), from its stored statistics (keys absent in older bundles: defaults)."""
-    if not stats.get("opacity_kernels"):
-        label = "profiles"
-    elif not stats.get("profile_blocks", True):
-        label = "kernels"
-    else:
-        label = "all"
-    return label + ("/own" if stats.get("linear_inputs") == "own_kernel" else "")

@@ -170,7 +170,6 @@ def _add_train(sub):
     p.add_argument("--recipe", required=True, help="recipe name (demo, full) or TOML path")
     p.add_argument("--output", required=True, help="ONNX bundle to write")
     p.add_argument("--channels", default=None, help="comma-separated channel ids to train")
-    p.add_argument("--update", default=None, help="existing bundle whose other channels are kept")
     p.add_argument("--workers", type=int, default=None, help="parallel channel fits")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=_run_train)
@@ -181,14 +180,12 @@ def _run_train(args):
     from rtemu._io import exclusive_output
 
     channels = _channel_list(args.channels)
-    # The bundle may be the one --update reads (rewritten atomically), never the data.
     with exclusive_output(args.output, inputs=[args.data]):
         export.train_to_onnx(
             args.data,
             args.recipe,
             args.output,
             channels=channels,
-            update=args.update,
             workers=args.workers,
             progress=not args.quiet,
         )

@@ -51,7 +51,7 @@ LAYERS = ((1013.25, 700.0), (700.0, 400.0), (400.0, 100.0), (100.0, 10.0), (10.0
 
 #: With fallback="physics", an envelope bit always comes with physics_fallback: the value is
 #: the physical model's, so the assimilation may use it.
-_ACCEPTED = _flags.PHYSICS_FALLBACK | _flags.OUTSIDE_TRAINING_BOUNDS | _flags.NOVEL_STATE
+_ACCEPTED = _flags.PHYSICS_FALLBACK | _flags.ENVELOPE
 
 
 def _workers() -> int:

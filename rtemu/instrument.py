@@ -354,6 +354,22 @@ class Instrument:
             raise ValueError(f"{source}: not valid TOML: {exc}") from None
         return _parse(doc, source, base_dir, absorption_tables)
 
+    @classmethod
+    def channels_from_toml(cls, text: str, source: str = "<string>") -> "Instrument":
+        """The band-less instrument (ids, positions, noise) an instrument text describes.
+
+        What an emulator needs of its teacher's instrument; unlike :meth:`from_toml` it needs
+        no absorption-table file, so a training set of a table instrument trains anywhere.
+        """
+        try:
+            doc = tomllib.loads(text)
+        except tomllib.TOMLDecodeError as exc:
+            raise ValueError(f"{source}: invalid TOML: {exc}") from None
+        doc = {k: v for k, v in doc.items() if k not in ("absorption_tables", "absorption_tables_sha256")}
+        doc["channels"] = [{k: v for k, v in ch.items() if k != "bands"} if isinstance(ch, dict) else ch
+                           for ch in doc.get("channels", [])]
+        return _parse(doc, source).without_bands()
+
     def to_toml(self) -> str:
         """TOML text that :meth:`from_toml` reads back to an equal instrument."""
         lines = [f"name = {_toml_str(self.name)}", f"description = {_toml_str(self.description)}"]

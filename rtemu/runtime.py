@@ -31,7 +31,7 @@ from rtemu import flags as _flags
 from rtemu import physics as _physics
 from rtemu._checks import onto_grid, prepare_inputs
 from rtemu.instrument import Instrument, load_instrument
-from rtemu.levels import GRID_TOLERANCE_HPA
+from rtemu.levels import GRID_TOLERANCE_HPA, cut_at_surface
 from rtemu.teacher import PHYSICS_TEACHER
 
 ErrorMode = Literal["raise", "mask"]
@@ -44,7 +44,7 @@ def _is_lazy(dataset: xr.Dataset) -> bool:
                for v in dataset.variables.values())
 
 
-def _output_template(dataset: xr.Dataset, channel_ids, jacobian: bool) -> xr.Dataset:
+def _output_template(dataset: xr.Dataset, channel_ids, jacobian: bool, extra=()) -> xr.Dataset:
     """A lazy Dataset with the output schema, chunked like ``dataset`` along profile."""
     import dask.array as da
 
@@ -59,13 +59,18 @@ def _output_template(dataset: xr.Dataset, channel_ids, jacobian: bool) -> xr.Dat
         for name in ("jacobian_surface_temperature", "jacobian_surface_emissivity"):
             arrays[name] = da.empty((n, nchan), chunks=(pchunks, nchan))
     flag = da.zeros((n, nchan), chunks=(pchunks, nchan), dtype=np.int32)
-    return _physics.label_outputs(arrays, dataset, channel_ids, flag)
+    out = _physics.label_outputs(arrays, dataset, channel_ids, flag)
+    for name, attrs in extra:
+        out[name] = xr.Variable(("profile", "channel"), da.empty((n, nchan), chunks=(pchunks, nchan)), attrs)
+    return out
 
 
 class _OperatorBase:
     """Shared protocol: lazy dispatch, tangent linear and adjoint from the Jacobians."""
 
     instrument: Instrument
+    #: (name, attributes) of outputs beyond the physics' schema, (profile, channel) each.
+    _extra_outputs: tuple = ()
 
     @property
     def channels(self) -> tuple[str, ...]:
@@ -80,7 +85,7 @@ class _OperatorBase:
         if _is_lazy(dataset):
             # Structural checks now (cheap, on the first profile); values per chunk later.
             self._simulate_eager(dataset.isel(profile=slice(0, 1)).compute(), False)
-            template = _output_template(dataset, self.channels, jacobian)
+            template = _output_template(dataset, self.channels, jacobian, self._extra_outputs)
             return xr.map_blocks(
                 _simulate_block, dataset, args=(self, jacobian), template=template
             )
@@ -181,10 +186,15 @@ def _session_for(path: str, digest: str, threads: int | None, jacobian: bool):
     with _SESSIONS_LOCK:
         session = _SESSIONS.get(key)
         if session is None:
-            outputs = None if jacobian else ["brightness_temperature", "quality_flag"]
+            outputs = None if jacobian else ["brightness_temperature", "brightness_temperature_uncertainty",
+                                             "quality_flag"]
             session = _bundle.make_session(path, outputs=outputs, threads=threads, check=False)
             _SESSIONS[key] = session
     return session
+
+
+_UNCERTAINTY_ATTRS = {"long_name": "emulator uncertainty of the brightness temperature (one standard deviation)",
+                      "units": "K"}
 
 
 class EmulatedOperator(_OperatorBase):
@@ -209,7 +219,8 @@ class EmulatedOperator(_OperatorBase):
     fallback : {None, "physics"}
         * ``None``: flagged profiles keep emulated values (and their flags).
         * ``"physics"``: profiles outside the training envelope (flag bits
-          ``outside_training_bounds`` or ``novel_state``) are recomputed with the physical
+          ``outside_training_bounds``, ``novel_state``, ``large_uncertainty`` or
+          ``unusual_tropopause``, :data:`rtemu.flags.ENVELOPE`) are recomputed with the physical
           model and get the ``physics_fallback`` bit. Only for a bundle whose teacher is
           rtemu's physics (:attr:`rtemu.bundle.Bundle.teacher`).
     errors : {"mask", "raise"}
@@ -222,17 +233,18 @@ class EmulatedOperator(_OperatorBase):
         * ``True``: profiles on any levels (shared or per profile) are carried onto the
           bundle's grid, linear in ln p (:func:`rtemu.levels.regrid_profiles`), and the
           Jacobians come back on the caller's levels. The source's surface (its
-          ``surface_air_pressure``, or its lowest level) must then be the grid's bottom
-          (within ``grid_tolerance_hpa``): the emulator has no terrain yet.
+          ``surface_air_pressure``, or its lowest level) becomes the ground.
 
-    ``surface_air_pressure`` in a dataset is accepted only where it equals the bundle's
-    bottom level (within ``grid_tolerance_hpa``) for every profile: the emulator was not
-    trained with terrain. Compute columns over terrain with :class:`PhysicalOperator`.
+    ``surface_air_pressure`` (profile) [hPa] puts the ground inside the column (terrain,
+    the semantics of :func:`rtemu.levels.cut_at_surface`); without it the ground is the
+    bundle's bottom level.
     key : str, os.PathLike or bytes, optional
         Key file (or secret) of a keyed signature: the bundle must carry an HMAC-SHA256
         signature that verifies with it (see :func:`rtemu.bundle.sign_bundle`). Without
         it only the unkeyed digests are checked, which detect corruption, not authorship.
     """
+
+    _extra_outputs = (("brightness_temperature_uncertainty", _UNCERTAINTY_ATTRS),)
 
     def __init__(self, *, path, channels=None, batch_size: int = 4096, threads: int | None = 1,
                  fallback: Literal[None, "physics"] = None, errors: ErrorMode = "mask",
@@ -312,22 +324,14 @@ class EmulatedOperator(_OperatorBase):
                 f"the bundle's grid; {_REGRID_HINT}); first offending profile index {first}"
             )
 
-    def _check_terrain(self, prep) -> None:
-        """Refuse terrain: the emulator was trained on columns down to its bottom level."""
+    def _surface_pressure(self, prep) -> np.ndarray:
+        """ps [hPa] (N,) float32: the checked ``surface_air_pressure`` (terrain), else the
+        grid's bottom pressure (no terrain)."""
         if prep.surface_air_pressure is None:
-            return
-        bottom = self._grid_surface_first[0]
-        bad = (np.abs(prep.surface_air_pressure - bottom) > self.grid_tolerance_hpa) & prep.valid
-        if bad.any():
-            first = int(np.flatnonzero(bad)[0])
-            raise ValueError(
-                f"surface_air_pressure: {prep.surface_air_pressure[first]:.6g} hPa, but this emulator has no "
-                f"terrain (rule: the surface at the bundle's bottom level {bottom:g} hPa, within "
-                f"{self.grid_tolerance_hpa:g} hPa; compute columns over terrain with PhysicalOperator or "
-                f"'rtemu simulate --instrument'); first offending profile index {first}"
-            )
+            return np.full(prep.air_temperature.shape[0], self._grid_surface_first[0], dtype=np.float32)
+        return np.asarray(prep.surface_air_pressure, dtype=np.float32)
 
-    def _run_session(self, prep, jacobian: bool) -> dict:
+    def _run_session(self, prep, jacobian: bool, surface_air_pressure=None) -> dict:
         """onnxruntime's outputs over all bundle channels, as it returns them: float32,
         levels in the bundle's order, ``quality_flag`` int32."""
         session = self._session(jacobian)
@@ -344,8 +348,10 @@ class EmulatedOperator(_OperatorBase):
             "surface_temperature": prep.surface_temperature.astype(np.float32),
             "surface_emissivity": emissivity,
             "sensor_zenith_angle": prep.sensor_zenith_angle.astype(np.float32),
+            "surface_air_pressure": (np.full(n, self._grid_surface_first[0], dtype=np.float32)
+                                     if surface_air_pressure is None else surface_air_pressure),
         }
-        names = ["brightness_temperature", "quality_flag"]
+        names = ["brightness_temperature", "brightness_temperature_uncertainty", "quality_flag"]
         if jacobian:
             names += list(_physics.JACOBIAN_NAMES)
         if n <= self.batch_size:
@@ -384,13 +390,13 @@ class EmulatedOperator(_OperatorBase):
         else:
             self._check_grid(caller)
             prep, levelmap = caller, None
-        self._check_terrain(prep)
-        raw = self._run_session(prep, jacobian)
+        raw = self._run_session(prep, jacobian, self._surface_pressure(prep))
         flag = raw.pop("quality_flag")
+        sigma = raw.pop("brightness_temperature_uncertainty")
         flag = (flag if self._subset is None else flag[:, self._subset]).astype(np.int32)
         arrays = self._caller_arrays(raw, prep)
         if self.fallback == "physics":
-            outside = (flag & (_flags.OUTSIDE_TRAINING_BOUNDS | _flags.NOVEL_STATE)).any(axis=1) & prep.valid
+            outside = (flag & _flags.ENVELOPE).any(axis=1) & prep.valid
             if outside.any():
                 self._recompute_with_physics(prep, outside, arrays, jacobian)
                 flag[outside] |= _flags.PHYSICS_FALLBACK
@@ -404,22 +410,34 @@ class EmulatedOperator(_OperatorBase):
             for values in arrays.values():
                 values[invalid] = np.nan
         flag[prep.supersaturated] |= _flags.SUPERSATURATED
+        sigma = np.array(sigma if self._subset is None else sigma[:, self._subset], dtype=np.float64)
+        sigma[(flag & _flags.PHYSICS_FALLBACK) != 0] = 0.0  # the physics' own values
+        sigma[~prep.valid] = np.nan
         out = _physics.label_outputs(arrays, dataset, self.channels, flag)
+        out["brightness_temperature_uncertainty"] = xr.Variable(("profile", "channel"), sigma,
+                                                                dict(self._extra_outputs[0][1]))
         if prep.problems:
             out.attrs["invalid_input_summary"] = "; ".join(prep.problems)
         return out
 
     def _recompute_with_physics(self, prep, rows, arrays, jacobian):
+        column = (prep.pressure_hpa[rows], prep.air_temperature[rows], prep.specific_humidity[rows])
+        cut = None
+        if prep.surface_air_pressure is not None:  # terrain: the column above the ground
+            cut = cut_at_surface(*column, prep.surface_air_pressure[rows])
+            column = (cut.pressure_hpa, cut.air_temperature, cut.specific_humidity)
         exact = _physics.transfer(
             self.instrument,
-            prep.pressure_hpa[rows],
-            prep.air_temperature[rows],
-            prep.specific_humidity[rows],
+            *column,
             prep.surface_temperature[rows],
             prep.surface_emissivity[rows],
             prep.sensor_zenith_angle[rows],
             jacobian=jacobian,
         )
+        if cut is not None:
+            for name in ("jacobian_air_temperature", "jacobian_specific_humidity"):
+                if name in exact:
+                    exact[name] = cut.jacobian_to_input_levels(exact[name])
         flipped = prep.flipped[rows]  # physics returns surface-first levels; arrays hold the caller's
         for name, values in exact.items():
             if values.ndim == 3 and flipped.any():

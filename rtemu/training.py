@@ -1,20 +1,23 @@
-"""Training: recipes, training data, and the per-channel scikit-learn emulators.
+"""Training: recipes, training data, and the per-channel emulators.
 
 Stage "training" (physics -> sampling -> training -> export -> runtime). This module fits
-the models in memory; :mod:`rtemu.export` turns them into the ONNX bundle
-(:func:`rtemu.export.train_to_onnx` is the one-call entry point).
+the models in memory and returns one :class:`TrainedEmulator` holding every array the
+export lays into the bundle (:func:`rtemu.export.train_to_onnx` is the one-call entry).
 
-Model of channel c (see :mod:`rtemu.features` for x and z)::
+Model of channel c, learned from the training file alone (its inputs and brightness
+temperatures; nothing of the model that made them)::
 
-    BT_c = lin_c(x, e_c) + mean_c + scale_c * mlp_c(z, (e_c - m_e) / s_e)
-    lin_c(x, e) = beta0 + s.beta1 + eps beta2 + eps (s.beta3)      (ridge regression)
+    BT_c = BT_gray,c + mean_c + scale_c * mlp_c(u_c)
+    u_c  = [z, BT_gray,c, f_c, g_c, r_c, Ts, sec(theta), e_c]      (standardised)
 
-with s the standardised raw features and eps the standardised emissivity; the network
-(scikit-learn ``MLPRegressor``, tanh units) fits the standardised residual of the linear
-part. Fitting the residual of a linear model leaves the network only the nonlinear part
-of the radiative transfer, whose size is far smaller than the brightness-temperature
-range; the e_c * x terms carry the surface-reflection product e (Ts - T_down) to first
-order.
+BT_gray,c and the per-absorber features f, g, r come from the channel's K learned
+effective gray absorbers (:mod:`rtemu.gray`), fitted by non-linear least squares so that
+the gray model alone matches the training brightness temperatures; K grows until the gray
+model's validation RMSE reaches the recipe's target. z is the shared profile compression
+(:mod:`rtemu.features`). The network (scikit-learn ``MLPRegressor``, tanh units, L-BFGS)
+fits the standardised residual of the gray model. The channel's uncertainty is a small
+error model, sigma_c = s0_c + s1_c d, with d the profile's largest novelty ratio,
+calibrated on the validation profiles so that 95 % of them lie within 2 sigma.
 
 Recipes are TOML files with a fixed schema (see ``SCHEMA``); the shipped ones live in
 ``rtemu/recipes``.
@@ -29,6 +32,7 @@ import sys
 import time
 import warnings
 import zlib
+
 from importlib import resources
 from pathlib import Path
 from typing import Any
@@ -43,26 +47,12 @@ else:  # pragma: no cover
 
 from rtemu import _checks
 from rtemu import atmosphere as _atm
+from rtemu import gray as _gray
 from rtemu._io import open_dataset
-from rtemu.features import (
-    HUMIDITY_TRANSFORMS,
-    ZENITH_TRANSFORMS,
-    FeatureConfig,
-    FeatureTransform,
-    channel_kernels_of,
-    temperature_laws_of,
-    kernel_columns,
-    raw_features,
-)
+from rtemu.features import ProfileCompression, fit_compression, raw_profile
 from rtemu.instrument import Instrument
+from rtemu.planck import planck_coefficients, planck_derivative
 from rtemu.teacher import PHYSICS_TEACHER
-
-#: Recipe ``[features] instrument_kernels``: none, one kernel term per sub-band of every
-#: channel, or one per channel (its sub-bands' weighted geometric-mean coefficients).
-INSTRUMENT_KERNELS = ("none", "bands", "channels")
-#: What the linear part of a channel sees: every z coordinate, or only the channel's own
-#: kernel scalars (with Ts and s(theta)).
-LINEAR_INPUTS = ("all", "own_kernel")
 
 __all__ = [
     "Recipe",
@@ -70,9 +60,11 @@ __all__ = [
     "list_recipes",
     "TrainingData",
     "load_training_data",
-    "ChannelFit",
+    "GrayAbsorbers",
+    "ChannelModel",
     "TrainedEmulator",
     "fit_emulator",
+    "fit_gray_absorbers",
 ]
 
 
@@ -112,13 +104,6 @@ def _choice(options):
     return check
 
 
-def _coefficients(v):
-    if (not isinstance(v, list) or len(v) > 64
-            or any(isinstance(k, bool) or not isinstance(k, (int, float)) or not 0 < k < float("inf") for k in v)):
-        return "a list of at most 64 positive numbers [m2 kg-1]"
-    return None
-
-
 def _layers(v):
     if (not isinstance(v, list) or not v or len(v) > 4
             or any(isinstance(h, bool) or not isinstance(h, int) or h < 1 or h > 1024 for h in v)):
@@ -128,23 +113,11 @@ def _layers(v):
 
 _NETWORK = {
     "hidden_layers": _layers,
-    "activation": _choice(("tanh",)),
-    "solver": _choice(("lbfgs", "adam")),
     "alpha": _float(0.0),
     "max_iter": _int(1),
-    "tol": _float(0.0),
-    "learning_rate_init": _float(0.0, strict_lo=True),
-    "batch_size": _int(1),
-    "early_stopping": _bool,
     "check_every": _int(1),
     "patience": _int(1),
-    "opacity_kernels": _bool,
-    "profile_blocks": _bool,
-    "linear_inputs": _choice(LINEAR_INPUTS),
-    "jacobian_weight": _float(0.0),
-    "jacobian_max_iter": _int(1),
-    "jacobian_check_every": _int(1),
-    "ridge_alpha": _float(0.0),
+    "max_absorbers": _int(1),
 }
 
 SCHEMA: dict[str, dict[str, Any]] = {
@@ -153,48 +126,31 @@ SCHEMA: dict[str, dict[str, Any]] = {
         "seed": _int(0),
         "validation_fraction": _float(0.0, 0.9, strict_lo=True),
         "max_profiles": _int(0),
-        "jacobian_profiles": _int(1),
-        "jacobian_validation_profiles": _int(1),
-        "jacobian_probes": _int(1),
-        "jacobian_floor": _float(0.0, strict_lo=True),
     },
-    "features": {
-        "humidity": _choice(HUMIDITY_TRANSFORMS),
-        "humidity_floor": _float(0.0, strict_lo=True),
-        "zenith": _choice(ZENITH_TRANSFORMS),
-        "temperature_components": _int(0),
-        "humidity_components": _int(0),
-        "linear_humidity_components": _int(0),
-        "water_path": _bool,
-        "water_path_components": _int(0),
-        "water_path_floor": _float(0.0, strict_lo=True),
-        "line_kernels": _coefficients,
-        "continuum_kernels": _coefficients,
-        "humidity_top_hpa": _float(0.0),
-        "reflection_kernels": _bool,
-        "instrument_kernels": _choice(INSTRUMENT_KERNELS),
-        "kernel_temperature_laws": _bool,
+    "features": {"temperature_components": _int(1), "humidity_components": _int(1)},
+    "absorbers": {
+        "profiles": _int(10),
+        "validation_profiles": _int(10),
+        "max_absorbers": _int(1),
+        "target_rmse_k": _float(0.0, strict_lo=True),
+        "starts": _int(1),
+        "start_evaluations": _int(1),
+        "evaluations": _int(1),
     },
-    "linear": {"residual": _bool, "ridge_alpha": _float(0.0)},
-    "network": {k: v for k, v in _NETWORK.items() if k != "ridge_alpha"},
+    "network": {k: v for k, v in _NETWORK.items() if k != "max_absorbers"},
+    "uncertainty": {"coverage": _float(0.5, 0.999), "flag_noise_fraction": _float(0.0, strict_lo=True)},
     "envelope": {"bounds_margin": _float(0.0, 1.0), "novelty_margin": _float(1.0), "tropopause_check": _bool},
 }
-#: Keys a ``[channels."<id>"]`` table may override (network settings and the ridge penalty).
-CHANNEL_KEYS = {k: v for k, v in _NETWORK.items() if k != "activation"}
+#: Keys a ``[channels."<id>"]`` table may override.
+CHANNEL_KEYS = dict(_NETWORK)
 
 DEFAULTS = {
-    "training": {"seed": 0, "validation_fraction": 0.15, "max_profiles": 0, "jacobian_profiles": 4000,
-                 "jacobian_validation_profiles": 1000, "jacobian_probes": 16, "jacobian_floor": 1e-3},
-    "features": {**dataclasses.asdict(FeatureConfig()), "instrument_kernels": "none",
-                 "kernel_temperature_laws": False},
-    "linear": {"residual": True, "ridge_alpha": 1e-3},
-    "network": {
-        "hidden_layers": [32, 32], "activation": "tanh", "solver": "lbfgs", "alpha": 1e-6,
-        "max_iter": 2000, "tol": 0.0, "learning_rate_init": 1e-3, "batch_size": 256,
-        "early_stopping": True, "check_every": 250, "patience": 3, "opacity_kernels": True, "profile_blocks": True,
-        "linear_inputs": "all",
-        "jacobian_weight": 0.0, "jacobian_max_iter": 600, "jacobian_check_every": 200,
-    },
+    "training": {"seed": 0, "validation_fraction": 0.15, "max_profiles": 0},
+    "features": {"temperature_components": 16, "humidity_components": 16},
+    "absorbers": {"profiles": 2000, "validation_profiles": 2000, "max_absorbers": 4, "target_rmse_k": 0.05,
+                  "starts": 6, "start_evaluations": 25, "evaluations": 100},
+    "network": {"hidden_layers": [32, 32], "alpha": 1e-6, "max_iter": 1000, "check_every": 250, "patience": 2},
+    "uncertainty": {"coverage": 0.95, "flag_noise_fraction": 0.5},
     "envelope": {"bounds_margin": 0.02, "novelty_margin": 1.0, "tropopause_check": True},
 }
 
@@ -214,7 +170,7 @@ class Recipe:
     settings : dict
         Section -> key -> value, defaults filled in.
     channels : dict
-        Channel id -> overridden network keys.
+        Channel id -> overridden keys.
     """
 
     name: str
@@ -232,39 +188,10 @@ class Recipe:
     def seed(self) -> int:
         return self.settings["training"]["seed"]
 
-    def feature_config(self, instrument: Instrument | None = None) -> FeatureConfig:
-        """The shared transform's settings; ``instrument`` fills the channel kernels when
-        the recipe has ``instrument_kernels = "bands"`` or ``"channels"`` (from all its
-        channels; see :func:`rtemu.features.channel_kernels_of`)."""
-        settings = dict(self.settings["features"])
-        kind = settings.pop("instrument_kernels")
-        laws = settings.pop("kernel_temperature_laws")
-        if laws and kind == "none":
-            raise ValueError(f"recipe {self.source}: [features] kernel_temperature_laws = true needs "
-                             "instrument_kernels = \"bands\" or \"channels\" (the laws are the instrument's)")
-        if kind != "none":
-            if instrument is None:
-                raise ValueError(f"recipe {self.source}: instrument_kernels = {kind!r} needs the instrument "
-                                 "(the training data's) to build its kernels")
-            settings["channel_kernels"] = channel_kernels_of(instrument, one_per_channel=kind == "channels")
-            if laws:
-                settings["kernel_temperature_laws"] = temperature_laws_of(instrument)
-        return FeatureConfig(**settings)
-
-    def uses_jacobians(self, channel_ids=None) -> bool:
-        """Whether any of these channels (None: any channel) has a Jacobian term
-        (``jacobian_weight`` > 0), so that training needs the physical Jacobians."""
-        channel_ids = None if channel_ids is None else [str(c) for c in channel_ids]
-        if self.settings["network"]["jacobian_weight"] > 0 and (
-                channel_ids is None or any("jacobian_weight" not in self.channels.get(c, {}) for c in channel_ids)):
-            return True
-        return any(v.get("jacobian_weight", 0.0) > 0 for c, v in self.channels.items()
-                   if channel_ids is None or c in channel_ids)
-
     def network_for(self, channel_id: str) -> dict:
-        """Network settings for one channel (recipe ``[network]`` + its overrides)."""
+        """Network settings (and the absorber limit) for one channel, overrides applied."""
         net = dict(self.settings["network"])
-        net["ridge_alpha"] = self.settings["linear"]["ridge_alpha"]
+        net["max_absorbers"] = self.settings["absorbers"]["max_absorbers"]
         net.update(self.channels.get(channel_id, {}))
         return net
 
@@ -304,11 +231,6 @@ class Recipe:
                     f"{len(overrides['hidden_layers'])} layers, [network] has {depth} (rule: all "
                     "channels of a bundle share the number of hidden layers)"
                 )
-        try:
-            FeatureConfig(**{k: v for k, v in settings["features"].items()
-                             if k not in ("instrument_kernels", "kernel_temperature_laws")})
-        except ValueError as exc:
-            raise ValueError(f"recipe {source}: [features]: {exc}") from None
         return cls(name=top["name"], description=top.get("description", ""), source=source,
                    text=text, settings=settings, channels=channels)
 
@@ -352,6 +274,32 @@ def load_recipe(name_or_path) -> Recipe:
     return Recipe.from_toml(resource.read_text(encoding="utf-8"), source=f"rtemu/recipes/{text_name}.toml")
 
 
+def _package_dir():
+    return resources.files("rtemu") / "recipes"
+
+
+def list_recipes() -> list[str]:
+    """Names of the recipes shipped with rtemu (``rtemu/recipes/*.toml``)."""
+    return sorted(p.name[:-5] for p in _package_dir().iterdir() if p.name.endswith(".toml"))
+
+
+def load_recipe(name_or_path) -> Recipe:
+    """Load a shipped recipe by name (see :func:`list_recipes`) or a recipe file by path."""
+    if isinstance(name_or_path, Recipe):
+        return name_or_path
+    text_name = str(name_or_path)
+    path = Path(text_name)
+    if path.suffix == ".toml" or path.exists() or "/" in text_name or "\\" in text_name:
+        if not path.is_file():
+            raise ValueError(f"recipe file {text_name} does not exist")
+        return Recipe.from_toml(path.read_text(encoding="utf-8"), source=str(path))
+    resource = _package_dir() / f"{text_name}.toml"
+    if not resource.is_file():
+        raise ValueError(f"unknown recipe {text_name!r}; shipped recipes: {', '.join(list_recipes())} "
+                         "(or give a path to a .toml file)")
+    return Recipe.from_toml(resource.read_text(encoding="utf-8"), source=f"rtemu/recipes/{text_name}.toml")
+
+
 # ---- training data ----------------------------------------------------------------------
 #: Physical validity range of each input (the bundle's invalid_input rule), mirroring the
 #: rules of the physical model (rtemu._checks): T, Ts in [100, 400] K, 0 <= q < 0.1,
@@ -362,6 +310,8 @@ PHYSICAL_BOUNDS = {
     "surface_temperature": _checks.TEMPERATURE_RANGE_K,
     "sensor_zenith_angle": (0.0, _checks.ZENITH_MAX_DEG),
     "surface_emissivity": (0.0, 1.0),
+    # the highest terrain has a surface pressure of about 330 hPa (common knowledge)
+    "surface_air_pressure": (300.0, _checks.PRESSURE_MAX_HPA),
     # derived checks of the joint state (see humidity_index); no physical limit of their own
     "humidity_index": (-3.0e38, 3.0e38),
     "skin_minus_air_temperature": (-3.0e38, 3.0e38),
@@ -421,6 +371,9 @@ class TrainingData:
         [K], [degree], shape (N,).
     surface_emissivity, brightness_temperature : numpy.ndarray
         [1], [K], shape (N, C) over the instrument's channels.
+    surface_air_pressure : numpy.ndarray
+        ps [hPa], shape (N,): the file's ``surface_air_pressure`` (terrain), else the
+        grid's bottom pressure.
     usable : numpy.ndarray
         bool (N, C): finite brightness temperature and zero quality flag.
     sha256 : str
@@ -429,7 +382,7 @@ class TrainingData:
     jacobian_air_temperature, jacobian_specific_humidity : numpy.ndarray or None
         Physical Jacobians dBT/dT [K K-1] and dBT/dq [K (kg kg-1)-1], float32, shape
         (N, C, L), levels surface-first; read only on request (``load_training_data(...,
-        jacobians=True)``), for recipes with a Jacobian term (``jacobian_weight`` > 0).
+        jacobians=True)``; the audit and the benchmarks compare against them).
     teacher : (str, str)
         Name and version of the model that computed the outputs (file attributes
         ``rtemu_teacher``, ``rtemu_teacher_version``; without them rtemu's physics,
@@ -444,6 +397,7 @@ class TrainingData:
     surface_emissivity: np.ndarray
     sensor_zenith_angle: np.ndarray
     brightness_temperature: np.ndarray
+    surface_air_pressure: np.ndarray
     usable: np.ndarray
     sha256: str
     source: str
@@ -502,7 +456,10 @@ def _read_training(ds: xr.Dataset, source: str, sha: str | None, jacobians: bool
     if not toml:
         raise ValueError(f"training data {source}: no 'rtemu_instrument_toml' attribute (rule: make "
                          "training sets with rtemu.sampling.sample_to_netcdf or add the instrument)")
-    inst = Instrument.from_toml(str(toml), source=f"{source}:rtemu_instrument_toml")
+    # The emulator learns nothing of the teacher's sub-bands; they are kept (for the physics
+    # fallback) unless they live in an absorption-table file the training set does not hold.
+    read = Instrument.channels_from_toml if "absorption_tables" in tomllib.loads(str(toml)) else Instrument.from_toml
+    inst = read(str(toml), source=f"{source}:rtemu_instrument_toml")
     missing = [n for n in ("air_pressure", *_STATE, "brightness_temperature") if n not in ds]
     if missing:
         raise ValueError(f"training data {source}: missing variables {missing}")
@@ -536,19 +493,21 @@ def _read_training(ds: xr.Dataset, source: str, sha: str | None, jacobians: bool
     em = (np.repeat(get("surface_emissivity", ("profile",))[:, None], len(ids), axis=1)
           if em.ndim == 1 else get("surface_emissivity", ("profile", "channel")))
     bt = get("brightness_temperature", ("profile", "channel"))
+    ps = (get("surface_air_pressure", ("profile",)) if "surface_air_pressure" in ds
+          else np.full(T.shape[0], p.max()))
     usable = np.isfinite(bt)
     if "quality_flag" in ds:
         usable &= get("quality_flag", ("profile", "channel")) == 0
     state_ok = (np.isfinite(T).all(1) & np.isfinite(q).all(1) & np.isfinite(ts) & np.isfinite(zen)
-                & np.isfinite(em).all(1))
+                & np.isfinite(em).all(1) & np.isfinite(ps))
     usable &= state_ok[:, None]
     jac = {}
     if jacobians:
         names = ("jacobian_air_temperature", "jacobian_specific_humidity")
         missing = [n for n in names if n not in ds]
         if missing:
-            raise ValueError(f"training data {source}: missing {missing} (rule: a recipe with a Jacobian term, "
-                             "jacobian_weight > 0, needs a training set sampled with --jacobian)")
+            raise ValueError(f"training data {source}: missing {missing} (rule: Jacobians need a "
+                             "training set sampled with --jacobian)")
         for name in names:
             jac[name] = np.asarray(ds[name].transpose("profile", "channel", "level").values,
                                    dtype=np.float32)[:, :, order]
@@ -556,164 +515,233 @@ def _read_training(ds: xr.Dataset, source: str, sha: str | None, jacobians: bool
     return TrainingData(
         instrument=inst, pressure_hpa=p[order].copy(), air_temperature=T, specific_humidity=q,
         surface_temperature=ts, surface_emissivity=em, sensor_zenith_angle=zen,
-        brightness_temperature=bt, usable=usable,
+        brightness_temperature=bt, surface_air_pressure=ps, usable=usable,
         sha256=sha or _arrays_sha256(ds[[n for n in ("air_pressure", *_STATE, "brightness_temperature")]]),
         source=source, teacher=(str(ds.attrs.get("rtemu_teacher", PHYSICS_TEACHER[0])),
                                 str(ds.attrs.get("rtemu_teacher_version", "unrecorded"))), **jac,
     )
 
 
-# ---- per-channel fit ----------------------------------------------------------------------
+# ---- gray absorbers -----------------------------------------------------------------------
 @dataclasses.dataclass
-class ChannelFit:
-    """One channel's fitted emulator (scikit-learn objects) and its validation figures.
+class GrayAbsorbers:
+    """One channel's learned effective gray absorbers (see :mod:`rtemu.gray`).
 
-    The linear part acts on the compressed coordinates z (not on the raw profiles): with
-    32+ components per block the subspace holds the physical Jacobians to well under 1 %
-    and the linear residual is the same as on the raw features (measured on the demo
-    sounder), while its Jacobian then needs no per-channel raw-space product.
+    Radiances are in units of the channel's Planck constant a (B = 1 / (exp(b / T) - 1)),
+    so only b enters.
+
+    Attributes
+    ----------
+    planck_b : float
+        b of the channel's Planck function [K].
+    log_k, pressure_exponent, temperature_exponent : numpy.ndarray
+        [K, 3] each (dry, water-vapour, self-continuum terms) [1].
+    weights : numpy.ndarray
+        w [K], positive, summing to 1 [1].
+    """
+
+    planck_b: float
+    log_k: np.ndarray
+    pressure_exponent: np.ndarray
+    temperature_exponent: np.ndarray
+    weights: np.ndarray
+
+    @property
+    def n_absorbers(self) -> int:
+        return self.weights.size
+
+    def params(self) -> dict:
+        return {"log_k": self.log_k, "pressure_exponent": self.pressure_exponent,
+                "temperature_exponent": self.temperature_exponent, "weights": self.weights}
+
+    def forward(self, air_temperature, specific_humidity, surface_temperature, surface_emissivity, sec_zenith,
+                pressure_hpa) -> dict:
+        """:func:`rtemu.gray.gray_forward` with these absorbers."""
+        return _gray.gray_forward(self.params(), 1.0, self.planck_b, air_temperature, specific_humidity,
+                                  surface_temperature, surface_emissivity, sec_zenith, pressure_hpa)
+
+
+def _unpack(v: np.ndarray, K: int, b: float) -> GrayAbsorbers:
+    logits = np.r_[0.0, v[9 * K:]]
+    w = np.exp(logits - logits.max())
+    return GrayAbsorbers(planck_b=b, log_k=v[:3 * K].reshape(K, 3), pressure_exponent=v[3 * K:6 * K].reshape(K, 3),
+                         temperature_exponent=v[6 * K:9 * K].reshape(K, 3), weights=w / w.sum())
+
+
+def _pack(g: GrayAbsorbers) -> np.ndarray:
+    logits = np.log(np.maximum(g.weights, 1e-30))
+    return np.concatenate([g.log_k.ravel(), g.pressure_exponent.ravel(), g.temperature_exponent.ravel(),
+                           logits[1:] - logits[0]])
+
+
+def _gray_residual(v, K, b, inputs, y):
+    """Residual BT_gray - y [K] and its Jacobian with respect to the packed parameters."""
+    g = _unpack(v, K, b)
+    st = g.forward(*inputs)
+    bt = st["brightness_temperature"]
+    slope = planck_derivative(1.0, b, bt)
+    w = g.weights
+    H = _gray.gray_tau_adjoint(st, w[None, :] / slope[:, None])  # dBT/dtau [N, Lm, K]
+    Ht = H[..., None] * st["tau_g"]  # dBT/d ln k [N, Lm, K, 3]
+    phi = st["phi"]
+    n = bt.size
+    jac = [Ht.sum(1).reshape(n, -1), (Ht * phi[:, :, None, 0:1]).sum(1).reshape(n, -1),
+           (Ht * phi[:, :, None, 1:2]).sum(1).reshape(n, -1),
+           (w * (st["absorber_radiance"] - st["radiance"][:, None]) / slope[:, None])[:, 1:]]
+    return bt - y, np.concatenate(jac, axis=1)
+
+
+#: Bounds of the packed parameters: ln k, pressure exponent, temperature exponent, logits.
+_GRAY_BOUNDS = ((-40.0, 30.0), (-2.0, 4.0), (-8.0, 8.0), (-12.0, 12.0))
+
+
+def _least_squares(v0, K, b, inputs, y, evaluations):
+    from scipy.optimize import least_squares
+
+    sizes = (3 * K, 3 * K, 3 * K, K - 1)
+    lo = np.concatenate([np.full(n, bd[0]) for n, bd in zip(sizes, _GRAY_BOUNDS)])
+    hi = np.concatenate([np.full(n, bd[1]) for n, bd in zip(sizes, _GRAY_BOUNDS)])
+    cache = {}
+
+    def fun(v):
+        r, j = _gray_residual(v, K, b, inputs, y)
+        cache["v"], cache["j"] = v.copy(), j
+        return r
+
+    def jac(v):
+        return cache["j"] if np.array_equal(cache.get("v"), v) else _gray_residual(v, K, b, inputs, y)[1]
+
+    with np.errstate(over="ignore", under="ignore"):
+        res = least_squares(fun, np.clip(v0, lo + 1e-9, hi - 1e-9), jac=jac, bounds=(lo, hi),
+                            max_nfev=evaluations, x_scale="jac", method="trf")
+    return res.x, float(np.sqrt(np.mean(res.fun ** 2)))
+
+
+def fit_gray_absorbers(planck_b: float, fit_inputs: tuple, fit_bt, val_inputs: tuple, val_bt, *, max_absorbers: int,
+                       target_rmse_k: float, starts: int, start_evaluations: int, evaluations: int,
+                       seed: int) -> tuple[GrayAbsorbers, dict]:
+    """Fit K learned gray absorbers to brightness temperatures, growing K to the target.
+
+    For K = 1, 2, ...: ``starts`` initialisations (the absorbers found so far plus one new
+    absorber whose three terms start at column optical depths drawn log-uniformly in
+    [1e-3, 30], each term off with probability 0.4) are each improved for
+    ``start_evaluations`` least-squares evaluations on a quarter of the profiles; the best
+    is refined on all of them (``evaluations``). Stops when the validation RMSE is at most
+    ``target_rmse_k`` or K reaches ``max_absorbers``; keeps the K with the lowest
+    validation RMSE.
+
+    Parameters
+    ----------
+    planck_b : float
+        The channel's Planck b [K].
+    fit_inputs, val_inputs : tuple
+        (T [K], q [kg kg-1] (N, L), Ts [K], e [1], sec(theta) [1] (N,), p [hPa] (N, L)).
+    fit_bt, val_bt : numpy.ndarray
+        Target brightness temperatures [K] (N,).
+
+    Returns
+    -------
+    (GrayAbsorbers, dict)
+        The absorbers and figures (validation RMSE per K [K]).
+    """
+    rng = np.random.default_rng(seed)
+    T, q, p = fit_inputs[0], fit_inputs[1], fit_inputs[5]
+    qm = np.maximum(_gray.layer_means(q), _gray.HUMIDITY_FLOOR)
+    dp = (p[:, :-1] - p[:, 1:]) / _gray.REFERENCE_PRESSURE_HPA
+    column = np.array([np.median((qm ** m * dp).sum(1)) for m in _gray.GAS_POWERS])  # vertical path of each term
+    sub = np.arange(0, fit_bt.size, 4)
+    sub_inputs = tuple(v[sub] for v in fit_inputs)
+    best, history, previous = None, [], None
+    for K in range(1, max_absorbers + 1):
+        candidates = []
+        for _ in range(starts):
+            depth = np.exp(rng.uniform(np.log(1e-3), np.log(30.0), 3))
+            depth[rng.random(3) < 0.4] = 1e-5
+            new = {"log_k": np.log(depth / column)[None, :], "pressure_exponent": np.ones((1, 3)),
+                   "temperature_exponent": np.zeros((1, 3))}
+            if previous is None:
+                v0 = np.concatenate([new["log_k"].ravel(), new["pressure_exponent"].ravel(),
+                                     new["temperature_exponent"].ravel()])
+            else:
+                w = np.append(previous.weights * 0.8, 0.2)
+                v0 = _pack(GrayAbsorbers(planck_b, np.vstack([previous.log_k, new["log_k"]]),
+                                         np.vstack([previous.pressure_exponent, new["pressure_exponent"]]),
+                                         np.vstack([previous.temperature_exponent, new["temperature_exponent"]]), w))
+            candidates.append(_least_squares(v0, K, planck_b, sub_inputs, fit_bt[sub], start_evaluations))
+        start = min(candidates, key=lambda c: c[1])[0]
+        v, _ = _least_squares(start, K, planck_b, fit_inputs, fit_bt, evaluations)
+        previous = _unpack(v, K, planck_b)
+        with np.errstate(over="ignore", under="ignore"):
+            rmse = float(np.sqrt(np.mean((previous.forward(*val_inputs)["brightness_temperature"] - val_bt) ** 2)))
+        history.append(rmse)
+        if best is None or rmse < best[1]:
+            best = (previous, rmse)
+        if rmse <= target_rmse_k:
+            break
+    return best[0], {"gray_validation_rmse_k": history}
+
+
+# ---- per-channel model --------------------------------------------------------------------
+@dataclasses.dataclass
+class ChannelModel:
+    """One channel's fitted emulator as plain arrays, and its validation figures.
 
     Attributes
     ----------
     channel_id : str
-    ridge : sklearn.linear_model.Ridge or None
-        Linear part on the design [zs, eps, eps * zs, sig * zs] (None when the recipe
-        disables it); zs, eps, sig standardised z, emissivity and s(theta).
-    z_mean, z_scale : numpy.ndarray
-        Standardisation of z in the design [1].
-    s_mean, s_scale : float
-        Standardisation of s(theta) [1].
-    e_mean, e_scale : float
-        Standardisation of the channel's emissivity [1].
+    absorbers : GrayAbsorbers
+    input_center, input_scale : numpy.ndarray
+        Standardisation of the network input u = [z, BT_gray, f, g, r, Ts, sec(theta), e]
+        [D]; the centre is rounded to float32 (exact in the bundle).
+    coefs, intercepts : list of numpy.ndarray
+        The network's weights [D, H1], ..., [Hd, 1] and biases on standardised u.
     target_mean, target_scale : float
-        Standardisation of the network's target (the linear residual) [K].
-    mlp : sklearn.neural_network.MLPRegressor
-    z_columns : numpy.ndarray or None
-        Columns of z the channel uses (None: all). A channel trained without the opacity
-        kernels (recipe ``opacity_kernels = false``) leaves out their columns: its linear
-        and first-layer weights on them are zero in the bundle. (Measured on the demo
-        sounder: the kernels cut the humidity and window channels' errors 3-10x but made
-        the temperature-sounding channels' fits converge more slowly, e.g. 0.046 -> 0.060 K
-        RMSE for the lowest-peaking one at 600 iterations.) A channel with
-        ``profile_blocks = false`` sees only the kernel scalars, Ts and s(theta).
-    n_components : int
-        K, the width of the shared z (with ``z_columns``) [1].
+        The network predicts (BT - BT_gray - mean) / scale [K].
+    sigma_offset, sigma_slope : float
+        Uncertainty model sigma = offset + slope d [K] (d: the profile's largest novelty ratio).
     stats : dict
         Validation figures (deterministic: no timings) stored in the bundle.
     seconds : float
         Wall time of the fit [s] (reported, not stored).
-    linear_mask : numpy.ndarray or None
-        0/1 per used z column [K_used]: the columns the linear part sees (None: all).
-        With ``linear_inputs = "own_kernel"`` only the channel's own kernel scalars, Ts
-        and s(theta): a gray channel's brightness temperature is f + (1 - e) r of its own
-        kernel, and a ridge on every column (the 16 channels' kernels are nearly collinear
-        in value, not in their Jacobians) fitted the values with Jacobians 57 % off
-        (demo sounder, mw-win, measured), which the network then had to undo.
     """
 
     channel_id: str
-    ridge: Any
-    z_mean: np.ndarray
-    z_scale: np.ndarray
-    s_mean: float
-    s_scale: float
-    e_mean: float
-    e_scale: float
+    absorbers: GrayAbsorbers
+    input_center: np.ndarray
+    input_scale: np.ndarray
+    coefs: list
+    intercepts: list
     target_mean: float
     target_scale: float
-    mlp: Any
-    stats: dict
-    z_columns: Any = None
-    n_components: int = 0
+    sigma_offset: float = 0.0
+    sigma_slope: float = 0.0
+    stats: dict = dataclasses.field(default_factory=dict)
     seconds: float = 0.0
-    linear_mask: Any = None
 
     @property
     def hidden(self) -> tuple[int, ...]:
-        return tuple(int(c.shape[1]) for c in self.mlp.coefs_[:-1])
+        return tuple(int(c.shape[1]) for c in self.coefs[:-1])
 
-    def design(self, z: np.ndarray, s: np.ndarray, e: np.ndarray) -> np.ndarray:
-        """Linear design [zs, eps, eps * zs, sig * zs].
+    def network_input(self, z, gray: dict, surface_temperature, sec_zenith, surface_emissivity) -> np.ndarray:
+        """u [N, D] (unstandardised)."""
+        return np.concatenate([z, gray["brightness_temperature"][:, None], gray["features"],
+                               np.stack([surface_temperature, sec_zenith, surface_emissivity], axis=1)], axis=1)
 
-        The products make the linear coefficients affine in the emissivity (surface
-        reflection: dR/de = t0 (B(Ts) - R_down)) and in the slant-path factor (the
-        weighting functions move with sec(theta)).
-        """
-        zs = (self._z(z) - self.z_mean) / self.z_scale
-        if self.linear_mask is not None:  # columns outside the linear inputs: zero, so zero coefficients
-            zs = zs * self.linear_mask
-        eps = ((e - self.e_mean) / self.e_scale)[:, None]
-        sig = ((s - self.s_mean) / self.s_scale)[:, None]
-        return np.concatenate([zs, eps, eps * zs, sig * zs], axis=1)
+    def network(self, u) -> np.ndarray:
+        """mlp(u) [1] on unstandardised u [N, D]."""
+        a = (np.asarray(u, dtype=float) - self.input_center) / self.input_scale
+        for W, c in zip(self.coefs[:-1], self.intercepts[:-1]):
+            a = np.tanh(a @ W + c)
+        return (a @ self.coefs[-1] + self.intercepts[-1])[:, 0]
 
-    def _z(self, z: np.ndarray) -> np.ndarray:
-        return z if self.z_columns is None else z[:, self.z_columns]
+    def predict(self, z, gray: dict, surface_temperature, sec_zenith, surface_emissivity) -> np.ndarray:
+        """BT [K] (N,)."""
+        u = self.network_input(z, gray, surface_temperature, sec_zenith, surface_emissivity)
+        return gray["brightness_temperature"] + self.target_mean + self.target_scale * self.network(u)
 
-    def network_input(self, z: np.ndarray, e: np.ndarray) -> np.ndarray:
-        return np.concatenate([self._z(z), ((e - self.e_mean) / self.e_scale)[:, None]], axis=1)
-
-    def linear(self, z: np.ndarray, s: np.ndarray, e: np.ndarray) -> np.ndarray:
-        if self.ridge is None:
-            return np.zeros(z.shape[0])
-        return self.ridge.predict(self.design(z, s, e))
-
-    def predict(self, z: np.ndarray, s: np.ndarray, e: np.ndarray) -> np.ndarray:
-        """BT [K] from compressed z [N, K], s(theta) [N] [1] and emissivity e [N] [1]."""
-        net = self.mlp.predict(self.network_input(z, e))
-        return self.linear(z, s, e) + self.target_mean + self.target_scale * net
-
-    def ridge_coefficients(self) -> tuple:
-        """(b0, b1, b2, b3, b4): the ridge intercept and its coefficients on [zs, eps, eps zs,
-        sig zs] (see :meth:`design`); zeros without a linear part."""
-        K = self.z_mean.size
-        if self.ridge is None:
-            return 0.0, np.zeros(K), 0.0, np.zeros(K), np.zeros(K)
-        coef = np.asarray(self.ridge.coef_, dtype=float).ravel()
-        return (float(np.ravel(self.ridge.intercept_)[0]), coef[:K], coef[K], coef[K + 1:2 * K + 1],
-                coef[2 * K + 1:])
-
-    def folded(self) -> dict[str, np.ndarray]:
-        """The channel's parameters in the bundle's form (float64), on z1 = [z, 1].
-
-        Keys: linear_weight, linear_emissivity_weight, linear_zenith_weight [K+1] (last
-        entry: the constant), layer1_weight [K+1, H1] (last row: bias), layer1_emissivity
-        [1, H1], layer{k}_weight, layer{k}_bias [1, Hk], output_weight [Hd, 1]; the graph
-        computes y = a_d w_out + z1.l + e (z1.m) + s (z1.n).
-        Algebra: zs = (z - mu)/sigma, eps = (e - m)/w, sig = (s - ms)/ws, ridge
-        coefficients (b0, b1, b2, b3, b4) on [zs, eps, eps zs, sig zs]; v3 = b3/sigma,
-        c3 = mu.v3, v4 = b4/sigma, c4 = mu.v4:
-        l = b1/sigma - (m/w) v3 - (ms/ws) v4,  l_1 = b0 - mu.(b1/sigma) - m b2/w + (m/w) c3
-        + (ms/ws) c4 (+ the network's output constant);  m = v3/w, m_1 = (b2 - c3)/w;
-        n = v4/ws, n_1 = -c4/ws.
-        """
-        b0, b1, b2, b3, b4 = self.ridge_coefficients()
-        mu, sigma, m, w, ms, ws = self.z_mean, self.z_scale, self.e_mean, self.e_scale, self.s_mean, self.s_scale
-        v3, v4 = b3 / sigma, b4 / sigma
-        c3, c4 = float(mu @ v3), float(mu @ v4)
-        coefs, intercepts = self.mlp.coefs_, self.mlp.intercepts_
-        constant = (b0 - float(mu @ (b1 / sigma)) - m * b2 / w + (m / w) * c3 + (ms / ws) * c4
-                    + self.target_mean + self.target_scale * float(intercepts[-1][0]))
-        out = {
-            "linear_weight": np.append(b1 / sigma - (m / w) * v3 - (ms / ws) * v4, constant),
-            "linear_emissivity_weight": np.append(v3 / w, (b2 - c3) / w),
-            "linear_zenith_weight": np.append(v4 / ws, -c4 / ws),
-        }
-        w1 = coefs[0]  # [K+1, H1]: z rows then the eps row
-        w1e = w1[-1] / w
-        out["layer1_weight"] = np.concatenate([w1[:-1], (intercepts[0] - m * w1e)[None, :]], axis=0)
-        out["layer1_emissivity"] = w1e[None, :]
-        for k in range(1, len(coefs) - 1):
-            out[f"layer{k + 1}_weight"] = coefs[k]
-            out[f"layer{k + 1}_bias"] = intercepts[k][None, :]
-        out["output_weight"] = self.target_scale * coefs[-1]
-        if self.z_columns is not None:  # zero weights on the z columns the channel leaves out
-            for key, value in out.items():
-                if key.startswith("linear_") or key == "layer1_weight":
-                    full = np.zeros((self.n_components + 1,) + value.shape[1:])
-                    full[self.z_columns] = value[:-1]
-                    full[-1] = value[-1]
-                    out[key] = full
-        return out
+    def uncertainty(self, novelty) -> np.ndarray:
+        """sigma [K] (N,) of the largest novelty ratio d [1] (N,)."""
+        return self.sigma_offset + self.sigma_slope * np.asarray(novelty, dtype=float)
 
 
 def channel_seed(seed: int, channel_id: str) -> int:
@@ -731,7 +759,7 @@ def _error_stats(err: np.ndarray, prefix: str) -> dict:
     }
 
 
-def _fit_channel(job: dict) -> ChannelFit:
+def _fit_channel(job: dict) -> ChannelModel:
     """Fit one channel (runs in a worker process; single-threaded BLAS for determinism)."""
     from threadpoolctl import threadpool_limits
 
@@ -739,61 +767,49 @@ def _fit_channel(job: dict) -> ChannelFit:
         return _fit_channel_inner(**job)
 
 
-def _fit_channel_inner(*, channel_id, s, z, e, y, train, val, net, seed, residual, z_columns=None,
-                       uses_kernels=False, uses_profiles=True, linear_columns=None, jacobian=None):
+def _fit_channel_inner(*, channel_id, planck_b, profile, z, e, y, novelty, train, val, absorbers, net,
+                       uncertainty, seed):
     from sklearn.exceptions import ConvergenceWarning
-    from sklearn.linear_model import Ridge
     from sklearn.neural_network import MLPRegressor
 
     start = time.perf_counter()
-    zt, st, et, yt = z[train], s[train], e[train], y[train]
+    T, q, ts, sec, p = profile
 
-    def spread(v):  # a constant input carries no information: leave it unscaled
-        sd = v.std(axis=0)
-        return np.where(sd > 1e-9, sd, 1.0)
+    def inputs(rows):
+        return T[rows], q[rows], ts[rows], e[rows], sec[rows], p[rows]
 
-    # z is not standardised per component: the ridge penalty then damps the directions
-    # the training set barely spans (their coefficients would be pure noise in the Jacobian)
-    used = zt if z_columns is None else zt[:, z_columns]
-    fit = ChannelFit(channel_id=channel_id, ridge=None, z_mean=used.mean(axis=0), z_scale=np.ones(used.shape[1]),
-                     s_mean=float(st.mean()), s_scale=float(spread(st)), e_mean=float(et.mean()),
-                     e_scale=float(spread(et)), target_mean=0.0, target_scale=1.0, mlp=None, stats={},
-                     z_columns=z_columns, n_components=zt.shape[1])
-    if linear_columns is not None:
-        full = np.arange(zt.shape[1]) if z_columns is None else np.asarray(z_columns)
-        fit.linear_mask = np.isin(full, linear_columns).astype(float)
-    if residual:
-        fit.ridge = Ridge(alpha=net["ridge_alpha"] * len(train), solver="cholesky")
-        fit.ridge.fit(fit.design(zt, st, et), yt)
-    r = yt - fit.linear(zt, st, et)
-    fit.target_mean = float(r.mean())
-    fit.target_scale = float(r.std()) if r.std() > 1e-12 else 1.0
-    target = (r - fit.target_mean) / fit.target_scale
-    ut = fit.network_input(z[train], et)
-    uv = fit.network_input(z[val], e[val])
-    mlp = MLPRegressor(
-        hidden_layer_sizes=tuple(net["hidden_layers"]), activation="tanh", solver=net["solver"],
-        alpha=net["alpha"], tol=net["tol"], random_state=seed, warm_start=True,
-        learning_rate_init=net["learning_rate_init"], batch_size=min(net["batch_size"], len(train)),
-        max_iter=net["max_iter"], n_iter_no_change=10**9 if net["solver"] != "lbfgs" else 10,
-        shuffle=True,
-    )
-    fit.mlp = mlp
-    yv = y[val]
-    lin_v = fit.linear(z[val], s[val], e[val])
+    fit_rows, val_rows = train[:absorbers["profiles"]], val[:absorbers["validation_profiles"]]
+    gray, gray_stats = fit_gray_absorbers(
+        planck_b, inputs(fit_rows), y[fit_rows], inputs(val_rows), y[val_rows],
+        max_absorbers=net["max_absorbers"], target_rmse_k=absorbers["target_rmse_k"], starts=absorbers["starts"],
+        start_evaluations=absorbers["start_evaluations"], evaluations=absorbers["evaluations"], seed=seed)
+    with np.errstate(over="ignore", under="ignore"):
+        state = gray.forward(T, q, ts, e, sec, p)
+    bt_gray = state["brightness_temperature"]
+    probe = ChannelModel(channel_id=channel_id, absorbers=gray, input_center=np.zeros(0), input_scale=np.zeros(0),
+                         coefs=[], intercepts=[], target_mean=0.0, target_scale=1.0)
+    u = probe.network_input(z, state, ts, sec, e)
+    center = u[train].mean(axis=0).astype(np.float32).astype(float)
+    spread = u[train].std(axis=0)
+    r = y - bt_gray
+    target_mean = float(r[train].mean())
+    target_scale = float(r[train].std()) if r[train].std() > 1e-12 else 1.0
+    model = dataclasses.replace(probe, input_center=center, input_scale=np.where(spread > 1e-9, spread, 1.0),
+                                target_mean=target_mean, target_scale=target_scale)
+    us = (u - model.input_center) / model.input_scale
+    target = (r - target_mean) / target_scale
+    mlp = MLPRegressor(hidden_layer_sizes=tuple(net["hidden_layers"]), activation="tanh", solver="lbfgs",
+                       alpha=net["alpha"], tol=0.0, random_state=seed, warm_start=True, max_iter=net["max_iter"])
 
     def val_rmse():
-        pred = lin_v + fit.target_mean + fit.target_scale * mlp.predict(uv)
-        return float(np.sqrt(np.mean((pred - yv) ** 2)))
+        return float(np.sqrt(np.mean((bt_gray[val] + target_mean + target_scale * mlp.predict(us[val]) - y[val]) ** 2)))
 
-    chunk = net["check_every"] if net["early_stopping"] else net["max_iter"]
     done, best, best_state, stale = 0, np.inf, None, 0
     with warnings.catch_warnings():
-        # running out of iterations is the plan here, not a problem
-        warnings.simplefilter("ignore", ConvergenceWarning)
+        warnings.simplefilter("ignore", ConvergenceWarning)  # running out of iterations is the plan
         while done < net["max_iter"]:
-            mlp.max_iter = min(chunk, net["max_iter"] - done)
-            mlp.fit(ut, target)
+            mlp.max_iter = min(net["check_every"], net["max_iter"] - done)
+            mlp.fit(us[train], target[train])
             done += mlp.n_iter_
             score = val_rmse()
             if score < best:
@@ -803,89 +819,62 @@ def _fit_channel_inner(*, channel_id, s, z, e, y, train, val, net, seed, residua
                 stale += 1
             if stale >= net["patience"] or mlp.n_iter_ < mlp.max_iter:
                 break
-    mlp.coefs_, mlp.intercepts_ = best_state[0], best_state[1]
-    refined = {}
-    if jacobian is not None and net["jacobian_weight"] > 0:
-        refined = _refine_with_jacobians(fit, net, jacobian, ut, target, uv,
-                                         (yv - lin_v - fit.target_mean) / fit.target_scale, s, e, train, val)
-    fit.stats = {
+    model.coefs, model.intercepts = best_state[0], best_state[1]
+    err_val = model.predict(z[val], _subset_state(state, val), ts[val], sec[val], e[val]) - y[val]
+    model.sigma_offset, model.sigma_slope, calibration = _calibrate_uncertainty(err_val, novelty[val],
+                                                                                uncertainty["coverage"])
+    err_train = model.predict(z[train], _subset_state(state, train), ts[train], sec[train], e[train]) - y[train]
+    model.stats = {
         "n_train": int(len(train)),
         "n_validation": int(len(val)),
+        "n_absorbers": gray.n_absorbers,
+        **gray_stats,
         "iterations": int(done),
         "best_iteration": int(best_state[2]),
-        "hidden_layers": list(fit.hidden),
-        "opacity_kernels": bool(uses_kernels),
-        "profile_blocks": bool(uses_profiles),
-        "linear_inputs": "all" if linear_columns is None else "own_kernel",
+        "hidden_layers": list(model.hidden),
         "seed": int(seed),
-        **refined,
-        **_error_stats(fit.predict(z[val], s[val], e[val]) - yv, "validation"),
-        **({"linear_only_validation_rmse_k": float(np.sqrt(np.mean((lin_v - yv) ** 2)))} if residual else {}),
-        "train_rmse_k": float(np.sqrt(np.mean((fit.predict(zt, st, et) - yt) ** 2))),
+        **_error_stats(err_val, "validation"),
+        "gray_only_validation_rmse_k": float(np.sqrt(np.mean((bt_gray[val] - y[val]) ** 2))),
+        "train_rmse_k": float(np.sqrt(np.mean(err_train ** 2))),
+        **calibration,
     }
-    fit.seconds = time.perf_counter() - start
-    return fit
+    model.seconds = time.perf_counter() - start
+    return model
 
 
-def _refine_with_jacobians(fit: ChannelFit, net: dict, jac: dict, ut, tt, uv, tv, s, e, train, val) -> dict:
-    """Continue the channel's network fit with the Jacobian term (:mod:`rtemu.jacobian_fit`).
+def _subset_state(state: dict, rows) -> dict:
+    return {"brightness_temperature": state["brightness_temperature"][rows], "features": state["features"][rows]}
 
-    ``jac``: ``train_rows``/``val_rows`` (positions in train/val), ``directions`` [M, P, K]
-    and ``target`` [M, P] for each (prefix ``val_`` for validation). The linear part's
-    directional derivatives are taken off the targets, so the network fits what the
-    linear part misses. Returns the statistics to store.
-    """
-    from rtemu.jacobian_fit import pack, probe_relative_error, refine_network, refinement_loss
 
-    _, b1, _, b3, b4 = fit.ridge_coefficients()
+def _calibrate_uncertainty(err, novelty, coverage: float) -> tuple[float, float, dict]:
+    """sigma = s0 + s1 d: |err| regressed on [1, d] (non-negative least squares), then both
+    scaled so that a fraction ``coverage`` of the profiles has |err| <= 2 sigma."""
+    from scipy.optimize import nnls
 
-    def prepare(prefix, index):
-        d = jac[prefix + "directions"]
-        d = d if fit.z_columns is None else d[:, :, fit.z_columns]
-        eps = ((e[index] - fit.e_mean) / fit.e_scale)[:, None]
-        sig = ((s[index] - fit.s_mean) / fit.s_scale)[:, None]
-        grad_lin = (b1[None, :] + eps * b3[None, :] + sig * b4[None, :]) / fit.z_scale  # d lin / d z [M, K]
-        r = jac[prefix + "target"] - np.einsum("mpk,mk->mp", d, grad_lin)
-        u_dot = np.concatenate([d, np.zeros(d.shape[:2] + (1,))], axis=2).astype(np.float32)  # emissivity fixed
-        return u_dot, r
-
-    rows_t, rows_v = jac["train_rows"], jac["val_rows"]
-    ud_t, r_t = prepare("", train[rows_t])
-    ud_v, r_v = prepare("val_", val[rows_v])
-    weight, scale = net["jacobian_weight"], fit.target_scale
-
-    def score(coefs, intercepts):
-        return refinement_loss(pack(coefs, intercepts), [w.shape for w in coefs], uv, tv, rows_v, ud_v, r_v,
-                               weight=weight, alpha=0.0, scale=scale)[0]
-
-    ut, uv = ut.astype(np.float32), uv.astype(np.float32)  # the passes in float32: half the time
-    before = probe_relative_error(fit.mlp.coefs_, fit.mlp.intercepts_, uv[rows_v], ud_v, r_v, scale)
-    coefs, intercepts, info = refine_network(
-        fit.mlp.coefs_, fit.mlp.intercepts_, ut, tt, rows_t, ud_t, r_t, weight=weight, alpha=net["alpha"],
-        max_iter=net["jacobian_max_iter"], scale=scale, check_every=net["jacobian_check_every"], score=score)
-    fit.mlp.coefs_, fit.mlp.intercepts_ = coefs, intercepts
-    after = probe_relative_error(coefs, intercepts, uv[rows_v], ud_v, r_v, scale)
-    return {
-        "jacobian_iterations": int(info["iterations"]),
-        "jacobian_best_iteration": int(info["best_iteration"]),
-        "jacobian_profiles": int(rows_t.size),
-        "validation_jacobian_error_median_before": float(np.median(before)),
-        "validation_jacobian_error_median": float(np.median(after)),
-    }
+    a = np.abs(err)
+    design = np.stack([np.ones_like(novelty), novelty], axis=1)
+    (s0, s1), _ = nnls(design, a)
+    s0 = max(s0, 1e-4)
+    ratio = a / (s0 + s1 * novelty)
+    factor = float(np.quantile(ratio, coverage)) / 2.0
+    s0, s1 = s0 * factor, s1 * factor
+    within = float(np.mean(a <= 2.0 * (s0 + s1 * novelty)))
+    return float(s0), float(s1), {"uncertainty_validation_within_2_sigma": within}
 
 
 # ---- the whole emulator -------------------------------------------------------------------
 @dataclasses.dataclass
 class Envelope:
-    """Per-variable bounds [N-independent] and novelty limits of the training set.
+    """Per-variable bounds and novelty limits of the training set.
 
-    ``lower``/``upper`` map variable names to arrays: air_temperature, specific_humidity
-    [L]; surface_temperature, sensor_zenith_angle []; surface_emissivity [C] over the
-    trained channels. ``novelty_limits`` [1 + B]: largest training ||z||^2 and block
-    reconstruction errors, times the recipe's novelty_margin. ``tropopause_lower`` /
-    ``tropopause_upper`` [M + 1] (None when the recipe turns the check off or the grid has
-    no search layer): range of the temperature [K] at the lapse-rate tropopause per search
-    base (:func:`tropopause_bounds`).
+    ``lower``/``upper`` map variable names to arrays: air_temperature, specific_humidity,
+    humidity_index [L] (after the terrain collapse); surface_temperature,
+    sensor_zenith_angle, skin_minus_air_temperature, surface_air_pressure [];
+    surface_emissivity [C] over the trained channels. ``novelty_limits`` [3]: largest
+    training sum z^2/var(z) and block reconstruction errors (T, ln q), times the recipe's
+    novelty_margin. ``tropopause_lower`` / ``tropopause_upper`` [M + 1] (None when the
+    recipe turns the check off or the grid has no search layer): range of the temperature
+    [K] at the lapse-rate tropopause per search base (:func:`tropopause_bounds`).
     """
 
     lower: dict
@@ -899,44 +888,63 @@ class Envelope:
 
 @dataclasses.dataclass
 class TrainedEmulator:
-    """Everything :mod:`rtemu.export` needs to write a bundle (in memory)."""
+    """Everything :mod:`rtemu.export` needs to write a bundle (plain arrays and metadata).
+
+    ``uncertainty_threshold`` [C] [K]: the recipe's flag_noise_fraction times each
+    channel's noise; a larger sigma sets the ``large_uncertainty`` flag.
+    """
 
     instrument: Instrument
     channel_ids: list
     pressure_hpa: np.ndarray
-    config: FeatureConfig
-    transform: Any  # FeatureTransform, or the frozen transform of an existing bundle
+    compression: ProfileCompression
     envelope: Envelope
     channels: dict
+    uncertainty_threshold: np.ndarray
     recipe: Any
     data_sha256: str
     data_source: str
     teacher: tuple  # (name, version) of the model the training data came from
 
     def predict(self, air_temperature, specific_humidity, surface_temperature, surface_emissivity,
-                sensor_zenith_angle) -> np.ndarray:
-        """BT [K], shape (N, C), through the scikit-learn objects (levels surface-first)."""
-        x = raw_features(air_temperature, specific_humidity, surface_temperature, sensor_zenith_angle,
-                         self.config, self.pressure_hpa)
-        z = self.transform.transform(x)
+                sensor_zenith_angle, surface_air_pressure=None) -> tuple[np.ndarray, np.ndarray]:
+        """BT [K] and sigma [K], shape (N, C) each, in float64 (levels surface-first)."""
+        T = np.asarray(air_temperature, dtype=float)
+        ps = (np.full(T.shape[0], self.pressure_hpa[0]) if surface_air_pressure is None
+              else np.asarray(surface_air_pressure, dtype=float))
+        T, q, p = _gray.collapse_to_surface(T, specific_humidity, self.pressure_hpa, ps)
+        x = raw_profile(T, q)
+        z = self.compression.project(x)
+        d = novelty_ratio(self.compression.novelty_scores(x), self.envelope.novelty_limits)
+        ts = np.asarray(surface_temperature, dtype=float)
+        sec = 1.0 / np.cos(np.radians(np.asarray(sensor_zenith_angle, dtype=float)))
         e = np.asarray(surface_emissivity, dtype=float)
-        return np.stack([self.channels[c].predict(z, x[:, -1], e[:, i]) for i, c in enumerate(self.channel_ids)],
-                        axis=1)
+        bt, sigma = [], []
+        for i, cid in enumerate(self.channel_ids):
+            ch = self.channels[cid]
+            state = ch.absorbers.forward(T, q, ts, e[:, i], sec, p)
+            bt.append(ch.predict(z, state, ts, sec, e[:, i]))
+            sigma.append(ch.uncertainty(d))
+        return np.stack(bt, axis=1), np.stack(sigma, axis=1)
 
 
-def _envelope(data: TrainingData, columns: list[int], transform, x: np.ndarray,
-              recipe: Recipe) -> Envelope:
+def novelty_ratio(scores, limits) -> np.ndarray:
+    """d [1] (N,): the largest of the novelty scores [N, 3] over their limits [3]."""
+    return np.max(np.asarray(scores) / np.maximum(np.asarray(limits, dtype=float), 1e-30), axis=1)
+
+
+def _envelope(T, q, ts, zen, ps, emissivity, pressure_hpa, scores, recipe: Recipe) -> Envelope:
     """Bounds over all used profiles (training and validation), widened by the margin."""
     margin = recipe.settings["envelope"]["bounds_margin"]
     values = {
-        "air_temperature": data.air_temperature,
-        "specific_humidity": data.specific_humidity,
-        "surface_temperature": data.surface_temperature,
-        "sensor_zenith_angle": data.sensor_zenith_angle,
-        "humidity_index": humidity_index(data.air_temperature, data.specific_humidity, data.pressure_hpa,
-                                         recipe.settings["features"]["humidity_floor"]),
-        "skin_minus_air_temperature": data.surface_temperature - data.air_temperature[:, 0],
-        "surface_emissivity": data.surface_emissivity[:, columns],
+        "air_temperature": T,
+        "specific_humidity": q,
+        "surface_temperature": ts,
+        "sensor_zenith_angle": zen,
+        "humidity_index": humidity_index(T, q, pressure_hpa),
+        "skin_minus_air_temperature": ts - T[:, 0],
+        "surface_air_pressure": ps,
+        "surface_emissivity": emissivity,
     }
     lower, upper = {}, {}
     for name, v in values.items():
@@ -952,14 +960,97 @@ def _envelope(data: TrainingData, columns: list[int], transform, x: np.ndarray,
         width = hi - lo
         lower[name] = np.clip(lo - margin * width, plo, phi)
         upper[name] = np.clip(hi + margin * width, plo, phi)
-    scores = transform.novelty_scores(x)
     limits = scores.max(axis=0) * recipe.settings["envelope"]["novelty_margin"]
     trop = (None, None)
     if recipe.settings["envelope"]["tropopause_check"]:
-        trop = tropopause_bounds(data.air_temperature, data.pressure_hpa, margin)
+        trop = tropopause_bounds(T, pressure_hpa, margin)
     return Envelope(lower=lower, upper=upper, novelty_limits=limits, bounds_margin=margin,
                     novelty_margin=recipe.settings["envelope"]["novelty_margin"],
                     tropopause_lower=trop[0], tropopause_upper=trop[1])
+
+
+def fit_emulator(data, recipe, *, channels=None, workers=None, progress=True, log=None) -> TrainedEmulator:
+    """Fit one emulator per channel (in parallel processes) on a training set.
+
+    Parameters
+    ----------
+    data : TrainingData, str, os.PathLike or xarray.Dataset
+        The training set (see :func:`load_training_data`).
+    recipe : Recipe, str or os.PathLike
+        Recipe or its name/path (see :func:`load_recipe`).
+    channels : sequence of str, optional
+        Channel ids to train (default: all of the file's instrument), in the file's order.
+    workers : int, optional
+        Worker processes (joblib, loky backend) [1]; default min(cores, channels); 1 fits
+        in this process. The result does not depend on it.
+    progress : bool
+        tqdm bar over channels with each channel's validation RMSE.
+    log : callable, optional
+        Receives one line per finished channel (besides the bar).
+
+    Returns
+    -------
+    TrainedEmulator
+    """
+    recipe = load_recipe(recipe)
+    if not isinstance(data, TrainingData):
+        data = load_training_data(data)
+    inst = data.instrument
+    ids = list(inst.channel_ids) if channels is None else [str(c) for c in channels]
+    unknown = [c for c in ids if c not in inst.channel_ids]
+    if unknown:
+        raise ValueError(f"channels {unknown} are not channels of the training data's instrument "
+                         f"{inst.name!r} ({', '.join(inst.channel_ids)})")
+    if len(set(ids)) != len(ids):
+        raise ValueError(f"channels: duplicate ids in {ids}")
+    ids = [c for c in inst.channel_ids if c in ids]
+    columns = [list(inst.channel_ids).index(c) for c in ids]
+    rows = np.flatnonzero(data.usable[:, columns].all(axis=1))
+    limit = recipe.settings["training"]["max_profiles"]
+    if limit:
+        rows = rows[:limit]
+    fraction = recipe.settings["training"]["validation_fraction"]
+    n_val = int(round(fraction * rows.size))
+    if rows.size - n_val < 10 or n_val < 1:
+        raise ValueError(f"training data {data.source}: {rows.size} usable profiles are too few for a "
+                         f"validation fraction of {fraction}")
+    perm = np.random.default_rng(np.random.SeedSequence([recipe.seed, 0x7a11])).permutation(rows.size)
+    val = np.sort(perm[:n_val])
+    train = np.sort(perm[n_val:])
+
+    ps = data.surface_air_pressure[rows]
+    T, q, p = _gray.collapse_to_surface(data.air_temperature[rows], data.specific_humidity[rows],
+                                        data.pressure_hpa, ps)
+    x = raw_profile(T, q)
+    feats = recipe.settings["features"]
+    compression = fit_compression(x[train], feats["temperature_components"], feats["humidity_components"])
+    z = compression.project(x)
+    scores = compression.novelty_scores(x)
+    ts, zen = data.surface_temperature[rows], data.sensor_zenith_angle[rows]
+    envelope = _envelope(T, q, ts, zen, ps, data.surface_emissivity[rows][:, columns], data.pressure_hpa,
+                         scores, recipe)
+    novelty = novelty_ratio(scores, envelope.novelty_limits)
+    sec = 1.0 / np.cos(np.radians(zen))
+    jobs = []
+    for cid, col in zip(ids, columns):
+        ch = inst.channels[col]
+        _, b = (planck_coefficients(frequency_ghz=ch.frequency_ghz) if ch.frequency_ghz is not None
+                else planck_coefficients(wavenumber_cm1=ch.wavenumber_cm1))
+        jobs.append({
+            "channel_id": cid, "planck_b": float(b), "profile": (T, q, ts, sec, p), "z": z,
+            "e": data.surface_emissivity[rows, col], "y": data.brightness_temperature[rows, col],
+            "novelty": novelty, "train": train, "val": val, "absorbers": recipe.settings["absorbers"],
+            "net": recipe.network_for(cid), "uncertainty": recipe.settings["uncertainty"],
+            "seed": channel_seed(recipe.seed, cid),
+        })
+    fits = dict(_run_jobs(jobs, workers, progress, log))
+    noise = np.array([inst.channels[c].noise_k for c in columns], dtype=float)
+    return TrainedEmulator(
+        instrument=inst, channel_ids=ids, pressure_hpa=data.pressure_hpa, compression=compression,
+        envelope=envelope, channels={c: fits[c] for c in ids},
+        uncertainty_threshold=recipe.settings["uncertainty"]["flag_noise_fraction"] * noise, recipe=recipe,
+        data_sha256=data.sha256, data_source=data.source, teacher=data.teacher,
+    )
 
 
 #: Stands for "no training state here" in the tropopause ranges [K]: a range (NEVER, -NEVER)
@@ -1011,181 +1102,6 @@ def tropopause_bounds(air_temperature, pressure_hpa, margin: float):
     return lower, upper
 
 
-def fit_emulator(data, recipe, *, channels=None, transform=None, workers=None, progress=True,
-                 log=None) -> TrainedEmulator:
-    """Fit one emulator per channel (in parallel processes) on a training set.
-
-    Parameters
-    ----------
-    data : TrainingData, str, os.PathLike or xarray.Dataset
-        The training set (see :func:`load_training_data`).
-    recipe : Recipe, str or os.PathLike
-        Recipe or its name/path (see :func:`load_recipe`).
-    channels : sequence of str, optional
-        Channel ids to train (default: all of the file's instrument), in the file's order.
-    transform : object, optional
-        A fitted shared transform to reuse (an existing bundle's, for updates); it must
-        provide ``project``, ``transform``, ``novelty_scores``, ``config`` and ``n_levels``.
-        Default: fit a :class:`~rtemu.features.FeatureTransform` on the training part.
-    workers : int, optional
-        Worker processes (joblib, loky backend) [1]; default min(cores, channels); 1 fits
-        in this process. The result does not depend on it.
-    progress : bool
-        tqdm bar over channels with each channel's validation RMSE.
-    log : callable, optional
-        Receives one line per finished channel (besides the bar).
-
-    Returns
-    -------
-    TrainedEmulator
-    """
-    recipe = load_recipe(recipe)
-    if not isinstance(data, TrainingData):
-        data = load_training_data(data, jacobians=recipe.uses_jacobians(channels))
-    inst = data.instrument
-    ids = list(inst.channel_ids) if channels is None else [str(c) for c in channels]
-    unknown = [c for c in ids if c not in inst.channel_ids]
-    if unknown:
-        raise ValueError(f"channels {unknown} are not channels of the training data's instrument "
-                         f"{inst.name!r} ({', '.join(inst.channel_ids)})")
-    if len(set(ids)) != len(ids):
-        raise ValueError(f"channels: duplicate ids in {ids}")
-    ids = [c for c in inst.channel_ids if c in ids]
-    columns = [list(inst.channel_ids).index(c) for c in ids]
-    rows = np.flatnonzero(data.usable[:, columns].all(axis=1))
-    limit = recipe.settings["training"]["max_profiles"]
-    if limit:
-        rows = rows[:limit]
-    fraction = recipe.settings["training"]["validation_fraction"]
-    n_val = int(round(fraction * rows.size))
-    if rows.size - n_val < 10 or n_val < 1:
-        raise ValueError(f"training data {data.source}: {rows.size} usable profiles are too few for a "
-                         f"validation fraction of {fraction}")
-    perm = np.random.default_rng(np.random.SeedSequence([recipe.seed, 0x7a11])).permutation(rows.size)
-    val = np.sort(perm[:n_val])
-    train = np.sort(perm[n_val:])
-
-    config = recipe.feature_config(inst)
-    L = data.pressure_hpa.size
-    x = raw_features(data.air_temperature[rows], data.specific_humidity[rows],
-                     data.surface_temperature[rows], data.sensor_zenith_angle[rows], config, data.pressure_hpa)
-    if transform is None:
-        transform = FeatureTransform(config=config, n_levels=L, pressure_hpa=data.pressure_hpa).fit(x[train])
-    elif transform.n_levels != L:
-        raise ValueError(f"the shared transform has {transform.n_levels} levels, the data {L}")
-    z = transform.project(x)
-    envelope = _envelope(_subset(data, rows), columns, transform, x, recipe)
-    jacobians = None
-    if recipe.uses_jacobians(ids):
-        if data.jacobian_air_temperature is None:
-            raise ValueError(f"training data {data.source}: no Jacobians loaded (rule: a recipe with "
-                             "jacobian_weight > 0 needs load_training_data(..., jacobians=True) on a set "
-                             "sampled with --jacobian)")
-        jacobians = _jacobian_sets(data, rows, train, val, transform, config, recipe)
-
-    jobs = []
-    for cid, col in zip(ids, columns):
-        net = recipe.network_for(cid)
-        jobs.append({
-            "channel_id": cid, "s": x[:, -1], "z": z, "e": data.surface_emissivity[rows, col],
-            "y": data.brightness_temperature[rows, col], "train": train, "val": val,
-            "net": net, "seed": channel_seed(recipe.seed, cid),
-            "residual": recipe.settings["linear"]["residual"],
-            "z_columns": _channel_columns(config, L, z.shape[1], net, cid, recipe.source),
-            "uses_kernels": bool(config.n_kernels) and net["opacity_kernels"],
-            "uses_profiles": net["profile_blocks"],
-            "linear_columns": _own_kernel_columns(config, L, z.shape[1], net, cid, col, recipe.source),
-            "jacobian": None if jacobians is None or net["jacobian_weight"] <= 0 else jacobians(col),
-        })
-    fits = dict(_run_jobs(jobs, workers, progress, log))
-    return TrainedEmulator(
-        instrument=inst, channel_ids=ids, pressure_hpa=data.pressure_hpa, config=config,
-        transform=transform, envelope=envelope, channels={c: fits[c] for c in ids}, recipe=recipe,
-        data_sha256=data.sha256, data_source=data.source, teacher=data.teacher,
-    )
-
-
-def _channel_columns(config: FeatureConfig, n_levels: int, width: int, net: dict, channel_id: str, source: str):
-    """Columns of z a channel sees (None: all of them).
-
-    ``opacity_kernels = false`` leaves out the kernel scalars; ``profile_blocks = false``
-    the principal components of the profile blocks (T, h(q), q, ln W), so that the channel's
-    air-temperature and humidity sensitivity can only come through the kernels' physically
-    shaped Jacobians (Ts and s(theta) stay in either case).
-    """
-    kernels = kernel_columns(config, n_levels) if config.n_kernels else np.array([], dtype=int)
-    if not net["profile_blocks"] and (not net["opacity_kernels"] or not config.n_kernels):
-        raise ValueError(f"recipe {source}: channel {channel_id!r} has profile_blocks = false but no opacity "
-                         "kernels (rule: a channel without the profile blocks needs [features] kernels and "
-                         "opacity_kernels = true)")
-    if net["profile_blocks"] and (net["opacity_kernels"] or not config.n_kernels):
-        return None
-    everything = np.arange(width)
-    if not net["opacity_kernels"]:
-        return np.setdiff1d(everything, kernels)
-    return everything[kernels[0]:]  # the kernel scalars, Ts and s(theta)
-
-
-def _own_kernel_columns(config: FeatureConfig, n_levels: int, width: int, net: dict, channel_id: str,
-                        column: int, source: str):
-    """Columns of z for ``linear_inputs = "own_kernel"``: the channel's own kernel scalars
-    [f, t_s, (r)], Ts and s(theta) (None for ``"all"``). ``column``: the channel's index in
-    the instrument, which orders the channel kernels after the bank's."""
-    if net["linear_inputs"] == "all":
-        return None
-    n_bank = len(config.line_kernels) + len(config.continuum_kernels)
-    if not config.channel_kernels or not net["opacity_kernels"] or column >= len(config.channel_kernels):
-        raise ValueError(f"recipe {source}: channel {channel_id!r} has linear_inputs = \"own_kernel\" but no "
-                         "kernel of its own (rule: it needs [features] instrument_kernels = \"bands\" or "
-                         "\"channels\" and opacity_kernels = true)")
-    first = kernel_columns(config, n_levels)[0]
-    own = [first + g * config.n_kernels + n_bank + column for g in range(config.n_kernel_scalars)]
-    return np.array(own + [width - 2, width - 1])
-
-
-def _jacobian_sets(data: TrainingData, rows, train, val, transform, config, recipe: Recipe):
-    """Per-channel inputs of the Jacobian term: returns ``channel column -> job dict``.
-
-    Draws (seeded) up to ``jacobian_profiles`` training and ``jacobian_validation_profiles``
-    validation profiles, computes dz/d(T, ln q) for them once (shared by all channels) and
-    fixed probe vectors; each channel's directions and targets are made on request.
-    """
-    from rtemu.jacobian_fit import probe_directions, state_jacobian
-
-    tr = recipe.settings["training"]
-    rng = np.random.default_rng(np.random.SeedSequence([recipe.seed, 0x1AC0B]))
-    rows_t = np.sort(rng.permutation(train.size)[:min(tr["jacobian_profiles"], train.size)])
-    rows_v = np.sort(rng.permutation(val.size)[:min(tr["jacobian_validation_profiles"], val.size)])
-    picked = rows[np.concatenate([train[rows_t], val[rows_v]])]
-    q = data.specific_humidity[picked]
-    G = state_jacobian(transform.project, config, data.air_temperature[picked], q,
-                       data.surface_temperature[picked], data.sensor_zenith_angle[picked], data.pressure_hpa)
-    n_probes = tr["jacobian_probes"]
-    probes = rng.standard_normal((picked.size, G.shape[1], n_probes)) / np.sqrt(n_probes)
-    m = rows_t.size
-
-    def for_channel(col: int) -> dict:
-        jt = data.jacobian_air_temperature[picked, col].astype(float)
-        jq = data.jacobian_specific_humidity[picked, col].astype(float) * q  # per ln q [K]
-        d, target, _ = probe_directions(G, jt, jq, probes, tr["jacobian_floor"])
-        return {"train_rows": rows_t, "val_rows": rows_v, "directions": d[:m], "target": target[:m],
-                "val_directions": d[m:], "val_target": target[m:]}
-
-    return for_channel
-
-
-def _subset(data: TrainingData, rows: np.ndarray) -> TrainingData:
-    return dataclasses.replace(
-        data,
-        air_temperature=data.air_temperature[rows], specific_humidity=data.specific_humidity[rows],
-        surface_temperature=data.surface_temperature[rows],
-        surface_emissivity=data.surface_emissivity[rows],
-        sensor_zenith_angle=data.sensor_zenith_angle[rows],
-        brightness_temperature=data.brightness_temperature[rows], usable=data.usable[rows],
-        jacobian_air_temperature=None, jacobian_specific_humidity=None,
-    )
-
-
 def _run_jobs(jobs: list[dict], workers, progress: bool, log):
     from tqdm.auto import tqdm
 
@@ -1205,12 +1121,9 @@ def _run_jobs(jobs: list[dict], workers, progress: bool, log):
                                max_nbytes=None)(delayed(_fit_channel)(job) for job in jobs)
         for fit in results:
             line = (f"{fit.channel_id}: validation RMSE {fit.stats['validation_rmse_k']:.4f} K, "
-                    f"max {fit.stats['validation_max_abs_k']:.3f} K, {fit.stats['iterations']} iterations, "
+                    f"max {fit.stats['validation_max_abs_k']:.3f} K, {fit.stats['n_absorbers']} absorbers (gray model "
+                    f"{fit.stats['gray_only_validation_rmse_k']:.4f} K), {fit.stats['iterations']} iterations, "
                     f"{fit.seconds:.1f} s")
-            if "jacobian_iterations" in fit.stats:
-                line += (f"; Jacobian term: {fit.stats['jacobian_iterations']} iterations, median relative "
-                         f"Jacobian error (validation probes) {fit.stats['validation_jacobian_error_median_before']:.3f}"
-                         f" -> {fit.stats['validation_jacobian_error_median']:.3f}")
             bar.set_postfix_str(f"{fit.channel_id} val RMSE {fit.stats['validation_rmse_k']:.4f} K")
             bar.update(1)
             if log is not None:

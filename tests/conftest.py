@@ -146,32 +146,31 @@ seed = 0
 validation_fraction = 0.2
 max_profiles = 1500
 [features]
-humidity = "log"
-humidity_floor = 1e-9
-zenith = "secant"
 temperature_components = 8
 humidity_components = 8
-line_kernels = [0.1, 3.0]
-continuum_kernels = [30.0]
-reflection_kernels = true
-[linear]
-residual = true
-ridge_alpha = 1e-6
+[absorbers]
+profiles = 200
+validation_profiles = 100
+max_absorbers = 1
+target_rmse_k = 0.1
+starts = 2
+start_evaluations = 8
+evaluations = 20
 [network]
 hidden_layers = [8]
-activation = "tanh"
-solver = "lbfgs"
 alpha = 1e-4
 max_iter = 60
-tol = 0.0
-early_stopping = false
 check_every = 60
 patience = 1
+[uncertainty]
+coverage = 0.95
+# a model this small is not accurate to half the noise: the flag would fire everywhere
+flag_noise_fraction = 20.0
 [envelope]
 bounds_margin = 0.02
 novelty_margin = 1.0
 [channels."mw-t3"]
-opacity_kernels = false
+hidden_layers = [6]
 """
 
 

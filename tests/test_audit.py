@@ -519,24 +519,23 @@ seed = 0
 validation_fraction = 0.2
 max_profiles = 400
 [features]
-humidity = "log"
-humidity_floor = 1e-9
-zenith = "secant"
 temperature_components = 6
 humidity_components = 6
-[linear]
-residual = true
-ridge_alpha = 1e-6
+[absorbers]
+profiles = 100
+validation_profiles = 50
+max_absorbers = 1
+starts = 1
+start_evaluations = 5
+evaluations = 10
 [network]
 hidden_layers = [4]
-activation = "tanh"
-solver = "lbfgs"
 alpha = 1e-4
 max_iter = 30
-tol = 0.0
-early_stopping = false
 check_every = 30
 patience = 1
+[uncertainty]
+flag_noise_fraction = 20.0
 [envelope]
 bounds_margin = 0.02
 novelty_margin = 1.0

@@ -23,7 +23,13 @@ validation_fraction = 0.25
 [features]
 temperature_components = 4
 humidity_components = 4
-linear_humidity_components = 2
+[absorbers]
+profiles = 100
+validation_profiles = 50
+max_absorbers = 1
+starts = 1
+start_evaluations = 5
+evaluations = 10
 [network]
 hidden_layers = [5]
 max_iter = 20
@@ -82,18 +88,8 @@ def test_describe_is_readable(good):
     for piece in ("mw-t2", "ir-w1", "format version", "tiny-bundle", "brightness_temperature",
                   "jacobian_specific_humidity", "novel_state", "64 levels", "tropopause check: first level"):
         assert piece in text
-    assert "opacity kernels    none" in text  # this bundle's recipe has none
-    summary = rb._kernels_summary({"line_kernels": [0.1, 3.0], "continuum_kernels": [30.0], "reflection_kernels": True,
-                                   "channel_kernels": [[[1.0, 0.0, 1.0, 0.0]], [[0.5, 1.0, 0.0, 0.0], [0.5, 2.0, 0.0, 0.0]]]})
-    assert summary == ("line path [0.1, 3.0] m2 kg-1; continuum path [30.0] m2 kg-1; 2 from the instrument's "
-                       "channels (3 sub-bands); with the reflected-sky term")
-    laws = rb._kernels_summary({"channel_kernels": [[[1.0, 0.0, 1.0, 0.0]]],
-                                "kernel_temperature_laws": [273.15, 0.8, 1.5, 3.0]})
-    assert laws == ("1 from the instrument's channels (1 sub-bands); absorption in (T_ref / T)^n, T_ref 273.15 K, "
-                    "n dry/line/continuum 0.8/1.5/3")
-    assert [rb._inputs_label(s) for s in ({"opacity_kernels": False}, {"opacity_kernels": True},
-                                          {"opacity_kernels": True, "profile_blocks": False,
-                                           "linear_inputs": "own_kernel"})] == ["profiles", "all", "kernels/own"]
+    assert "gray absorbers     up to 1 per channel" in text and "within 2 sigma" in text
+    assert "brightness_temperature_uncertainty" in text and "surface_air_pressure" in text
 
 
 def test_bundle_error_is_a_value_error():
@@ -177,10 +173,10 @@ def test_missing_key_refused(good, tmp_path):
 def test_tampered_weights_refused(good, tmp_path):
     model = onnx.load(str(good))
     for i, init in enumerate(model.graph.initializer):
-        if init.name == "linear_weight":
+        if init.name == "output_offset":
             value = numpy_helper.to_array(init).copy()
-            value[-1, 0] += 0.5  # the constant of channel 0: a plausible, silent 0.5 K shift
-            model.graph.initializer[i].CopyFrom(numpy_helper.from_array(value, "linear_weight"))
+            value[0] += 0.5  # the constant of channel 0: a plausible, silent 0.5 K shift
+            model.graph.initializer[i].CopyFrom(numpy_helper.from_array(value, "output_offset"))
     path = _write_model(model, tmp_path / "tampered.onnx")
     with pytest.raises(rb.BundleError, match="weights do not match their SHA-256"):
         rb.read_bundle(path)

@@ -164,7 +164,12 @@ def test_output_schema(operator_case):
     assert (qf.values & flags.INVALID_INPUT).sum() == 0
     assert np.isfinite(out["brightness_temperature"].values).all()
     plain = op.simulate(ds)
-    assert set(plain.data_vars) == {"brightness_temperature", "quality_flag"}
+    # the emulator adds its own uncertainty (one sigma [K]); the physics has none
+    extra = {"brightness_temperature_uncertainty"} if hasattr(op, "bundle") else set()
+    assert set(plain.data_vars) == {"brightness_temperature", "quality_flag"} | extra
+    if extra:
+        sigma = plain["brightness_temperature_uncertainty"]
+        assert sigma.dims == ("profile", "channel") and sigma.attrs["units"] == "K" and (sigma.values > 0).all()
     np.testing.assert_array_equal(plain["brightness_temperature"].values,
                                   out["brightness_temperature"].values)
 
@@ -336,6 +341,7 @@ def _assert_labelled_like_physics(op, out, ds, jacobian):
     if isinstance(op, PhysicalOperator):
         xr.testing.assert_identical(out, reference)
         return
+    out = out.drop_vars("brightness_temperature_uncertainty")  # the emulator's own output, checked elsewhere
     assert {k: v.dtype for k, v in out.variables.items()} == {k: v.dtype for k, v in reference.variables.items()}
     xr.testing.assert_identical(out, reference.copy(data={k: out[k].values for k in reference.data_vars}))
 
