@@ -488,7 +488,8 @@ def _select_inputs(ds: xr.Dataset, channels, source: str = "data", stored: bool 
                          f"all of {list(INPUT_VARIABLES)})")
     if "profile" not in ds.dims or ds.sizes["profile"] == 0:
         raise ValueError(f"{source}: no profiles (rule: dimension 'profile' with at least one entry)")
-    ds = ds[list(INPUT_VARIABLES) + ([n for n in _STORED_OUTPUTS if n in ds.variables] if stored else [])]
+    optional = [n for n in ("surface_air_pressure",) if n in ds.variables]  # the ground, over terrain
+    ds = ds[list(INPUT_VARIABLES) + optional + ([n for n in _STORED_OUTPUTS if n in ds.variables] if stored else [])]
     if "channel" in ds.dims and "channel" in ds.coords:
         have = [str(c) for c in ds["channel"].values]
         if set(channels) <= set(have) and have != list(channels):
@@ -656,8 +657,9 @@ class _Collected:
 
 
 def _geometry(prep) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Column water [kg m-2], zenith angle [degree], emissivity [1]; NaN for invalid profiles."""
-    tcwv = total_column_water_vapour(prep.pressure_hpa, prep.specific_humidity)
+    """Column water above the ground [kg m-2], zenith angle [degree], emissivity [1]; NaN for
+    invalid profiles."""
+    tcwv = total_column_water_vapour(prep.pressure_hpa, prep.specific_humidity, prep.surface_air_pressure)
     zen = prep.sensor_zenith_angle.copy()
     em = prep.surface_emissivity.copy()
     # prepare_inputs puts a stand-in state into invalid profiles: never bin those.

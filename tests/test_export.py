@@ -119,7 +119,7 @@ def _tiny_feeds(path, n, seed=0):
         "surface_temperature": ds["surface_temperature"].values.astype(np.float32),
         "surface_emissivity": em.astype(np.float32),
         "sensor_zenith_angle": ds["sensor_zenith_angle"].values.astype(np.float32),
-        "surface_air_pressure": rng.choice([1013.25, 700.0, 930.0], n).astype(np.float32),
+        "surface_air_pressure": rng.choice([float(grid.max()), 700.0, 930.0], n).astype(np.float32),
     }
 
 
@@ -171,7 +171,7 @@ def test_tract_agrees_with_onnxruntime(tiny_bundle):
 def test_flag_bits_are_separate(tiny_bundle):
     session = _session(str(tiny_bundle))
     feeds = _tiny_feeds(tiny_bundle, 4, seed=4)
-    feeds["surface_air_pressure"][:] = 1013.25
+    feeds["surface_air_pressure"][:] = read_bundle(tiny_bundle).pressure_hpa.max()  # no terrain
     base = _run(session, feeds)["quality_flag"]
     warm = dict(feeds, air_temperature=feeds["air_temperature"] + 30.0)
     flag = _run(session, warm)["quality_flag"]
@@ -183,7 +183,9 @@ def test_flag_bits_are_separate(tiny_bundle):
     flag = _run(session, bad)["quality_flag"]
     assert (flag[0] & _flags.INVALID_INPUT).all() and (flag[1:] == base[1:]).all()
     sigma = _run(session, feeds)["brightness_temperature_uncertainty"]
-    threshold = np.array(list(read_bundle(tiny_bundle).flag_thresholds["uncertainty_threshold_k"].values()))
+    bundle = read_bundle(tiny_bundle)
+    by_channel = bundle.flag_thresholds["uncertainty_threshold_k"]  # JSON object: keys sorted, not in channel order
+    threshold = np.array([by_channel[c] for c in bundle.channel_ids])
     expect = sigma > threshold.astype(np.float32)[None, :]  # the graph compares in float32
     np.testing.assert_array_equal((base & _flags.LARGE_UNCERTAINTY) != 0, expect)
 
@@ -191,9 +193,10 @@ def test_flag_bits_are_separate(tiny_bundle):
 def test_grid_bottom_surface_pressure_changes_nothing(tiny_bundle):
     session = _session(str(tiny_bundle))
     feeds = _tiny_feeds(tiny_bundle, 4, seed=6)
-    feeds["surface_air_pressure"][:] = 1013.25
+    bottom = read_bundle(tiny_bundle).pressure_hpa.max()
+    feeds["surface_air_pressure"][:] = bottom
     a = _run(session, feeds)
-    feeds["surface_air_pressure"][:] = 1050.0  # below the grid: nothing to collapse
+    feeds["surface_air_pressure"][:] = bottom + 40.0  # below the grid: nothing to collapse
     b = _run(session, feeds)
     np.testing.assert_allclose(a["brightness_temperature"], b["brightness_temperature"], atol=1e-4)
 

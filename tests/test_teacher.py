@@ -253,16 +253,22 @@ def own_model(tmp_path_factory):
     trained through the command line. Returns the directory."""
     d = tmp_path_factory.mktemp("own_model")
     shutil.copy(HERE / "analytic_teacher.py", d / "toy_model.py")
+    # These tests are about whom the audit compares with, not accuracy: the demo recipe with
+    # a large_uncertainty threshold that leaves unflagged entries (its sigma on this toy from
+    # 1,500 profiles, 0.6-0.8 K, is above half the toy noise, so every entry was flagged).
+    demo = (Path(rtemu.__file__).parent / "recipes" / "demo.toml").read_text()
+    assert "flag_noise_fraction = 0.5" in demo
+    (d / "loose.toml").write_text(demo.replace("flag_noise_fraction = 0.5", "flag_noise_fraction = 100.0"))
     with pytest.MonkeyPatch.context() as mp:
         mp.chdir(d)
         mp.setattr(sys, "path", list(sys.path))
-        for argv in (["sample", "--teacher", "toy_model:make_teacher", "--count", "400", "--seed", "1",
+        for argv in (["sample", "--teacher", "toy_model:make_teacher", "--count", "1500", "--seed", "1",
                       "--output", "train.nc"],
                      ["sample", "--teacher", "toy_model:teacher", "--count", "60", "--seed", "2", "--jacobian",
                       "--output", "test.nc"],
                      ["sample", "--teacher", "toy_model:teacher", "--count", "60", "--seed", "3",
                       "--output", "test_bt_only.nc"],
-                     ["train", "--data", "train.nc", "--recipe", "demo", "--output", "model.onnx"]):
+                     ["train", "--data", "train.nc", "--recipe", "loose.toml", "--output", "model.onnx"]):
             assert main(argv + ["--quiet"]) == 0
     return d
 
@@ -316,11 +322,6 @@ def test_the_bundle_knows_its_teacher_and_refuses_physics_in_its_place(own_model
                               progress=False)
     assert main(["audit", "--model", "model.onnx", "--data", "physics.nc", "--output", "none", "--quiet"]) == 2
     assert "come from teacher 'rtemu.physics', the emulator learned 'analytic-toy'" in capsys.readouterr().err
-    # One teacher per bundle: channels learned from rtemu's physics cannot join it.
-    assert main(["train", "--data", "physics.nc", "--recipe", "demo", "--channels", "toy-q", "--update",
-                 "model.onnx", "--output", "mixed.onnx", "--quiet"]) == 2
-    assert "the bundle emulates teacher 'analytic-toy', the training data comes from 'rtemu.physics'" in \
-        capsys.readouterr().err
 
 
 def test_audit_data_without_jacobians_leaves_jacobian_errors_empty(own_model, tmp_path):
