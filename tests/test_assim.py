@@ -545,8 +545,11 @@ def test_ensemble_qc_rejects_gross_error_and_flag():
 
 
 # -- 1D-Var with the physical model ------------------------------------------------------------
-def _physical_case(n_prof=100, seed=0, sd_t=1.5, sd_lnq=0.3):
-    """Synthetic truth, obs = H(truth) + noise, background = truth + error drawn from B."""
+def _physical_case(n_prof=100, seed=0, sd_t=1.5, sd_lnq=0.3, ground=None):
+    """Synthetic truth, obs = H(truth) + noise, background = truth + error drawn from B.
+
+    ``ground``: surface_air_pressure [hPa] of every column (truth and background), or None
+    (the ground at the grid's lowest level)."""
     from rtemu.atmosphere import default_pressure_grid, us_standard_atmosphere_1976
     from rtemu.runtime import PhysicalOperator
 
@@ -570,6 +573,8 @@ def _physical_case(n_prof=100, seed=0, sd_t=1.5, sd_lnq=0.3):
         "surface_emissivity": ("profile", rng.uniform(0.6, 0.95, n_prof)),
         "sensor_zenith_angle": ("profile", rng.uniform(0.0, 50.0, n_prof)),
     })
+    if ground is not None:
+        truth["surface_air_pressure"] = ("profile", np.broadcast_to(np.asarray(ground, float), (n_prof,)))
     x_true = control(truth, layout)
     cols = read_columns(truth, ("profile",), (), "truth")
     bg_cols, x_bg = from_control(x_true + rng.standard_normal(x_true.shape) @ chol.T, cols, layout)
@@ -581,6 +586,32 @@ def _physical_case(n_prof=100, seed=0, sd_t=1.5, sd_lnq=0.3):
 
 def _mahalanobis(err, b):
     return np.einsum("pi,ij,pj->p", err, np.linalg.inv(b), err)
+
+
+def test_var1d_over_terrain_sees_the_ground_and_holds_the_levels_under_it():
+    """With surface_air_pressure, every operator call of the 1D-Var sees the ground: its
+    analysis departures are those of the operator run on the analysis dataset (which
+    carries the ground); and T, ln q of the levels the operator drops under the ground
+    (zero Jacobians) stay at the background, where B's correlations alone would move them."""
+    rng = np.random.default_rng(7)
+    ground = rng.uniform(700.0, 1000.0, 12)  # hPa, mountains to lowlands (invented)
+    op, background, obs, b, layout, x_true, x_bg = _physical_case(n_prof=12, seed=7, ground=ground)
+    res = assim.var1d(op, background, obs, b_matrix=b)
+    assert res.converged.values.all()
+    assert "surface_air_pressure" in res.analysis
+    out = op.simulate(res.analysis)
+    used = res.qc_reason.values == qc.USED
+    dep = (obs - out["brightness_temperature"]).values
+    np.testing.assert_allclose(res.diagnostics["departure_analysis"].values[used], dep[used], atol=1e-9)
+    p = background["air_pressure"].values
+    nearest = np.array([p[p >= g].min() for g in ground])  # still enters the ground's values
+    under = p[None, :] > nearest[:, None]
+    assert under.sum(axis=1).min() >= 1
+    x_an = control(res.analysis, layout)
+    lev = layout.n_levels
+    for part in (slice(0, lev), slice(lev, 2 * lev)):
+        np.testing.assert_array_equal(x_an[:, part][under], x_bg[:, part][under])
+        assert (np.abs(x_an[:, part] - x_bg[:, part])[~under] > 1e-6).any()
 
 
 def test_var1d_on_physical_model_converges_and_beats_background():

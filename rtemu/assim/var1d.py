@@ -36,7 +36,10 @@ Convergence (d^2 tested at every accepted iterate, and at the background):
 Active set: an element at a physical limit is held there when descent points outward
 or when the undamped step would leave the limit; a ln q held on its saturation limit
 moves with the temperature of its level (d ln q = d ln q_s/dT dT), so an optimum on a
-saturated level is reached, not approached by clipped steps.
+saturated level is reached, not approached by clipped steps. With a
+``surface_air_pressure`` in the background, every operator call sees that ground, and the
+T and ln q of the levels under it that the operator drops (zero Jacobians) are held at
+the background for the whole minimisation.
 
 Diagnostics at the analysis, with H the Jacobian there (Rodgers 2000, ch. 2-3):
 
@@ -244,9 +247,12 @@ def _active_set(problem, idx, x, grad, cols, h_tilde, hb):
     > slope dT). Blocked elements are left out of the convergence test, so that an
     optimum on a limit (e.g. saturation) is recognised as one.
     """
+    held = problem.held[idx]
     at_hi, at_lo = _at_limits(x, cols, problem.layout)
+    at_hi &= ~held
+    at_lo &= ~held
     slope_hi = _saturation_slope(at_hi, cols, problem.layout)
-    blocked = (at_hi & (grad < 0)) | (at_lo & (grad > 0))
+    blocked = held | (at_hi & (grad < 0)) | (at_lo & (grad > 0))
     system = list(_step_system(grad, problem.cov, idx, h_tilde, blocked, hb,
                                (slope_hi * blocked, problem.partner)))
     dx = -_damped_step(system, np.ones(len(idx)), blocked, (slope_hi * blocked, problem.partner))
@@ -415,6 +421,7 @@ class _Problem:
     tolerated_bits: int
     partner: np.ndarray  # [n], see _partner
     cols_b: object  # Columns of the background
+    held: np.ndarray  # [N, n] elements under the ground, held at the background
 
     def run(self, cols):
         """Operator output at ``cols`` with the tolerated flag bits cleared, and H [k, C, n]."""
@@ -559,7 +566,19 @@ def _read_problem(operator, background, observations, b_matrix, observation_erro
     y = read_observations(observations, channels, xb.shape[0], background.coords.get("profile"))
     r = observation_error_variance(operator, observation_error, emulator_error)
     return _Problem(operator=operator, channels=channels, layout=layout, xb=xb, cov=cov, y=y, r=r,
-                    tolerated_bits=tolerated_bits, partner=_partner(layout), cols_b=cols_b)
+                    tolerated_bits=tolerated_bits, partner=_partner(layout), cols_b=cols_b,
+                    held=_held(cols_b, layout))
+
+
+def _held(cols, layout):
+    """Control elements [N, n] held at the background: T and ln q of the levels under the
+    ground (:meth:`Columns.below_ground`). Their Jacobians are zero, so only B's
+    correlations would move them, to values no operator call ever sees."""
+    held = np.zeros((cols.n, layout.size), dtype=bool)
+    below = cols.below_ground()
+    held[:, layout.temperature] = below
+    held[:, layout.ln_humidity] = below
+    return held
 
 
 def _first_guess(problem: _Problem, settings: _Settings) -> tuple[_Screening, _Iterates]:
@@ -640,7 +659,7 @@ def _try_step(problem, screening, state: _Iterates, idx) -> _Trial:
     """One damped step from the iterates of ``idx``, projected, and one operator call there."""
     step = _damped_step([part[idx] for part in state.system], 1.0 + state.gamma[idx],
                         state.blocked[idx], state.coupling(idx, problem))
-    cols, x = from_control(state.x[idx] - step, state.cols.subset(idx), problem.layout)
+    cols, x = from_control(state.x[idx] - step, state.cols.subset(idx), problem.layout, problem.held[idx])
     raw, h = problem.run(cols)
     u = screening.used[idx]
     valid = (
