@@ -319,21 +319,29 @@ def prepare_inputs(
 
 
 def _supersaturated(p, t, q, ps, valid) -> np.ndarray:
-    """[N] bool: q above saturation over water at some level of the column above the ground.
+    """[N] bool: q above saturation over water at some level that reaches the transfer.
 
     Not an error: the clear-sky model is defined for any q < 0.1, but a state above
     saturation is one it cannot represent; operators flag it (rtemu.flags.SUPERSATURATED).
+    With a ground ``ps`` the levels tested are the given levels above it and the nearest
+    given level at or under it (the two the ground's values are interpolated from), each
+    at its own pressure; deeper levels do not reach the transfer and do not count. The
+    interpolated ground value itself is not tested: q linear in ln p between two saturated
+    levels lies above saturation at the interpolated T (q_s is convex in T; 1.4-2.1 % above
+    it between saturated levels 24 hPa apart), so testing it would flag a state none of
+    whose levels is supersaturated, and a 1D-Var could not keep its trial states unflagged.
     """
     supersaturated = np.zeros(p.shape[0], dtype=bool)
     if not valid.any():
         return supersaturated
-    if ps is not None:  # the levels the transfer sees (those under the ground do not count)
-        cut = cut_at_surface(p, t, q, ps)
-        p, t, q = cut.pressure_hpa, cut.air_temperature, cut.specific_humidity
     rows = slice(None) if valid.all() else valid  # a slice: no copies in the usual case
     with np.errstate(invalid="ignore"):
-        q_sat = saturation_specific_humidity(t[rows], p[rows])
-    supersaturated[rows] = (q[rows] > q_sat * (1.0 + SATURATION_TOLERANCE)).any(axis=1)
+        over = q[rows] > saturation_specific_humidity(t[rows], p[rows]) * (1.0 + SATURATION_TOLERANCE)
+        if ps is not None:
+            p_rows, ps_rows = p[rows], np.reshape(ps, (-1, 1))[rows]
+            nearest = np.min(np.where(p_rows >= ps_rows, p_rows, np.inf), axis=1, keepdims=True)
+            over &= ~(p_rows > nearest)
+    supersaturated[rows] = over.any(axis=1)
     return supersaturated
 
 

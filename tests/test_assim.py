@@ -19,7 +19,7 @@ import pytest
 import xarray as xr
 
 from rtemu import assim
-from rtemu.atmosphere import saturation_specific_humidity
+from rtemu.atmosphere import DEFAULT_SURFACE_PRESSURE_HPA, saturation_specific_humidity
 from rtemu.assim import qc
 from rtemu.assim._control import ControlLayout, from_control, read_columns, to_control, write_columns
 from rtemu.assim.covariance import covariance_dataarray
@@ -545,8 +545,13 @@ def test_ensemble_qc_rejects_gross_error_and_flag():
 
 
 # -- 1D-Var with the physical model ------------------------------------------------------------
-def _physical_case(n_prof=100, seed=0, sd_t=1.5, sd_lnq=0.3):
-    """Synthetic truth, obs = H(truth) + noise, background = truth + error drawn from B."""
+def _physical_case(n_prof=100, seed=0, sd_t=1.5, sd_lnq=0.3, ground=DEFAULT_SURFACE_PRESSURE_HPA):
+    """Synthetic truth, obs = H(truth) + noise, background = truth + error drawn from B.
+
+    ``ground``: surface_air_pressure [hPa] of every column (truth and background), by
+    default the standard sea-level pressure: the default grid reaches 1100 hPa, below any
+    ground, and its bottom levels are meant to be cut off by a surface_air_pressure (see
+    rtemu.atmosphere.default_pressure_grid); None puts the ground at 1100 hPa."""
     from rtemu.atmosphere import default_pressure_grid, us_standard_atmosphere_1976
     from rtemu.runtime import PhysicalOperator
 
@@ -570,6 +575,8 @@ def _physical_case(n_prof=100, seed=0, sd_t=1.5, sd_lnq=0.3):
         "surface_emissivity": ("profile", rng.uniform(0.6, 0.95, n_prof)),
         "sensor_zenith_angle": ("profile", rng.uniform(0.0, 50.0, n_prof)),
     })
+    if ground is not None:
+        truth["surface_air_pressure"] = ("profile", np.broadcast_to(np.asarray(ground, float), (n_prof,)))
     x_true = control(truth, layout)
     cols = read_columns(truth, ("profile",), (), "truth")
     bg_cols, x_bg = from_control(x_true + rng.standard_normal(x_true.shape) @ chol.T, cols, layout)
@@ -581,6 +588,71 @@ def _physical_case(n_prof=100, seed=0, sd_t=1.5, sd_lnq=0.3):
 
 def _mahalanobis(err, b):
     return np.einsum("pi,ij,pj->p", err, np.linalg.inv(b), err)
+
+
+def test_steps_that_cross_a_limit_land_on_it():
+    """A free ln q whose step crosses its saturation limit is shortened to land on it: with
+    T fixed, at the fraction (ln q_s - ln q) / d ln q; a step along the limit (d ln q =
+    d ln q_s/dT dT) is not shortened; the T range cuts like any bound, except for an
+    element the active set holds (blocked)."""
+    from rtemu.assim._control import humidity_ceiling_slope
+    from rtemu.assim.var1d import _fraction_to_limit
+
+    p = np.array([900.0, 500.0])
+    t = np.array([[285.0, 250.0]])
+    q_s = saturation_specific_humidity(t, p)
+    truth = xr.Dataset({
+        "air_pressure": ("level", p),
+        "air_temperature": (("profile", "level"), t),
+        "specific_humidity": (("profile", "level"), q_s * np.array([[0.5, 0.2]])),
+        "surface_temperature": ("profile", [288.0]),
+        "surface_emissivity": ("profile", [0.9]),
+        "sensor_zenith_angle": ("profile", [0.0]),
+    })
+    cols = read_columns(truth, ("profile",), (), "test")
+    layout = ControlLayout(n_levels=2)
+    x = to_control(cols, layout, "test")
+    none = np.zeros((1, layout.size), dtype=bool)
+    gap = np.log(2.0)  # ln q_s - ln q at level 0
+    dx = np.zeros((1, layout.size))
+    dx[0, 2] = 4.0 * gap
+    np.testing.assert_allclose(_fraction_to_limit(x, dx, cols, layout, none), 0.25, rtol=1e-12)
+    slope = humidity_ceiling_slope(cols)[0, 0]
+    dx[0, 0], dx[0, 2] = 10.0, 10.0 * slope  # moves along the saturation curve (first order)
+    dx[0, 2] -= 1e-9
+    assert _fraction_to_limit(x, dx, cols, layout, none) == 1.0
+    dx[:] = 0.0
+    dx[0, 1] = 200.0  # T 250 K -> 450 K: cut at the 400 K limit (the ceiling of ln q rises)
+    np.testing.assert_allclose(_fraction_to_limit(x, dx, cols, layout, none), 150.0 / 200.0, rtol=1e-12)
+    blocked = none.copy()
+    blocked[0, 1] = True
+    assert _fraction_to_limit(x, dx, cols, layout, blocked) == 1.0
+
+
+def test_var1d_over_terrain_sees_the_ground_and_holds_the_levels_under_it():
+    """With surface_air_pressure, every operator call of the 1D-Var sees the ground: its
+    analysis departures are those of the operator run on the analysis dataset (which
+    carries the ground); and T, ln q of the levels the operator drops under the ground
+    (zero Jacobians) stay at the background, where B's correlations alone would move them."""
+    rng = np.random.default_rng(7)
+    ground = rng.uniform(700.0, 1000.0, 12)  # hPa, mountains to lowlands (invented)
+    op, background, obs, b, layout, x_true, x_bg = _physical_case(n_prof=12, seed=7, ground=ground)
+    res = assim.var1d(op, background, obs, b_matrix=b)
+    assert res.converged.values.all()
+    assert "surface_air_pressure" in res.analysis
+    out = op.simulate(res.analysis)
+    used = res.qc_reason.values == qc.USED
+    dep = (obs - out["brightness_temperature"]).values
+    np.testing.assert_allclose(res.diagnostics["departure_analysis"].values[used], dep[used], atol=1e-9)
+    p = background["air_pressure"].values
+    nearest = np.array([p[p >= g].min() for g in ground])  # still enters the ground's values
+    under = p[None, :] > nearest[:, None]
+    assert under.sum(axis=1).min() >= 1
+    x_an = control(res.analysis, layout)
+    lev = layout.n_levels
+    for part in (slice(0, lev), slice(lev, 2 * lev)):
+        np.testing.assert_array_equal(x_an[:, part][under], x_bg[:, part][under])
+        assert (np.abs(x_an[:, part] - x_bg[:, part])[~under] > 1e-6).any()
 
 
 def test_var1d_on_physical_model_converges_and_beats_background():
@@ -652,9 +724,15 @@ def test_var1d_defaults_converge_on_the_physical_model():
     j_ref = (ref.diagnostics["cost_background"] + ref.diagnostics["cost_observation"]).values
     assert (j - j_ref < 1e-3).all()
 
+    # The levels deeper than the nearest one at or under the ground never reach the operator
+    # and stay at the background: the optimum is that of J over the other elements.
+    p_lev = background["air_pressure"].values
+    under = p_lev > p_lev[p_lev >= DEFAULT_SURFACE_PRESSURE_HPA].min()
+    free = ~np.concatenate([under, under, [False]])
+    np.testing.assert_array_equal(x_an[:, ~free], x_bg[:, ~free])
     cols = read_columns(res.analysis, ("profile",), (), "analysis")
     lo, hi = control_bounds(cols, layout)
-    interior = ((x_an > lo + 1e-6) & (x_an < hi - 1e-6)).all(axis=1)
+    interior = ((x_an > lo + 1e-6) & (x_an < hi - 1e-6))[:, free].all(axis=1)
     assert interior.sum() >= 10  # enough columns for the check to mean something
     out = op.simulate(res.analysis, jacobian=True)
     used = res.qc_reason.values == qc.USED
@@ -666,11 +744,11 @@ def test_var1d_defaults_converge_on_the_physical_model():
             out["jacobian_air_temperature"].values[p],
             out["jacobian_specific_humidity"].values[p] * cols.humidity[p],  # d/d ln q = q d/dq
             out["jacobian_surface_temperature"].values[p][:, None],
-        ], axis=1)[u]
+        ], axis=1)[u][:, free]
         dep = (obs.values[p] - out["brightness_temperature"].values[p])[u]
-        g = b_inv @ (x_an[p] - x_bg[p]) - h.T @ (dep / r[u])
-        d2 = g @ np.linalg.solve(b_inv + h.T @ (h / r[u][:, None]), g)
-        assert d2 < 1e-6 * layout.size
+        g = (b_inv @ (x_an[p] - x_bg[p]))[free] - h.T @ (dep / r[u])
+        d2 = g @ np.linalg.solve(b_inv[np.ix_(free, free)] + h.T @ (h / r[u][:, None]), g)
+        assert d2 < 1e-6 * free.sum()
 
 
 def test_per_channel_emissivity_follows_channel_labels_not_positions():

@@ -197,6 +197,31 @@ def test_supersaturation_under_the_ground_is_not_flagged(demo_instrument, profil
     assert (bare["quality_flag"].values[3] & flags.SUPERSATURATED).all()
 
 
+def test_saturated_levels_around_the_ground_are_not_flagged(demo_instrument, profiles):
+    """Two saturated levels bracketing the ground: no level is supersaturated, although q
+    linear in ln p between them lies above q_s at the interpolated ground (q_s convex in T,
+    Bolton 1980 e_s). A supersaturated level above the ground is still flagged."""
+    from rtemu.atmosphere import saturation_specific_humidity
+
+    ps = _grounds(profiles)
+    ds = profiles.assign(surface_air_pressure=("profile", ps))
+    p = ds["air_pressure"].values
+    t = ds["air_temperature"].values
+    wet = ds.copy(deep=True)
+    q = wet["specific_humidity"].values
+    q[0, :3] = saturation_specific_humidity(t[0, :3], p[:3])  # profile 0: ground between levels 1 and 2
+    q[0, 1] = saturation_specific_humidity(t[0, 1] + 6.0, p[1])  # ... with a kink in T at level 1
+    wet["air_temperature"].values[0, 1] = t[0, 1] + 6.0
+    cut = cut_at_surface(p[None, :], wet["air_temperature"].values[:1], q[:1], ps[:1])
+    ground_q_s = saturation_specific_humidity(cut.air_temperature[0, 0], ps[0])
+    assert cut.specific_humidity[0, 0] > ground_q_s * (1 + 1e-4)  # the interpolation overshoots
+    out = physics.simulate(demo_instrument, wet)
+    assert not (out["quality_flag"].values[0] & flags.SUPERSATURATED).any()
+    q[0, 2] *= 1.01
+    out = physics.simulate(demo_instrument, wet)
+    assert (out["quality_flag"].values[0] & flags.SUPERSATURATED).all()
+
+
 def test_tangent_linear_and_adjoint_functions_with_terrain(demo_instrument, profiles):
     """rtemu.physics.tangent_linear / adjoint (the plain functions) with a ground: the
     dot-product test <J dx, dy> = <dx, J^T dy>, and no sensitivity under the ground."""

@@ -149,6 +149,9 @@ class Columns:
     #: Coordinates of the operator input (channel, level), built once: their indexes cost
     #: more than the rest of the dataset at every 1D-Var iteration.
     input_coords: xr.Coordinates | None = None
+    #: The ground [N] [hPa], None without ``surface_air_pressure``: every operator call
+    #: (first guess, trial states, ensemble members) must see the same ground.
+    surface_pressure: np.ndarray | None = None
 
     @property
     def n(self) -> int:
@@ -163,7 +166,23 @@ class Columns:
             surface_temperature=self.surface_temperature[index],
             emissivity=self.emissivity[index],
             zenith=self.zenith[index],
+            surface_pressure=None if self.surface_pressure is None else self.surface_pressure[index],
         )
+
+    def below_ground(self) -> np.ndarray:
+        """Levels [N, L] (bool) under the ground that do not reach the operator.
+
+        The physical model cuts a column at ``surface_air_pressure`` (:func:`rtemu.levels.cut_at_surface`):
+        the ground's values are interpolated between the nearest level at or below it and
+        the level above, and every level deeper than that one is dropped, so its Jacobians
+        are zero. Those are the levels returned (none without a ground).
+        """
+        if self.surface_pressure is None:
+            return np.zeros(self.pressure.shape, dtype=bool)
+        ps = self.surface_pressure[:, None]
+        # The nearest level at or below the ground still enters the interpolation.
+        nearest = np.min(np.where(self.pressure >= ps, self.pressure, np.inf), axis=1, keepdims=True)
+        return self.pressure > nearest
 
 
 def _column_values(ds: xr.Dataset, name: str, column_dims: tuple[str, ...], trailing: tuple[str, ...]):
@@ -239,6 +258,8 @@ def read_columns(
         emissivity_channels=emissivity_channels,
         level_coord=ds.coords["level"] if "level" in ds.coords else None,
         input_coords=xr.Coordinates(coords),
+        surface_pressure=(_column_values(ds, "surface_air_pressure", column_dims, ())
+                          if "surface_air_pressure" in ds.variables else None),
     )
 
 
@@ -261,6 +282,8 @@ def columns_to_dataset(cols: Columns) -> xr.Dataset:
         data["surface_emissivity"] = var(("profile",), cols.emissivity, "surface_emissivity")
     else:
         data["surface_emissivity"] = var(("profile", "channel"), cols.emissivity, "surface_emissivity")
+    if cols.surface_pressure is not None:
+        data["surface_air_pressure"] = var(("profile",), cols.surface_pressure, "surface_air_pressure")
     coords = cols.input_coords
     if coords is None:
         coords = {}
@@ -299,18 +322,24 @@ def to_control(cols: Columns, layout: ControlLayout, what: str) -> np.ndarray:
     return x
 
 
-def from_control(x: np.ndarray, cols: Columns, layout: ControlLayout) -> tuple[Columns, np.ndarray]:
+def from_control(x: np.ndarray, cols: Columns, layout: ControlLayout,
+                 held: np.ndarray | None = None) -> tuple[Columns, np.ndarray]:
     """Columns of control vectors ``x`` [N, n], projected onto the physical limits.
 
     Temperatures are clipped to the physical model's range (100-400 K), q to
     [1e-8, min(q_s(T, p), 0.1)] kg kg-1 with the clipped T, emissivity to [0, 1].
-    Returns the new columns and the projected control vectors (so that cost and state
-    always agree).
+    Elements ``held`` [N, n] (bool, optional; levels under the ground, which never reach
+    the operator) are taken as they are. Returns the new columns and the projected control
+    vectors (so that cost and state always agree).
     """
     t_lo, t_hi = TEMPERATURE_LIMITS
-    temperature = np.clip(x[:, layout.temperature], t_lo, t_hi)
+    t_raw, lnq_raw = x[:, layout.temperature], x[:, layout.ln_humidity]
+    temperature = np.clip(t_raw, t_lo, t_hi)
     q_lo, q_hi = humidity_bounds(temperature, cols.pressure)
-    ln_q = np.clip(x[:, layout.ln_humidity], np.log(q_lo), np.log(q_hi))
+    ln_q = np.clip(lnq_raw, np.log(q_lo), np.log(q_hi))
+    if held is not None:
+        temperature = np.where(held[:, layout.temperature], t_raw, temperature)
+        ln_q = np.where(held[:, layout.ln_humidity], lnq_raw, ln_q)
     surface_temperature = np.clip(x[:, layout.surface_temperature], t_lo, t_hi)
     emissivity = cols.emissivity
     if layout.emissivity != "none":

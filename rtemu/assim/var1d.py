@@ -15,11 +15,16 @@ Iteration (Levenberg-Marquardt form of Gauss-Newton, Rodgers 2000 eq. 5.36, from
 
 where H_i is the operator Jacobian at x_i chained to the control variables
 (dBT/d ln q = q dBT/dq) and P the projection onto physical limits (T in 100-400 K,
-1e-8 kg kg-1 <= q <= min(q_s(T, p), 0.1 kg kg-1), emissivity in [0, 1]). A trial step is
-accepted when J does not increase and the operator does not flag (or return non-finite
-values for) a used channel; then gamma is divided by ``lm_factor``, otherwise the step is
-rejected and gamma multiplied by ``lm_factor``. With ``lm_damping=0`` (or None) this is
-plain Gauss-Newton (Rodgers 2000 eq. 5.9, from memory): every valid step is accepted.
+1e-8 kg kg-1 <= q <= min(q_s(T, p), 0.1 kg kg-1), emissivity in [0, 1]). A step that
+would take a free element across a limit is first shortened to land on the first limit
+it meets (see :func:`_fraction_to_limit`). A trial step is accepted when J does not
+increase and the operator does not flag (or return non-finite values for) a used
+channel. gamma follows the gain ratio rho = (decrease of J) / (decrease the Gauss-Newton
+model predicts for the step) (Fletcher's rule, thresholds from memory): divided by
+``lm_factor`` after an accepted step with rho >= 0.75, kept for 0.25 <= rho < 0.75,
+multiplied by ``lm_factor`` after an accepted step with rho < 0.25 and after a rejected
+one. With ``lm_damping=0`` (or None) this is plain Gauss-Newton (Rodgers 2000 eq. 5.9,
+from memory): every valid step is accepted.
 
 Convergence (d^2 tested at every accepted iterate, and at the background):
 
@@ -36,7 +41,10 @@ Convergence (d^2 tested at every accepted iterate, and at the background):
 Active set: an element at a physical limit is held there when descent points outward
 or when the undamped step would leave the limit; a ln q held on its saturation limit
 moves with the temperature of its level (d ln q = d ln q_s/dT dT), so an optimum on a
-saturated level is reached, not approached by clipped steps.
+saturated level is reached, not approached by clipped steps. With a
+``surface_air_pressure`` in the background, every operator call sees that ground, and the
+T and ln q of the levels under it that the operator drops (zero Jacobians) are held at
+the background for the whole minimisation.
 
 Diagnostics at the analysis, with H the Jacobian there (Rodgers 2000, ch. 2-3):
 
@@ -244,9 +252,12 @@ def _active_set(problem, idx, x, grad, cols, h_tilde, hb):
     > slope dT). Blocked elements are left out of the convergence test, so that an
     optimum on a limit (e.g. saturation) is recognised as one.
     """
+    held = problem.held[idx]
     at_hi, at_lo = _at_limits(x, cols, problem.layout)
+    at_hi &= ~held
+    at_lo &= ~held
     slope_hi = _saturation_slope(at_hi, cols, problem.layout)
-    blocked = (at_hi & (grad < 0)) | (at_lo & (grad > 0))
+    blocked = held | (at_hi & (grad < 0)) | (at_lo & (grad > 0))
     system = list(_step_system(grad, problem.cov, idx, h_tilde, blocked, hb,
                                (slope_hi * blocked, problem.partner)))
     dx = -_damped_step(system, np.ones(len(idx)), blocked, (slope_hi * blocked, problem.partner))
@@ -262,6 +273,32 @@ def _active_set(problem, idx, x, grad, cols, h_tilde, hb):
             whole[rows] = part
         dx[rows] = -_damped_step(parts, np.ones(rows.size), blocked[rows], coupling)
     return blocked, slope_hi * blocked, system, dx
+
+
+def _fraction_to_limit(x, dx, cols, layout, blocked):
+    """Largest fraction (<= 1) [k] of the steps ``dx`` [k, n] that keeps every free element
+    inside its physical limits, to first order.
+
+    An element that is not at a limit but whose step crosses one would be clipped by the
+    projection, which bends the step away from the direction the model made it descend
+    along; such a trial is often rejected, damped until it no longer reaches the limit,
+    and the iterates then approach an optimum on the limit one damping cycle at a time.
+    Shortened to the first limit it meets, the step stays a descent direction and lands
+    the element on its limit, where the active set takes it over at the next iterate (the
+    step-back to the boundary of projected Newton methods, Bertsekas 1982). The ln q
+    ceiling moves with T: it is crossed when d ln q > slope dT.
+    """
+    lo, hi = control_bounds(cols, layout)
+    slope = np.zeros_like(x)
+    slope[:, layout.ln_humidity] = humidity_ceiling_slope(cols)
+    partner = _partner(layout)
+    at_hi, at_lo = _at_limits(x, cols, layout)
+    free = ~blocked & ~at_hi & ~at_lo
+    up = dx - slope * dx[:, partner]  # rate of approach to the upper limit
+    with np.errstate(divide="ignore", invalid="ignore"):
+        to_hi = np.where(free & (up > 0), (hi - x) / up, np.inf)
+        to_lo = np.where(free & (dx < 0), (lo - x) / dx, np.inf)
+    return np.clip(np.minimum(to_hi, to_lo).min(axis=1), 0.0, 1.0)
 
 
 def _partner(layout):
@@ -415,6 +452,7 @@ class _Problem:
     tolerated_bits: int
     partner: np.ndarray  # [n], see _partner
     cols_b: object  # Columns of the background
+    held: np.ndarray  # [N, n] elements under the ground, held at the background
 
     def run(self, cols):
         """Operator output at ``cols`` with the tolerated flag bits cleared, and H [k, C, n]."""
@@ -559,7 +597,19 @@ def _read_problem(operator, background, observations, b_matrix, observation_erro
     y = read_observations(observations, channels, xb.shape[0], background.coords.get("profile"))
     r = observation_error_variance(operator, observation_error, emulator_error)
     return _Problem(operator=operator, channels=channels, layout=layout, xb=xb, cov=cov, y=y, r=r,
-                    tolerated_bits=tolerated_bits, partner=_partner(layout), cols_b=cols_b)
+                    tolerated_bits=tolerated_bits, partner=_partner(layout), cols_b=cols_b,
+                    held=_held(cols_b, layout))
+
+
+def _held(cols, layout):
+    """Control elements [N, n] held at the background: T and ln q of the levels under the
+    ground (:meth:`Columns.below_ground`). Their Jacobians are zero, so only B's
+    correlations would move them, to values no operator call ever sees."""
+    held = np.zeros((cols.n, layout.size), dtype=bool)
+    below = cols.below_ground()
+    held[:, layout.temperature] = below
+    held[:, layout.ln_humidity] = below
+    return held
 
 
 def _first_guess(problem: _Problem, settings: _Settings) -> tuple[_Screening, _Iterates]:
@@ -640,7 +690,9 @@ def _try_step(problem, screening, state: _Iterates, idx) -> _Trial:
     """One damped step from the iterates of ``idx``, projected, and one operator call there."""
     step = _damped_step([part[idx] for part in state.system], 1.0 + state.gamma[idx],
                         state.blocked[idx], state.coupling(idx, problem))
-    cols, x = from_control(state.x[idx] - step, state.cols.subset(idx), problem.layout)
+    step *= _fraction_to_limit(state.x[idx], -step, state.cols.subset(idx), problem.layout,
+                               state.blocked[idx])[:, None]
+    cols, x = from_control(state.x[idx] - step, state.cols.subset(idx), problem.layout, problem.held[idx])
     raw, h = problem.run(cols)
     u = screening.used[idx]
     valid = (
@@ -674,6 +726,15 @@ def _iterate(problem, screening, state: _Iterates, idx, it, settings: _Settings)
     state.trial_cost[idx, it] = trial.cost
     state.n_iter[idx] = it
     if settings.damped:
+        # Gain ratio: the decrease of J over the decrease the Gauss-Newton model predicts.
+        # Where J curves more than the model (strongly nonlinear columns), dividing gamma
+        # after every accepted step alternates overlong rejected steps with accepted ones.
+        dx = trial.x - state.x[idx]
+        hdx = np.einsum("pcn,pn->pc", state.h_tilde[idx], dx)
+        quad = np.einsum("pn,pn->p", dx, problem.cov.inv_times(dx, idx)) + np.einsum("pc,pc->p", hdx, hdx)
+        predicted = -np.einsum("pn,pn->p", state.grad[idx], dx) - 0.5 * quad
+        with np.errstate(divide="ignore", invalid="ignore"):
+            gain = (state.cost_now[idx] - trial.cost) / predicted
         accept = trial.valid & (trial.cost <= state.cost_now[idx])
     else:
         accept = trial.valid
@@ -682,8 +743,10 @@ def _iterate(problem, screening, state: _Iterates, idx, it, settings: _Settings)
     state.cost[idx, it] = state.cost_now[idx]
     acc = idx[accept]
     if settings.damped:
-        state.gamma[acc] /= settings.lm_factor
-        state.gamma[idx[~accept]] *= settings.lm_factor
+        good = accept & ~(gain < 0.75)
+        poor = accept & (gain < 0.25)
+        state.gamma[idx[good]] /= settings.lm_factor
+        state.gamma[idx[~accept | poor]] *= settings.lm_factor
         state.n_rejected[idx[~accept]] += 1
         # A rejected step leaves the iterate (and its d^2) as it was: it has converged
         # when the cost no longer resolves the decrease still predicted there.
