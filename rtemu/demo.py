@@ -46,7 +46,7 @@ DEFAULTS = {
     "background_error_length_lnp": 0.6,
 }
 #: Pressure layers for the error tables [hPa] (bottom, top).
-LAYERS = ((1013.25, 700.0), (700.0, 400.0), (400.0, 100.0), (100.0, 10.0), (10.0, 0.5))
+LAYERS = ((1100.0, 700.0), (700.0, 400.0), (400.0, 100.0), (100.0, 10.0), (10.0, 0.5))
 
 
 #: With fallback="physics", an envelope bit always comes with physics_fallback: the value is
@@ -95,10 +95,25 @@ def _invented_error_samples(truth: xr.Dataset, n: int, seed: int, cfg: dict) -> 
     return states
 
 
+def _above_ground(truth: xr.Dataset) -> np.ndarray:
+    """bool [N, L]: levels above the ground (levels under it are not part of the column)."""
+    p = np.broadcast_to(truth["air_pressure"].values, truth["air_temperature"].shape)
+    if "surface_air_pressure" not in truth:
+        return np.ones(p.shape, dtype=bool)
+    return p <= truth["surface_air_pressure"].values[:, None]
+
+
+def _temperature_error(analysis: xr.Dataset, truth: xr.Dataset) -> np.ndarray:
+    """Analysis minus true temperature [K] [N, L], NaN under the ground."""
+    dt = analysis["air_temperature"].values - truth["air_temperature"].values
+    return np.where(_above_ground(truth), dt, np.nan)
+
+
 def _layer_errors(analysis: xr.Dataset, truth: xr.Dataset) -> dict:
     p = truth["air_pressure"].values
-    dt = analysis["air_temperature"].values - truth["air_temperature"].values
+    dt = _temperature_error(analysis, truth)
     dlnq = np.log(analysis["specific_humidity"].values) - np.log(truth["specific_humidity"].values)
+    dlnq = np.where(_above_ground(truth), dlnq, np.nan)
     rows = {}
     for bottom, top in LAYERS:
         sel = (p <= bottom) & (p >= top)
@@ -166,7 +181,7 @@ def run_demo(output_dir="rtemu-demo", *, progress: bool = True, **overrides) -> 
     emulated = EmulatedOperator.load(model_path, fallback="physics")
     states = draw_states(cfg["columns"], seed=cfg["truth_seed"], channels=inst)
     truth = states[["air_pressure", "air_temperature", "specific_humidity", "surface_temperature",
-                    "surface_emissivity", "sensor_zenith_angle"]]
+                    "surface_emissivity", "sensor_zenith_angle", "surface_air_pressure"]]
     rng = np.random.default_rng(cfg["error_seed"])
     clean = physical.simulate(truth)["brightness_temperature"]
     observations = clean + rng.standard_normal(clean.shape) * inst.noise_k[None, :]
@@ -201,7 +216,7 @@ def run_demo(output_dir="rtemu-demo", *, progress: bool = True, **overrides) -> 
         runs[name]["enkf_s"] = seconds
 
     def t_rmse(analysis):
-        return float(_rms(analysis["air_temperature"].values - truth["air_temperature"].values))
+        return float(_rms(_temperature_error(analysis, truth)))
 
     var_a = {k: runs[k]["var1d"].analysis for k in runs}
     ens_a = {k: runs[k]["enkf"].analysis.mean("member") for k in runs}
