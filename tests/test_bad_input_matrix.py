@@ -248,8 +248,8 @@ def emulator_profiles(tiny_bundle, demo_instrument):
 
     op = EmulatedOperator.load(tiny_bundle)
     ds = draw_states(4, seed=21, pressure_hpa=op.pressure_hpa, channels=demo_instrument)
-    return op, ds[["air_pressure", "air_temperature", "specific_humidity", "surface_temperature",
-                   "surface_emissivity", "sensor_zenith_angle"]].load()
+    return op, ds[["air_pressure", "surface_air_pressure", "air_temperature", "specific_humidity",
+                   "surface_temperature", "surface_emissivity", "sensor_zenith_angle"]].load()
 
 
 @pytest.mark.parametrize("case", CASES, ids=lambda c: c.name)

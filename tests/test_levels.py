@@ -180,13 +180,29 @@ def test_surface_below_the_grid_is_invalid(demo_instrument, model_profiles):
         np.testing.assert_array_equal(masked[name].values[[0, 1, 3]], good[name].values[[0, 1, 3]])
 
 
-def test_emulator_grid_error_explains_regrid_and_regrid_refuses_terrain(tiny_bundle, model_profiles):
+def test_emulator_grid_error_explains_regrid_and_regrid_carries_terrain(tiny_bundle, model_profiles):
+    """Off-grid profiles are refused with a hint to regrid; with regrid=True the source's
+    surface becomes the ground (format 7 learns terrain, so the emulator takes it) and the
+    outputs are the emulator's on the explicitly regridded profiles, Jacobians carried back
+    by the adjoint of the regridding (rtemu.levels.regrid_adjoint)."""
     from rtemu.runtime import EmulatedOperator
 
     with pytest.raises(ValueError, match=r"^air_pressure: 37 levels.*regrid=True.*rtemu simulate --regrid"):
         EmulatedOperator.load(tiny_bundle).simulate(model_profiles)
-    with pytest.raises(ValueError, match=r"^surface_air_pressure: .* this emulator has no terrain"):
-        EmulatedOperator.load(tiny_bundle, regrid=True).simulate(model_profiles)
+    op = EmulatedOperator.load(tiny_bundle)
+    out = EmulatedOperator.load(tiny_bundle, regrid=True).simulate(model_profiles, jacobian=True)
+    regridded = regrid_profiles(model_profiles, op.pressure_hpa)
+    bottoms = model_profiles["air_pressure"].values.max(axis=1)
+    np.testing.assert_array_equal(regridded["surface_air_pressure"].values, bottoms)
+    assert (bottoms < op.pressure_hpa.max() - 1.0).all()  # the ground is inside the grid: terrain
+    direct = op.simulate(regridded, jacobian=True)
+    for name in ("brightness_temperature", "brightness_temperature_uncertainty", "quality_flag"):
+        np.testing.assert_array_equal(out[name].values, direct[name].values)
+    assert np.isfinite(out["brightness_temperature"].values).all()
+    back = regrid_adjoint(model_profiles, op.pressure_hpa, direct[["jacobian_air_temperature"]])
+    assert out["jacobian_air_temperature"].sizes["level"] == model_profiles.sizes["level"]
+    np.testing.assert_allclose(out["jacobian_air_temperature"].transpose(*back["jacobian_air_temperature"].dims).values,
+                               back["jacobian_air_temperature"].values, rtol=1e-12, atol=0)
 
 
 def test_cli_regrid_and_info_grid(tmp_path, tiny_bundle, demo_instrument, model_profiles, capsys):
@@ -211,10 +227,15 @@ def test_cli_regrid_and_info_grid(tmp_path, tiny_bundle, demo_instrument, model_
     assert main(["simulate", "--model", str(tiny_bundle), "--input", str(tmp_path / "model.nc"),
                  "--output", str(tmp_path / "y.nc"), "--quiet"]) == 2
     assert "regrid" in capsys.readouterr().err
-    assert main(["simulate", "--model", str(tiny_bundle), "--regrid", "--input", str(tmp_path / "model.nc"),
-                 "--output", str(tmp_path / "y.nc"), "--quiet"]) == 2
-    assert "this emulator has no terrain" in capsys.readouterr().err
     assert not (tmp_path / "x.nc").exists() and not (tmp_path / "y.nc").exists()
+    # format 7 learns terrain: --regrid with an emulator carries the model's surface as the ground
+    assert main(["simulate", "--model", str(tiny_bundle), "--regrid", "--input", str(tmp_path / "model.nc"),
+                 "--output", str(tmp_path / "y.nc"), "--quiet"]) == 0
+    from rtemu.runtime import EmulatedOperator
+
+    emulated = EmulatedOperator.load(tiny_bundle, regrid=True).simulate(model_profiles)
+    with open_dataset(tmp_path / "y.nc") as out:
+        np.testing.assert_array_equal(out["brightness_temperature"].values, emulated["brightness_temperature"].values)
     assert main(["info", str(tiny_bundle)]) == 0
     text = capsys.readouterr().out
     grid = read_bundle(tiny_bundle).pressure_hpa

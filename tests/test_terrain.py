@@ -245,7 +245,12 @@ def test_tangent_linear_and_adjoint_functions_with_terrain(demo_instrument, prof
         assert (grads["air_temperature"].values[i, deep] == 0).all()
 
 
-def test_emulator_refuses_terrain_unless_at_its_bottom(tiny_bundle, demo_instrument):
+def test_emulator_takes_terrain_and_a_ground_at_its_bottom_is_no_ground(tiny_bundle, demo_instrument):
+    """Format 7 learns terrain: surface_air_pressure inside the column is accepted (not
+    invalid, finite outputs, the other profiles of the batch bit for bit as without it),
+    changes that profile's BTs, and leaves no sensitivity under the level that brackets the
+    ground (rtemu.levels.cut_at_surface). A ground at the grid's bottom is the same as no
+    ground, bit for bit."""
     from rtemu.runtime import EmulatedOperator
     from rtemu.sampling import draw_states
 
@@ -256,12 +261,22 @@ def test_emulator_refuses_terrain_unless_at_its_bottom(tiny_bundle, demo_instrum
     bottom = op.pressure_hpa.max()
     same = op.simulate(ds.assign(surface_air_pressure=("profile", np.full(3, bottom))), jacobian=True)
     plain = op.simulate(ds, jacobian=True)
-    for name in ("brightness_temperature",) + JACOBIANS:
+    for name in ("brightness_temperature", "brightness_temperature_uncertainty", "quality_flag") + JACOBIANS:
         np.testing.assert_array_equal(same[name].values, plain[name].values)
     ps = np.array([bottom, bottom, 700.0])
-    with pytest.raises(ValueError, match=r"^surface_air_pressure: 700 hPa, but this emulator has no terrain "
-                                         r"\(rule: .*PhysicalOperator.*first offending profile index 2"):
-        op.simulate(ds.assign(surface_air_pressure=("profile", ps)))
+    high = op.simulate(ds.assign(surface_air_pressure=("profile", ps)), jacobian=True)
+    assert not (high["quality_flag"].values & flags.INVALID_INPUT).any()
+    assert np.isfinite(high["brightness_temperature"].values).all()
+    for name in ("brightness_temperature",) + JACOBIANS:
+        np.testing.assert_array_equal(high[name].values[:2], plain[name].values[:2])
+    assert not np.array_equal(high["brightness_temperature"].values[2], plain["brightness_temperature"].values[2])
+    p = np.asarray(ds["air_pressure"].values)
+    deep = p > 700.0
+    deep[int(np.flatnonzero(p < 700.0)[0]) - 1] = False  # the lower bracketing level
+    assert deep.any()
+    for name in ("jacobian_air_temperature", "jacobian_specific_humidity"):
+        assert (high[name].isel(profile=2, level=np.flatnonzero(deep)).values == 0).all(), name
+        assert (plain[name].isel(profile=2, level=np.flatnonzero(deep)).values != 0).any(), name  # without ground
 
 
 def test_physical_operator_and_cli_take_terrain(tmp_path, demo_instrument, profiles):
