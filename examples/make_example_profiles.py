@@ -5,10 +5,10 @@ over the invented archipelago of Kerrow, from a cold, dry polar air mass in the 
 a moist subtropical one in the south. The profiles are drawn with rtemu's own state
 generator on the demo level grid, keeping the first 24 columns of its sea-level ocean
 regimes (polar and mid-latitude winter, subtropical subsidence, moist tropics); nothing
-here is observed data. The grid reaches 1100 hPa and the file has no
-``surface_air_pressure``: every column is used down to the grid's bottom, where the
-generator's levels under the drawn ground (990-1060 hPa for these regimes) hold the surface
-air temperature. That keeps the file usable by emulators without terrain.
+here is observed data. The grid reaches 1100 hPa and the file carries the drawn ground,
+``surface_air_pressure`` (990-1060 hPa for these regimes): every bundle (format 7) and the
+physics use the column above it. Without it the ground would be the grid's bottom, 1100 hPa,
+outside the pressures an emulator is trained on, and an emulator flags every column.
 ``total_column_water_vapour`` is the generator's, above the drawn ground.
 
 Usage:  python examples/make_example_profiles.py [OUTPUT]   (default examples/data/example_profiles.nc)
@@ -43,7 +43,7 @@ def make_profiles():
     # Order the pass from the driest (north) to the moistest (south) column.
     order = np.argsort(states["total_column_water_vapour"].values)
     keep = ["air_pressure", "air_temperature", "specific_humidity", "surface_temperature",
-            "surface_emissivity", "sensor_zenith_angle", "total_column_water_vapour"]
+            "surface_emissivity", "sensor_zenith_angle", "surface_air_pressure", "total_column_water_vapour"]
     ds = states[keep].isel(profile=order)
     ds = ds.assign_coords(profile=np.arange(COUNT))
     ds.attrs = {

@@ -55,7 +55,7 @@ def main(argv=None):
 
     with open_dataset(args.columns) as ds:
         truth = ds[["air_pressure", "air_temperature", "specific_humidity", "surface_temperature",
-                    "surface_emissivity", "sensor_zenith_angle"]].load()
+                    "surface_emissivity", "sensor_zenith_angle", "surface_air_pressure"]].load()
     physical = PhysicalOperator("demo-sounder")
     if args.model:
         operator = EmulatedOperator.load(args.model, fallback="physics" if args.fallback else None)

@@ -395,12 +395,12 @@ def _plus_one_kelvin(model):
     from onnx import numpy_helper
 
     for i, init in enumerate(model.graph.initializer):
-        if init.name == "linear_weight":
+        if init.name == "output_offset":  # format 7: y0_c, added to channel c's brightness temperature
             value = numpy_helper.to_array(init).copy()
-            value[-1, 0] += 1.0  # the constant of channel 0
+            value[0] += 1.0  # channel 0
             model.graph.initializer[i].CopyFrom(numpy_helper.from_array(value, init.name))
             return
-    raise AssertionError("no linear_weight initializer")
+    raise AssertionError("no output_offset initializer")
 
 
 def test_digests_detect_corruption_not_authorship_and_the_signature_does(tiny_bundle, tmp_path, key_file):
@@ -416,10 +416,19 @@ def test_digests_detect_corruption_not_authorship_and_the_signature_does(tiny_bu
     # +1 K in the graph with every digest recomputed: the digests cannot tell, the signature can
     edited = _edited_bundle(signed, tmp_path / "edited.onnx", _plus_one_kelvin)
     rb.read_bundle(edited)
+    from rtemu.runtime import EmulatedOperator
+    from rtemu.sampling import draw_states
+
+    op = EmulatedOperator.load(signed)
+    profiles = draw_states(2, seed=31, pressure_hpa=op.pressure_hpa, channels=op.instrument)[
+        ["air_pressure", "air_temperature", "specific_humidity", "surface_temperature", "surface_emissivity",
+         "sensor_zenith_angle", "surface_air_pressure"]].load()
+    shift = (EmulatedOperator.load(edited).simulate(profiles)["brightness_temperature"]
+             - op.simulate(profiles)["brightness_temperature"]).values
+    np.testing.assert_allclose(shift[:, 0], 1.0, atol=1e-3)  # the edit is real: +1 K on channel 0 ...
+    np.testing.assert_allclose(shift[:, 1:], 0.0, atol=1e-9)  # ... and nothing else
     line = one_line_error(run_cli("info", edited, "--key", key_file))
     assert "signature does not verify" in line
-    from rtemu.runtime import EmulatedOperator
-
     with pytest.raises(rb.BundleError, match="signature does not verify"):
         EmulatedOperator.load(edited, key=key_file)
     other_key = tmp_path / "other.key"
