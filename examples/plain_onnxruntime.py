@@ -21,7 +21,7 @@ feeds = {"air_temperature": np.full((n, L), 250, np.float32),
          "surface_temperature": np.full(n, 270, np.float32),
          "surface_emissivity": np.full((n, C), 0.9, np.float32),
          "sensor_zenith_angle": np.zeros(n, np.float32),
-         "surface_air_pressure": np.full(n, max(levels), np.float32)}  # no terrain: the grid's bottom
+         "surface_air_pressure": np.full(n, 1013.25, np.float32)}    # the ground [hPa]
 bt, jt, jq, jts, jem, sigma, flag = sess.run(None, feeds)    # [n,C], [n,C,L] x2, [n,C] x3, [n,C]
 # --- end of snippet ---
 
