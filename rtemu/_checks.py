@@ -19,7 +19,7 @@ import xarray as xr
 
 from rtemu._units import unit_conversion
 from rtemu.atmosphere import saturation_specific_humidity
-from rtemu.levels import GRID_TOLERANCE_HPA, LevelMap, SurfaceCut, cut_at_surface, surface_on_grid
+from rtemu.levels import GRID_TOLERANCE_HPA, LevelMap, surface_on_grid
 
 INPUT_VARIABLES = (
     "air_pressure",
@@ -66,13 +66,6 @@ class Prepared:
     emissivity_per_channel: bool  # input emissivity had a channel dim
     scales: dict  # variable -> unit scale (canonical per user unit)
     surface_air_pressure: np.ndarray | None = None  # [N] hPa, None without terrain
-
-    def surface_cut(self) -> SurfaceCut | None:
-        """The column above the ground (None without ``surface_air_pressure``)."""
-        if self.surface_air_pressure is None:
-            return None
-        return cut_at_surface(self.pressure_hpa, self.air_temperature, self.specific_humidity,
-                              self.surface_air_pressure)
 
     def to_caller_order(self, levels: np.ndarray) -> np.ndarray:
         """Flip the last axis back for profiles that were given top-first."""

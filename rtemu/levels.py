@@ -158,6 +158,42 @@ def cut_at_surface(pressure_hpa, air_temperature, specific_humidity, surface_air
                       below, index, weight)
 
 
+
+def transfer_above_ground(transfer, pressure_hpa, air_temperature, specific_humidity, surface_air_pressure,
+                          *surface, jacobian: bool = False, **options) -> dict:
+    """Run a column transfer on the column above the ground; Jacobians on the input levels.
+
+    Parameters
+    ----------
+    transfer : callable
+        ``transfer(p, T, q, *surface, jacobian=..., **options) -> dict`` on surface-first
+        arrays (e.g. :func:`rtemu.physics.transfer` with its instrument bound).
+    pressure_hpa, air_temperature, specific_humidity : ndarray [N, L]
+        Surface-first levels [hPa], [K], [kg kg-1].
+    surface_air_pressure : ndarray [N] or None
+        The ground [hPa] (:func:`cut_at_surface`); None: the bottom level is the ground.
+    *surface
+        The remaining arguments of ``transfer`` (surface temperature [K], emissivity [1],
+        zenith angle [degree]).
+
+    Returns
+    -------
+    dict
+        ``transfer``'s outputs, the air-temperature and humidity Jacobians [N, C, L] chained
+        back to the input levels (zero under the ground).
+    """
+    cut = None
+    column = (pressure_hpa, air_temperature, specific_humidity)
+    if surface_air_pressure is not None:
+        cut = cut_at_surface(*column, surface_air_pressure)
+        column = (cut.pressure_hpa, cut.air_temperature, cut.specific_humidity)
+    arrays = transfer(*column, *surface, jacobian=jacobian, **options)
+    if cut is not None:
+        for name in ("jacobian_air_temperature", "jacobian_specific_humidity"):
+            if name in arrays:
+                arrays[name] = cut.jacobian_to_input_levels(arrays[name])
+    return arrays
+
 # -- model levels ----------------------------------------------------------------------------
 class LevelMap:
     """Linear-in-ln p map of profiles from source levels to target levels.

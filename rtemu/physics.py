@@ -48,6 +48,7 @@ from rtemu import flags as _flags
 from rtemu._checks import onto_grid, prepare_inputs
 from rtemu.constants import COSMIC_BACKGROUND_TEMPERATURE, EPSILON, STANDARD_GRAVITY
 from rtemu.instrument import Instrument, load_instrument
+from rtemu.levels import transfer_above_ground
 from rtemu.planck import inverse_planck, planck, planck_coefficients, planck_derivative
 
 #: Profiles per vectorised block, at most; fewer when the bands and levels are many (see
@@ -662,12 +663,12 @@ def _compute(instrument, dataset, jacobian, errors, block_size, grid_hpa=None):
     prep, levelmap = caller, None
     if grid_hpa is not None:
         prep, levelmap = onto_grid(caller, grid_hpa, errors)
-    cut = prep.surface_cut()
-    column = (prep.pressure_hpa, prep.air_temperature, prep.specific_humidity) if cut is None else \
-        (cut.pressure_hpa, cut.air_temperature, cut.specific_humidity)
-    arrays = transfer(
-        inst,
-        *column,
+    arrays = transfer_above_ground(
+        functools.partial(transfer, inst),
+        prep.pressure_hpa,
+        prep.air_temperature,
+        prep.specific_humidity,
+        prep.surface_air_pressure,
         prep.surface_temperature,
         prep.surface_emissivity,
         prep.sensor_zenith_angle,
@@ -676,8 +677,6 @@ def _compute(instrument, dataset, jacobian, errors, block_size, grid_hpa=None):
     )
     for name in ("jacobian_air_temperature", "jacobian_specific_humidity"):
         if name in arrays:
-            if cut is not None:
-                arrays[name] = cut.jacobian_to_input_levels(arrays[name])
             if levelmap is not None:
                 arrays[name] = levelmap.adjoint(arrays[name])
             arrays[name] = caller.to_caller_order(arrays[name])

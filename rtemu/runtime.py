@@ -21,6 +21,7 @@ per process, not one per chunk.
 
 from __future__ import annotations
 
+import functools
 import threading
 from typing import Literal
 
@@ -31,7 +32,7 @@ from rtemu import flags as _flags
 from rtemu import physics as _physics
 from rtemu._checks import onto_grid, prepare_inputs
 from rtemu.instrument import Instrument, load_instrument
-from rtemu.levels import GRID_TOLERANCE_HPA, cut_at_surface
+from rtemu.levels import GRID_TOLERANCE_HPA, transfer_above_ground
 from rtemu.teacher import PHYSICS_TEACHER
 
 ErrorMode = Literal["raise", "mask"]
@@ -421,23 +422,18 @@ class EmulatedOperator(_OperatorBase):
         return out
 
     def _recompute_with_physics(self, prep, rows, arrays, jacobian):
-        column = (prep.pressure_hpa[rows], prep.air_temperature[rows], prep.specific_humidity[rows])
-        cut = None
-        if prep.surface_air_pressure is not None:  # terrain: the column above the ground
-            cut = cut_at_surface(*column, prep.surface_air_pressure[rows])
-            column = (cut.pressure_hpa, cut.air_temperature, cut.specific_humidity)
-        exact = _physics.transfer(
-            self.instrument,
-            *column,
+        ground = None if prep.surface_air_pressure is None else prep.surface_air_pressure[rows]
+        exact = transfer_above_ground(
+            functools.partial(_physics.transfer, self.instrument),
+            prep.pressure_hpa[rows],
+            prep.air_temperature[rows],
+            prep.specific_humidity[rows],
+            ground,
             prep.surface_temperature[rows],
             prep.surface_emissivity[rows],
             prep.sensor_zenith_angle[rows],
             jacobian=jacobian,
         )
-        if cut is not None:
-            for name in ("jacobian_air_temperature", "jacobian_specific_humidity"):
-                if name in exact:
-                    exact[name] = cut.jacobian_to_input_levels(exact[name])
         flipped = prep.flipped[rows]  # physics returns surface-first levels; arrays hold the caller's
         for name, values in exact.items():
             if values.ndim == 3 and flipped.any():

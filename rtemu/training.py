@@ -274,32 +274,6 @@ def load_recipe(name_or_path) -> Recipe:
     return Recipe.from_toml(resource.read_text(encoding="utf-8"), source=f"rtemu/recipes/{text_name}.toml")
 
 
-def _package_dir():
-    return resources.files("rtemu") / "recipes"
-
-
-def list_recipes() -> list[str]:
-    """Names of the recipes shipped with rtemu (``rtemu/recipes/*.toml``)."""
-    return sorted(p.name[:-5] for p in _package_dir().iterdir() if p.name.endswith(".toml"))
-
-
-def load_recipe(name_or_path) -> Recipe:
-    """Load a shipped recipe by name (see :func:`list_recipes`) or a recipe file by path."""
-    if isinstance(name_or_path, Recipe):
-        return name_or_path
-    text_name = str(name_or_path)
-    path = Path(text_name)
-    if path.suffix == ".toml" or path.exists() or "/" in text_name or "\\" in text_name:
-        if not path.is_file():
-            raise ValueError(f"recipe file {text_name} does not exist")
-        return Recipe.from_toml(path.read_text(encoding="utf-8"), source=str(path))
-    resource = _package_dir() / f"{text_name}.toml"
-    if not resource.is_file():
-        raise ValueError(f"unknown recipe {text_name!r}; shipped recipes: {', '.join(list_recipes())} "
-                         "(or give a path to a .toml file)")
-    return Recipe.from_toml(resource.read_text(encoding="utf-8"), source=f"rtemu/recipes/{text_name}.toml")
-
-
 # ---- training data ----------------------------------------------------------------------
 #: Physical validity range of each input (the bundle's invalid_input rule), mirroring the
 #: rules of the physical model (rtemu._checks): T, Ts in [100, 400] K, 0 <= q < 0.1,

@@ -24,6 +24,7 @@ import xarray as xr
 
 from rtemu import flags as _flags
 from rtemu._checks import prepare_inputs
+from rtemu.levels import transfer_above_ground
 from rtemu.constants import COSMIC_BACKGROUND_TEMPERATURE, EPSILON, STANDARD_GRAVITY
 from rtemu.instrument import Channel, Instrument
 from rtemu.physics import _layers_to_levels, label_outputs
@@ -302,16 +303,13 @@ class LineByLineOperator:
         outputs labelled by :func:`rtemu.physics.label_outputs`.
         """
         prep = prepare_inputs(dataset, self.channels, errors=errors)
-        # Terrain: the column above surface_air_pressure, as in rtemu.physics (rtemu.levels).
-        cut = prep.surface_cut()
-        column = (prep.pressure_hpa, prep.air_temperature, prep.specific_humidity) if cut is None else \
-            (cut.pressure_hpa, cut.air_temperature, cut.specific_humidity)
-        arrays = self.transfer(*column, prep.surface_temperature, prep.surface_emissivity,
-                               prep.sensor_zenith_angle, jacobian=jacobian)
+        # Terrain: the column above surface_air_pressure, as in rtemu.physics.
+        arrays = transfer_above_ground(self.transfer, prep.pressure_hpa, prep.air_temperature,
+                                       prep.specific_humidity, prep.surface_air_pressure,
+                                       prep.surface_temperature, prep.surface_emissivity,
+                                       prep.sensor_zenith_angle, jacobian=jacobian)
         for name in ("jacobian_air_temperature", "jacobian_specific_humidity"):
             if name in arrays:
-                if cut is not None:
-                    arrays[name] = cut.jacobian_to_input_levels(arrays[name])
                 arrays[name] = prep.to_caller_order(arrays[name])
         flag = np.where(prep.valid, 0, _flags.INVALID_INPUT) | np.where(prep.supersaturated, _flags.SUPERSATURATED, 0)
         flag = flag[:, None] * np.ones(len(self.channels), np.int32)
