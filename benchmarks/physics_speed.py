@@ -132,7 +132,8 @@ def peak_rss(n_profiles: int) -> None:
     verdict = "meets" if peak < TARGET_PEAK_GB else "MISSES"
     print(f"\npeak RSS, simulate with Jacobians, tables kind, 16 x 64 sub-bands, 100 levels, {n_profiles} profiles "
           f"(fresh process): {peak:.2f} GiB ({verdict} the target < {TARGET_PEAK_GB:g} GB); "
-          f"{before:.2f} GiB before the call (inputs, tables, imports); outputs {output_gb:.2f} GiB; "
+          f"peak {before:.2f} GiB before the call (imports, building the inputs and tables); outputs "
+          f"{output_gb:.2f} GiB; "
           f"{elapsed:.0f} s")
 
 

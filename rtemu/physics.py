@@ -423,7 +423,8 @@ def transfer(
     jacobian : bool
         Also return the Jacobians.
     block_size : int
-        Profiles per vectorised block (memory bound only; results do not depend on it).
+        Profiles per vectorised block, at most (fewer where the work arrays would pass
+        WORK_BYTES); memory only, results do not depend on it.
 
     Returns
     -------
