@@ -29,6 +29,13 @@ INPUT_VARIABLES = (
     "surface_emissivity",
     "sensor_zenith_angle",
 )
+#: Inputs read when present: the ground (terrain, :func:`rtemu.levels.cut_at_surface`).
+OPTIONAL_INPUT_VARIABLES = ("surface_air_pressure",)
+
+
+def input_names(dataset) -> list[str]:
+    """The operator inputs of ``dataset``: every required one, and the optional ones it holds."""
+    return list(INPUT_VARIABLES) + [n for n in OPTIONAL_INPUT_VARIABLES if n in dataset.variables]
 
 TEMPERATURE_RANGE_K = (100.0, 400.0)
 HUMIDITY_MAX = 0.1  # [kg kg-1], exclusive
@@ -108,7 +115,7 @@ def _values(ds, name, order, take=None):
 
 def _by_standard_name(dataset: xr.Dataset) -> xr.Dataset:
     """Rename variables whose CF ``standard_name`` is an input variable missing by name."""
-    known = INPUT_VARIABLES + ("surface_air_pressure",)  # the optional ground too
+    known = INPUT_VARIABLES + OPTIONAL_INPUT_VARIABLES
     missing = [v for v in known if v not in dataset.variables]
     renames = {}
     for wanted in missing:

@@ -51,7 +51,7 @@ import xarray as xr
 from rtemu import __version__
 from rtemu import flags as _flags
 from rtemu import teacher as _teacher
-from rtemu._checks import INPUT_VARIABLES, prepare_inputs
+from rtemu._checks import INPUT_VARIABLES, input_names, prepare_inputs
 from rtemu.instrument import Instrument
 from rtemu.physics import JACOBIAN_NAMES
 from rtemu._io import open_dataset, to_netcdf_atomic, write_bytes_atomic, write_text_atomic
@@ -488,8 +488,7 @@ def _select_inputs(ds: xr.Dataset, channels, source: str = "data", stored: bool 
                          f"all of {list(INPUT_VARIABLES)})")
     if "profile" not in ds.dims or ds.sizes["profile"] == 0:
         raise ValueError(f"{source}: no profiles (rule: dimension 'profile' with at least one entry)")
-    optional = [n for n in ("surface_air_pressure",) if n in ds.variables]  # the ground, over terrain
-    ds = ds[list(INPUT_VARIABLES) + optional + ([n for n in _STORED_OUTPUTS if n in ds.variables] if stored else [])]
+    ds = ds[input_names(ds) + ([n for n in _STORED_OUTPUTS if n in ds.variables] if stored else [])]
     if "channel" in ds.dims and "channel" in ds.coords:
         have = [str(c) for c in ds["channel"].values]
         if set(channels) <= set(have) and have != list(channels):

@@ -24,6 +24,7 @@ import numpy as np
 import xarray as xr
 
 from rtemu import flags as _flags
+from rtemu._checks import input_names
 from rtemu._io import write_text_atomic
 from rtemu.instrument import load_instrument
 
@@ -180,8 +181,7 @@ def run_demo(output_dir="rtemu-demo", *, progress: bool = True, **overrides) -> 
     # physics (and flagged physics_fallback, which the assimilation accepts): the safe set-up.
     emulated = EmulatedOperator.load(model_path, fallback="physics")
     states = draw_states(cfg["columns"], seed=cfg["truth_seed"], channels=inst)
-    truth = states[["air_pressure", "air_temperature", "specific_humidity", "surface_temperature",
-                    "surface_emissivity", "sensor_zenith_angle", "surface_air_pressure"]]
+    truth = states[input_names(states)]  # with the drawn ground
     rng = np.random.default_rng(cfg["error_seed"])
     clean = physical.simulate(truth)["brightness_temperature"]
     observations = clean + rng.standard_normal(clean.shape) * inst.noise_k[None, :]

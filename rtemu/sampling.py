@@ -39,6 +39,7 @@ from scipy.stats import qmc
 from rtemu import atmosphere as atm
 from rtemu import flags, physics
 from rtemu import teacher as _teacher
+from rtemu._checks import input_names
 from rtemu._io import (assembly_size, atomic_path, check_space, exclusive_output, remove_partials,
                       write_bytes_atomic, write_text_atomic)
 from rtemu._units import unit_conversion
@@ -1117,8 +1118,7 @@ def _compute_chunk(instrument_toml: str, seed: int, start: int, count: int, grid
     """
     inst = Instrument.from_toml(instrument_toml, source="<sampling job>", absorption_tables=absorption_tables)
     states = draw_states(count, seed=seed, pressure_hpa=grid, start=start, channels=inst)
-    inputs = states[["air_pressure", "air_temperature", "specific_humidity", "surface_temperature",
-                     "surface_emissivity", "sensor_zenith_angle", "surface_air_pressure"]]
+    inputs = states[input_names(states)]
     if teacher_spec is not None:
         teacher = _imported_teacher(*teacher_spec)
     if teacher is None:

@@ -24,7 +24,7 @@ import xarray as xr
 from rtemu import __version__
 from rtemu import flags as _flags
 from rtemu import physics as _physics
-from rtemu._checks import INPUT_VARIABLES, prepare_inputs
+from rtemu._checks import input_names, prepare_inputs
 from rtemu._units import CANONICAL_UNITS, unit_conversion
 from rtemu.instrument import Instrument
 
@@ -278,7 +278,7 @@ def checked_simulate(teacher, dataset: xr.Dataset, jacobian: bool = False, *,
 def _as_teacher_input(dataset: xr.Dataset, channels) -> xr.Dataset:
     """``dataset`` in canonical units (hPa, K, kg kg-1, 1, degree), channels in the teacher's order."""
     converted = {}
-    for name in INPUT_VARIABLES + tuple(n for n in ("surface_air_pressure",) if n in dataset.variables):
+    for name in input_names(dataset):
         var = dataset.variables[name]
         scale, offset = unit_conversion(name, var.attrs.get("units"))
         if (scale, offset) != (1.0, 0.0) or var.attrs.get("units") != CANONICAL_UNITS[name]:
